@@ -1,0 +1,510 @@
+"""`Project`: the verbs of Kinfold. The CLI, the app and the benchmarks all call these.
+
+Example (runs on the demo folder; the first scan embeds a few hundred photos in under a minute):
+
+    >>> from core.project import Project
+    >>> p = Project.open("sample_images")
+    >>> report = p.scan()
+    >>> groups = p.propose(limit=5)
+    >>> g = groups[0]
+    >>> p.accept(g.id, "hex nut", drop=g.members[-1:])   # label all but the last member
+    >>> p.status().by_label
+    {'hex nut': ...}
+    >>> p.export_csv("labels.csv")
+"""
+from __future__ import annotations
+
+import getpass
+import hashlib
+import os
+import time
+import unicodedata
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Iterable, Sequence
+
+import numpy as np
+
+from core import catalogue, export, neighbours, proposals
+from core.store import LabelRow, PhotoRow, Store, StoreError, utc_now
+
+Progress = Callable[[int, int, str], None]
+Cancel = Callable[[], bool]
+
+STORE_DIR = ".kinfold"
+DEFAULT_EXTRACTOR = "efficientnet-lite0"
+_EMBED_CHUNK = 1024          # photos embedded and committed per step, so a crash loses at most this
+_UNDOABLE = ("accept", "label", "set_aside", "clear")
+
+
+class ProjectError(Exception):
+    """A request Kinfold cannot carry out; the message says why, in one line."""
+
+
+@dataclass
+class ScanReport:
+    photos: int                                   # photos ready to propose
+    new: int
+    changed: int
+    removed: int
+    embedded: int                                 # photos embedded by this scan
+    skipped: list[tuple[str, str]]                # (path, reason) for every file left out
+    cancelled: bool = False
+    seconds: float = 0.0
+
+
+@dataclass
+class Proposal:
+    id: int
+    members: list[str]                            # relative POSIX paths, anchor first
+    trust: float
+    suggested_label: str | None
+    confidence: float | None
+    kind: str                                     # "new area", "probable label" or "split part"
+
+
+@dataclass
+class Status:
+    photos: int
+    labelled: int
+    set_aside: int
+    unlabelled: int
+    by_label: dict[str, int]
+    actions: int                                  # decisions recorded (undo counts as one)
+    skipped: int
+    relearned_version: int | None = None
+
+
+@dataclass
+class _Lock:
+    path: Path
+    handle: object = field(default=None, repr=False)
+
+    def acquire(self) -> None:
+        try:
+            import fcntl
+        except ImportError:  # not POSIX: no cross-process lock
+            return
+        self.handle = open(self.path, "a+")
+        try:
+            fcntl.flock(self.handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            self.handle.close()
+            self.handle = None
+            raise ProjectError(f"this folder is already open in another Kinfold window or command "
+                               f"(lock {self.path}); close it there first") from None
+
+    def release(self) -> None:
+        if self.handle is not None:
+            self.handle.close()
+            self.handle = None
+
+
+def clean_label(label: str) -> str:
+    if not isinstance(label, str):
+        raise ProjectError("a label must be text")
+    label = unicodedata.normalize("NFC", " ".join(label.split()))
+    if not label:
+        raise ProjectError("a label cannot be empty")
+    if any(unicodedata.category(ch).startswith("C") for ch in label):
+        raise ProjectError(f"label {label!r} contains control characters")
+    if len(label) > 200:
+        raise ProjectError("a label is at most 200 characters")
+    return label
+
+
+class Project:
+    def __init__(self, folder: Path, store: Store, annotator: str, extractor: str, lock: _Lock | None):
+        self.folder = folder
+        self.store = store
+        self.annotator = annotator
+        self.extractor_name = extractor
+        self._lock = lock
+        self._extractor = None
+        self._graph: neighbours.Graph | None = None
+        self._load_catalogue()
+
+    # -- opening -----------------------------------------------------------------------------
+    @classmethod
+    def open(cls, folder, store=None, *, extractor: str = DEFAULT_EXTRACTOR, annotator: str | None = None,
+             lock: bool = True) -> "Project":
+        """Create or reopen the project of `folder`. The store defaults to `<folder>/.kinfold/`;
+        pass `store=` for a separate location (a read-only folder, say)."""
+        folder = Path(folder).expanduser().resolve()
+        if not folder.is_dir():
+            raise ProjectError(f"{folder} is not a folder")
+        store_dir = Path(store).expanduser().resolve() if store else folder / STORE_DIR
+        try:
+            st = Store(store_dir)
+        except StoreError as exc:
+            raise ProjectError(str(exc)) from exc
+        lk = None
+        if lock:
+            lk = _Lock(store_dir / "lock")
+            try:
+                lk.acquire()
+            except ProjectError:
+                st.close()
+                raise
+        return cls(folder, st, annotator or _default_annotator(), extractor, lk)
+
+    def close(self) -> None:
+        self.store.close()
+        if self._lock:
+            self._lock.release()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    # -- catalogue and embeddings ------------------------------------------------------------
+    @property
+    def extractor_id(self) -> str | None:
+        return self.store.get_setting("extractor_id")
+
+    def _load_catalogue(self) -> None:
+        rows = self.store.photos()
+        ext = self.extractor_id
+        embedded = self.store.embedded_fingerprints(ext) if ext else set()
+        self._rows: list[PhotoRow] = [r for r in rows if r.fingerprint in embedded]
+        self._index = {r.path: i for i, r in enumerate(self._rows)}
+        self._features = (self.store.embeddings(ext, [r.fingerprint for r in self._rows])
+                          if self._rows else np.zeros((0, 0), np.float32))
+        self._graph = None
+
+    def extractor(self):
+        if self._extractor is None:
+            from core.embedding import get_extractor  # torch loads only when a scan needs it
+            self._extractor = get_extractor(self.extractor_name)
+        return self._extractor
+
+    def scan(self, progress: Progress | None = None, cancel: Cancel | None = None) -> ScanReport:
+        """Find new and changed photos and embed those not embedded yet. Safe to cancel: what was
+        embedded is kept, and the next scan goes on from there."""
+        t0 = time.perf_counter()
+        previous = {r.path: r for r in self.store.photos()}
+        ignore = self.store.directory if self.store.directory.is_relative_to(self.folder) else None
+        cat = catalogue.scan_folder(self.folder, previous, self.store.skipped(), ignore=ignore,
+                                    progress=progress, cancel=cancel)
+        extractor = self.extractor()
+        self.store.set_setting("extractor_id", extractor.id)
+        done_fps = self.store.embedded_fingerprints(extractor.id)
+        todo: dict[str, PhotoRow] = {}
+        for r in cat.photos:
+            if r.fingerprint not in done_fps:
+                todo.setdefault(r.fingerprint, r)
+        todo_rows = list(todo.values())
+        failed: dict[str, str] = {}
+        embedded = 0
+        cancelled = cat.cancelled
+        if not cancelled and todo_rows:
+            from core.embedding import embed_files
+
+            for start in range(0, len(todo_rows), _EMBED_CHUNK):
+                chunk = todo_rows[start:start + _EMBED_CHUNK]
+
+                def chunk_progress(done, total, message, _base=start):
+                    if progress:
+                        progress(_base + done, len(todo_rows), message)
+
+                res = embed_files([self.folder / r.path for r in chunk], extractor,
+                                  progress=chunk_progress, cancel=cancel)
+                self.store.put_embeddings(extractor.id, [chunk[i].fingerprint for i in res.ok], res.vectors)
+                embedded += len(res.ok)
+                for i, reason in res.failed:
+                    failed[chunk[i].fingerprint] = reason
+                if res.cancelled:
+                    cancelled = True
+                    break
+        skipped = dict(cat.skipped)
+        photos = []
+        for r in cat.photos:
+            if r.fingerprint in failed:
+                skipped[r.path] = (r.size, r.mtime_ns, failed[r.fingerprint])
+            else:
+                photos.append(r)
+        self.store.replace_catalogue(photos, skipped)
+        self._load_catalogue()
+        return ScanReport(photos=len(self._rows), new=len(cat.new), changed=len(cat.changed),
+                          removed=len(cat.removed), embedded=embedded,
+                          skipped=sorted((p, v[2]) for p, v in skipped.items()),
+                          cancelled=cancelled, seconds=time.perf_counter() - t0)
+
+    # -- geometry ----------------------------------------------------------------------------
+    def features(self) -> np.ndarray:
+        """The embedding proposals work in: the backbone's, or the relearned one when active."""
+        version = self.store.active_relearn_version()
+        if version is None:
+            return self._features
+        from core import relearning
+
+        return relearning.apply(self.store.relearn_state(version), self._features)
+
+    def graph(self) -> neighbours.Graph:
+        if self._graph is None:
+            self._graph = self._load_or_build_graph()
+        return self._graph
+
+    def _load_or_build_graph(self) -> neighbours.Graph:
+        key = hashlib.sha1()
+        key.update(f"{self.extractor_id}|{self.store.active_relearn_version()}|".encode())
+        for r in self._rows:
+            key.update(r.fingerprint.encode())
+        cache = self.store.directory / f"graph-{key.hexdigest()[:16]}.npz"
+        if cache.exists():
+            try:
+                with np.load(cache) as z:
+                    return neighbours.Graph(**{k: z[k] for k in z.files})
+            except (OSError, ValueError, KeyError):
+                pass  # a damaged cache is rebuilt
+        g = neighbours.build_graph(self.features())
+        for old in self.store.directory.glob("graph-*.npz"):
+            old.unlink(missing_ok=True)
+        tmp = cache.with_suffix(".tmp.npz")
+        np.savez(tmp, **{k: getattr(g, k) for k in ("x", "sims", "idx", "entropy", "mutual", "burst")})
+        os.replace(tmp, cache)
+        return g
+
+    def _paths_to_indices(self, paths: Iterable[str]) -> list[int]:
+        out = []
+        for p in paths:
+            p = Path(p).as_posix() if not isinstance(p, str) else p
+            if p not in self._index:
+                raise ProjectError(f"{p} is not a photo of this project (run scan first?)")
+            out.append(self._index[p])
+        return out
+
+    def _state_arrays(self):
+        labels = self.store.labels()
+        names = sorted({r.label for r in labels.values() if r.state == "labelled"})
+        pos = {n: i for i, n in enumerate(names)}
+        n = len(self._rows)
+        state = np.zeros(n, np.int8)
+        label_of = np.full(n, -1, np.int64)
+        for i, r in enumerate(self._rows):
+            lr = labels.get(r.fingerprint)
+            if lr is None:
+                continue
+            if lr.state == "labelled":
+                state[i] = proposals.LABELLED
+                label_of[i] = pos[lr.label]
+            else:
+                state[i] = proposals.SET_ASIDE
+        return state, label_of, names
+
+    # -- proposals ---------------------------------------------------------------------------
+    def propose(self, limit: int = 20, settings: proposals.Settings | None = None) -> list[Proposal]:
+        """The next groups to confirm, most trustworthy first. Split parts come before anything else."""
+        if not self._rows:
+            return []
+        g = self.graph()
+        state, label_of, names = self._state_arrays()
+        out: list[Proposal] = []
+        taken = np.zeros(len(self._rows), bool)
+        for row in self.store.open_proposals(pinned_only=True):
+            idx = [self._index[m] for m in row.members if m in self._index]
+            idx = [i for i in idx if state[i] == proposals.FREE and not taken[i]]
+            if not idx:
+                continue
+            taken[idx] = True
+            out.append(Proposal(row.id, [self._rows[i].path for i in idx], row.trust, row.suggested_label,
+                                row.confidence, row.kind))
+        eligible = ~taken
+        deferred = self.store.deferred()
+        if deferred:
+            fresh = eligible & np.array([r.fingerprint not in deferred for r in self._rows])
+            # Photos left for later come back once nothing else is left.
+            if (fresh & (state == proposals.FREE)).any():
+                eligible = fresh
+        groups = proposals.form_groups(g, state, label_of, len(names), max(limit - len(out), 0),
+                                       settings, eligible) if limit > len(out) else []
+        records = [dict(members=[self._rows[i].path for i in gr.members], trust=round(gr.trust, 4),
+                        suggested_label=names[gr.suggested_label] if gr.suggested_label is not None else None,
+                        confidence=None if gr.confidence is None else round(gr.confidence, 4), kind=gr.kind)
+                   for gr in groups]
+        ids = self.store.replace_open_proposals(records)
+        out.extend(Proposal(i, r["members"], r["trust"], r["suggested_label"], r["confidence"], r["kind"])
+                   for i, r in zip(ids, records))
+        return out[:limit]
+
+    def group(self, group_id: int) -> Proposal:
+        row = self.store.proposal(group_id)
+        if row is None:
+            raise ProjectError(f"there is no group {group_id}")
+        return Proposal(row.id, row.members, row.trust, row.suggested_label, row.confidence, row.kind)
+
+    def _open_group(self, group_id: int):
+        row = self.store.proposal(group_id)
+        if row is None:
+            raise ProjectError(f"there is no group {group_id}")
+        if not self.store.is_open(group_id):
+            raise ProjectError(f"group {group_id} is no longer open (already decided, or replaced by "
+                               "newer proposals); ask for proposals again")
+        return row
+
+    # -- decisions ---------------------------------------------------------------------------
+    def _new_row(self, fp: str, state: str, label: str | None, how: str) -> LabelRow:
+        return LabelRow(fp, state, label, how, self.annotator, utc_now())
+
+    def accept(self, group_id: int, label: str, drop: Sequence[str] = ()) -> int:
+        """Label every member of the group but those in `drop` (they go back to the pool)."""
+        label = clean_label(label)
+        row = self._open_group(group_id)
+        drop = set(drop)
+        unknown = drop - set(row.members)
+        if unknown:
+            raise ProjectError(f"{sorted(unknown)[0]} is not a member of group {group_id}")
+        keep = [m for m in row.members if m not in drop and m in self._index]
+        labels = self.store.labels()
+        keep = [m for m in keep if self._rows[self._index[m]].fingerprint not in labels]
+        changes = {self._rows[self._index[m]].fingerprint: self._new_row(
+            self._rows[self._index[m]].fingerprint, "labelled", label, "group") for m in keep}
+        return self.store.record_decision("accept", self.annotator, keep, changes, label=label,
+                                          group_id=group_id, close_proposals=[group_id])
+
+    def label(self, paths: Sequence[str], label: str) -> int:
+        """Label photos directly (one or many); relabels photos that already carry a label."""
+        label = clean_label(label)
+        idx = self._paths_to_indices(paths)
+        labels = self.store.labels()
+        changes = {}
+        for i in idx:
+            fp = self._rows[i].fingerprint
+            how = "relabel" if fp in labels else "single"
+            changes[fp] = self._new_row(fp, "labelled", label, how)
+        return self.store.record_decision("label", self.annotator, [self._rows[i].path for i in idx], changes,
+                                          label=label)
+
+    def set_aside(self, paths: Sequence[str]) -> int:
+        """Mark photos as belonging to no class; they are never proposed again (undo brings them back)."""
+        idx = self._paths_to_indices(paths)
+        changes = {self._rows[i].fingerprint: self._new_row(self._rows[i].fingerprint, "set_aside", None,
+                                                            "set aside") for i in idx}
+        return self.store.record_decision("set_aside", self.annotator, [self._rows[i].path for i in idx], changes)
+
+    def clear(self, paths: Sequence[str]) -> int:
+        """Remove labels (or set-aside marks) so the photos return to the pool."""
+        idx = self._paths_to_indices(paths)
+        changes = {self._rows[i].fingerprint: None for i in idx}
+        return self.store.record_decision("clear", self.annotator, [self._rows[i].path for i in idx], changes)
+
+    def split(self, group_id: int) -> list[Proposal]:
+        """Break a group into two coherent parts; they come back first in the next proposals."""
+        row = self._open_group(group_id)
+        members = [m for m in row.members if m in self._index]
+        if len(members) < 2:
+            raise ProjectError(f"group {group_id} has a single photo; nothing to split")
+        g = self.graph()
+        part = proposals.split_members(g.x[[self._index[m] for m in members]])
+        parts = [[m for m, p in zip(members, part) if p == k] for k in (0, 1)]
+        # The part holding the anchor keeps its place first.
+        if members[0] in parts[1]:
+            parts.reverse()
+        records = [dict(members=pm, trust=row.trust, suggested_label=row.suggested_label,
+                        confidence=row.confidence, kind="split part") for pm in parts if pm]
+        self.store.record_decision("split", self.annotator, members, {}, group_id=group_id)
+        ids = self.store.add_pinned_proposals(records, close=group_id)
+        return [Proposal(i, r["members"], r["trust"], r["suggested_label"], r["confidence"], r["kind"])
+                for i, r in zip(ids, records)]
+
+    def defer(self, group_id: int) -> None:
+        """Leave a group for later: its photos come back after everything else has been proposed."""
+        row = self._open_group(group_id)
+        self.store.defer(self._rows[self._index[m]].fingerprint for m in row.members if m in self._index)
+        self.store.add_pinned_proposals([], close=group_id)
+
+    def undo(self) -> dict | None:
+        """Reverse the newest label decision not yet undone (repeat to walk further back).
+        Returns what was undone, or None when there is nothing left to undo."""
+        last = self.store.last_undoable_of(_UNDOABLE)
+        if last is None:
+            return None
+        dec_id, kind, before, group_id = last
+        changes = {fp: (LabelRow(fp, *prev) if prev else None) for fp, prev in before.items()}
+        self.store.record_decision("undo", self.annotator, [], changes, undoes=dec_id)
+        if kind == "accept" and group_id is not None:
+            self.store.repin_proposal(group_id)  # the group comes back first, as it was
+        return {"decision": dec_id, "kind": kind, "photos": len(changes)}
+
+    # -- reading -----------------------------------------------------------------------------
+    def status(self) -> Status:
+        labels = self.store.labels()
+        by_label: dict[str, int] = {}
+        labelled = aside = 0
+        for r in self._rows:
+            lr = labels.get(r.fingerprint)
+            if lr is None:
+                continue
+            if lr.state == "labelled":
+                labelled += 1
+                by_label[lr.label] = by_label.get(lr.label, 0) + 1
+            else:
+                aside += 1
+        return Status(photos=len(self._rows), labelled=labelled, set_aside=aside,
+                      unlabelled=len(self._rows) - labelled - aside, by_label=dict(sorted(by_label.items())),
+                      actions=self.store.decision_count(), skipped=len(self.store.skipped()),
+                      relearned_version=self.store.active_relearn_version())
+
+    def photos(self) -> list[str]:
+        return [r.path for r in self._rows]
+
+    def photo_info(self, path: str) -> dict:
+        i = self._paths_to_indices([path])[0]
+        r = self._rows[i]
+        lr = self.store.labels().get(r.fingerprint)
+        return dict(path=r.path, width=r.width, height=r.height, bytes=r.size, fingerprint=r.fingerprint,
+                    state=lr.state if lr else "unlabelled", label=lr.label if lr else None)
+
+    def neighbours(self, path: str, k: int = 8) -> list[tuple[str, float]]:
+        """The k photos most similar to `path`, with their cosine similarity."""
+        i = self._paths_to_indices([path])[0]
+        g = self.graph()
+        return [(self._rows[j].path, float(s)) for j, s in zip(g.idx[i, :k], g.sims[i, :k]) if j >= 0]
+
+    def review(self, label: str) -> list[tuple[str, float]]:
+        """Photos carrying `label`, least typical first: typicality is the cosine similarity to the
+        mean of the label's other photos, so a mislabelled photo surfaces at the top."""
+        state, label_of, names = self._state_arrays()
+        if label not in names:
+            raise ProjectError(f"no photo carries the label {label!r}")
+        members = np.nonzero((state == proposals.LABELLED) & (label_of == names.index(label)))[0]
+        x = self.graph().x[members]
+        total = x.sum(0)
+        others = total[None, :] - x
+        norms = np.maximum(np.linalg.norm(others, axis=1), 1e-12)
+        typ = (x * others).sum(1) / norms if len(members) > 1 else np.ones(len(members))
+        order = np.argsort(typ, kind="stable")
+        return [(self._rows[members[o]].path, float(typ[o])) for o in order]
+
+    def labelled_photos(self) -> list[export.LabelledPhoto]:
+        labels = self.store.labels()
+        g = self.graph() if self._rows else None
+        out = []
+        for i, r in enumerate(self._rows):
+            lr = labels.get(r.fingerprint)
+            if lr is None or lr.state != "labelled":
+                continue
+            burst = int(g.burst[i]) if g is not None and g.burst[i] >= 0 else None
+            out.append(export.LabelledPhoto(r.path, lr.label, lr.how, lr.annotator, lr.time, r.width, r.height,
+                                            burst))
+        return out
+
+    # -- export ------------------------------------------------------------------------------
+    def export_csv(self, path) -> int:
+        return export.export_csv(path, self.labelled_photos())
+
+    def export_coco(self, path) -> dict:
+        return export.export_coco(path, self.labelled_photos())
+
+    def export_folders(self, directory, split=None, *, seed: int = 0, mode: str = "link") -> dict:
+        return export.export_folders(directory, self.labelled_photos(), self.folder, split=split, seed=seed,
+                                     mode=mode)
+
+
+def _default_annotator() -> str:
+    try:
+        return getpass.getuser()
+    except Exception:  # no user database entry (containers)
+        return os.environ.get("USER", "annotator")

@@ -1,0 +1,197 @@
+"""Forming the groups Kinfold proposes, and their order.
+
+Two kinds of group, both built from unlabelled photos only, a photo in at most one group:
+
+* **new area** — around an anchor with low neighbourhood entropy whose surroundings carry no label
+  yet. Members are the anchor's *mutual* nearest neighbours (each has the anchor among its own
+  nearest too), so a tight cluster yields one large group and a loose area small ones.
+* **probable label** — once labels exist, they are spread over the kNN graph (label propagation by
+  normalised graph diffusion, with an extra "unknown" column that every unlabelled photo feeds, so
+  areas far from any label stay unknown instead of being swallowed by the nearest known class).
+  The photos most confidently predicted as one label form a group suggesting it.
+
+Every group has a trust figure in [0, 1]; the order is by trust, except that the best new-area
+group is never pushed further back than every `explore_every`-th place, so a class nobody has
+labelled yet surfaces early.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from core.neighbours import Graph
+
+MAX_GROUP = 48
+FREE, LABELLED, SET_ASIDE = 0, 1, 2
+
+
+@dataclass
+class Settings:
+    max_group: int = MAX_GROUP
+    mutual_k: int = MAX_GROUP        # neighbours considered for a new-area group
+    min_mutual_sim: float = 0.0      # floor on similarity to the anchor in a new-area group
+    propagation_k: int = 10          # graph degree used for label propagation
+    alpha: float = 0.9               # diffusion: weight of the neighbours against the seed labels
+    iterations: int = 20
+    unknown_prior: float = 0.05      # mass of the "unknown" column each unlabelled photo feeds
+    min_confidence: float = 0.5      # below this, a photo is left to new-area groups
+    explore_every: int = 3           # a new-area group at least every this many places
+
+
+@dataclass
+class Group:
+    members: list[int]               # photo indices, anchor first
+    trust: float
+    kind: str                        # "new area" | "probable label"
+    suggested_label: int | None = None   # index into the label list
+    confidence: float | None = None
+    extra: dict = field(default_factory=dict)
+
+
+def propagate(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: int,
+              settings: Settings) -> np.ndarray:
+    """Label distribution of every photo, shape (n, n_labels + 1); the last column is 'unknown'.
+
+    Seeds: a labelled photo is one-hot on its label, a set-aside photo one-hot on unknown, an
+    unlabelled photo feeds `unknown_prior` into unknown. Iterates F <- a W F + (1 - a) Y on the
+    row-normalised kNN graph; rows are normalised to probabilities at the end.
+    """
+    n = graph.n
+    k = min(settings.propagation_k, graph.idx.shape[1])
+    idx = np.maximum(graph.idx[:, :k], 0)
+    w = np.clip(graph.sims[:, :k], 0, None) ** 3 * (graph.idx[:, :k] >= 0)
+    w = w / np.maximum(w.sum(1, keepdims=True), 1e-12)
+    y = np.zeros((n, n_labels + 1), np.float32)
+    lab = state == LABELLED
+    y[np.nonzero(lab)[0], label_of[lab]] = 1.0
+    y[state == SET_ASIDE, n_labels] = 1.0
+    y[state == FREE, n_labels] = settings.unknown_prior
+    f = y.copy()
+    a = settings.alpha
+    for _ in range(settings.iterations):
+        f = a * np.einsum("nk,nkc->nc", w, f[idx]) + (1 - a) * y
+    return f / np.maximum(f.sum(1, keepdims=True), 1e-12)
+
+
+def _take_unit(j: int, graph: Graph, available: np.ndarray) -> list[int]:
+    """Photo j with its burst-mates that are still available (near-duplicates travel together)."""
+    b = graph.burst[j]
+    if b < 0:
+        return [j]
+    mates = np.nonzero((graph.burst == b) & available)[0]
+    return [j] + [int(m) for m in mates if m != j]
+
+
+def _fill(candidates, graph: Graph, available: np.ndarray, cap: int) -> list[int]:
+    members: list[int] = []
+    for j in candidates:
+        if len(members) >= cap:
+            break
+        if not available[j]:
+            continue
+        unit = _take_unit(int(j), graph, available)
+        if len(members) + len(unit) > cap and members:
+            continue
+        members.extend(unit)
+        available[unit] = False
+    return members
+
+
+def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: int, limit: int,
+                settings: Settings | None = None, eligible: np.ndarray | None = None) -> list[Group]:
+    """Up to `limit` groups of eligible unlabelled photos, most trustworthy first.
+
+    state: FREE / LABELLED / SET_ASIDE per photo; label_of: label index per labelled photo (else -1);
+    eligible: photos that may be proposed (default: all FREE ones).
+    """
+    s = settings or Settings()
+    n = graph.n
+    available = (state == FREE) if eligible is None else (eligible & (state == FREE))
+    if not available.any():
+        return []
+    ent_rank = np.empty(n)
+    ent_rank[np.argsort(graph.entropy, kind="stable")] = np.arange(n) / max(n - 1, 1)
+
+    probable: list[Group] = []
+    if n_labels > 0 and (state == LABELLED).any():
+        prob = propagate(graph, state, label_of, n_labels, s)
+        pred = prob[:, :n_labels].argmax(1)
+        conf = prob[np.arange(n), pred]
+        sure = available & (conf >= s.min_confidence)
+        for c in range(n_labels):
+            cand = np.nonzero(sure & (pred == c))[0]
+            cand = cand[np.argsort(-conf[cand], kind="stable")]
+            while len(cand):
+                members = _fill(cand, graph, available, s.max_group)
+                if not members:
+                    break
+                mean_conf = float(conf[members].mean())
+                probable.append(Group(members, mean_conf, "probable label", c, mean_conf))
+                cand = cand[available[cand]]
+                if len(probable) >= limit * 2:
+                    break
+        probable.sort(key=lambda g: -g.trust)
+        probable = probable[:limit]
+        # Photos already claimed by a probable-label group must not join a new-area one.
+        for g in probable:
+            available[g.members] = False
+    else:
+        prob = None
+
+    explore: list[Group] = []
+    k = min(s.mutual_k, graph.idx.shape[1])
+    for a in np.argsort(graph.entropy, kind="stable"):
+        if len(explore) >= limit:
+            break
+        if not available[a]:
+            continue
+        nb = graph.idx[a, :k]
+        ok = graph.mutual[a, :k] & (nb >= 0) & (graph.sims[a, :k] >= s.min_mutual_sim)
+        members = _fill([a] + [int(j) for j in nb[ok]], graph, available, s.max_group)
+        # Trust: how certain the anchor's neighbourhood is (entropy rank) and how many of its
+        # ten nearest are mutual neighbours (agreement).
+        agreement = float(graph.mutual[a, :10].mean())
+        trust = 0.5 * (1.0 - ent_rank[a]) + 0.5 * agreement
+        g = Group(members, trust, "new area")
+        if prob is not None:
+            votes = prob[members, :n_labels].sum(0)
+            if votes.max() > 0:
+                g.suggested_label = int(votes.argmax())
+                g.confidence = float(prob[members, g.suggested_label].mean())
+        explore.append(g)
+
+    return _order(probable, explore, limit, s.explore_every)
+
+
+def _order(probable: list[Group], explore: list[Group], limit: int, every: int) -> list[Group]:
+    rest = sorted(probable + explore, key=lambda g: -g.trust)
+    out: list[Group] = []
+    since_explore = 0
+    while rest and len(out) < limit:
+        pick = 0
+        if since_explore >= every - 1 and rest[0].kind != "new area":
+            pick = next((i for i, g in enumerate(rest) if g.kind == "new area"), 0)
+        g = rest.pop(pick)
+        out.append(g)
+        since_explore = 0 if g.kind == "new area" else since_explore + 1
+    return out
+
+
+def split_members(x: np.ndarray, seed: int = 0) -> np.ndarray:
+    """Two coherent parts of a group: 2-means on the members' features. Returns a part id per member."""
+    import faiss
+
+    x = np.ascontiguousarray(x, np.float32)
+    if len(x) < 2:
+        return np.zeros(len(x), np.int64)
+    km = faiss.Kmeans(x.shape[1], 2, niter=25, seed=seed, spherical=True, verbose=False,
+                      min_points_per_centroid=1)
+    km.train(x)
+    _, assign = km.index.search(x, 1)
+    part = assign[:, 0].astype(np.int64)
+    if len(np.unique(part)) < 2:
+        # Degenerate (identical members): split off the member least like the rest.
+        part = np.zeros(len(x), np.int64)
+        part[int(np.argmin(x @ x.mean(0)))] = 1
+    return part
