@@ -491,6 +491,25 @@ class Project:
                                             burst))
         return out
 
+    # -- relearning ---------------------------------------------------------------------------
+    def relearn(self, progress: Progress | None = None, seconds: float | None = None,
+                cancel: Cancel | None = None) -> dict:
+        """Adapt the embedding to the confirmed labels and the neighbourhood structure; stores a new
+        version and makes it active. Never touches the decisions. Returns what it measured."""
+        from core import relearning
+
+        result = relearning.relearn_project(self, progress=progress, seconds=seconds, cancel=cancel)
+        self._graph = None
+        return result
+
+    def restore(self, version: int | None) -> None:
+        """Make an earlier relearned version active again (None: the plain backbone embedding)."""
+        self.store.activate_relearn_version(version)
+        self._graph = None
+
+    def relearn_versions(self) -> list[dict]:
+        return self.store.relearn_versions()
+
     # -- export ------------------------------------------------------------------------------
     def export_csv(self, path) -> int:
         return export.export_csv(path, self.labelled_photos())
