@@ -283,7 +283,12 @@ class Project:
         n = len(self._rows)
         state = np.zeros(n, np.int8)
         label_of = np.full(n, -1, np.int64)
+        self._not_label = np.zeros((n, len(names)), bool)
+        rejections = self.store.rejections()
         for i, r in enumerate(self._rows):
+            for lab in rejections.get(r.fingerprint, ()):
+                if lab in pos:
+                    self._not_label[i, pos[lab]] = True
             lr = labels.get(r.fingerprint)
             if lr is None:
                 continue
@@ -319,7 +324,7 @@ class Project:
             if (fresh & (state == proposals.FREE)).any():
                 eligible = fresh
         groups = proposals.form_groups(g, state, label_of, len(names), max(limit - len(out), 0),
-                                       settings, eligible) if limit > len(out) else []
+                                       settings, eligible, self._not_label) if limit > len(out) else []
         records = [dict(members=[self._rows[i].path for i in gr.members], trust=round(gr.trust, 4),
                         suggested_label=names[gr.suggested_label] if gr.suggested_label is not None else None,
                         confidence=None if gr.confidence is None else round(gr.confidence, 4), kind=gr.kind)
@@ -361,8 +366,9 @@ class Project:
         keep = [m for m in keep if self._rows[self._index[m]].fingerprint not in labels]
         changes = {self._rows[self._index[m]].fingerprint: self._new_row(
             self._rows[self._index[m]].fingerprint, "labelled", label, "group") for m in keep}
+        rejected = [self._rows[self._index[m]].fingerprint for m in drop if m in self._index]
         return self.store.record_decision("accept", self.annotator, keep, changes, label=label,
-                                          group_id=group_id, close_proposals=[group_id])
+                                          group_id=group_id, close_proposals=[group_id], rejected=rejected)
 
     def label(self, paths: Sequence[str], label: str) -> int:
         """Label photos directly (one or many); relabels photos that already carry a label."""

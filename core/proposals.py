@@ -99,11 +99,13 @@ def _fill(candidates, graph: Graph, available: np.ndarray, cap: int) -> list[int
 
 
 def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: int, limit: int,
-                settings: Settings | None = None, eligible: np.ndarray | None = None) -> list[Group]:
+                settings: Settings | None = None, eligible: np.ndarray | None = None,
+                not_label: np.ndarray | None = None) -> list[Group]:
     """Up to `limit` groups of eligible unlabelled photos, most trustworthy first.
 
     state: FREE / LABELLED / SET_ASIDE per photo; label_of: label index per labelled photo (else -1);
-    eligible: photos that may be proposed (default: all FREE ones).
+    eligible: photos that may be proposed (default: all FREE ones); not_label: (n, n_labels) True
+    where the annotator said a photo is not that label (it was taken out of that label's group).
     """
     s = settings or Settings()
     n = graph.n
@@ -116,6 +118,9 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
     probable: list[Group] = []
     if n_labels > 0 and (state == LABELLED).any():
         prob = propagate(graph, state, label_of, n_labels, s)
+        if not_label is not None and not_label.any():
+            prob[:, :n_labels][not_label] = 0.0
+            prob /= np.maximum(prob.sum(1, keepdims=True), 1e-12)
         pred = prob[:, :n_labels].argmax(1)
         conf = prob[np.arange(n), pred]
         sure = available & (conf >= s.min_confidence)

@@ -78,6 +78,12 @@ _MIGRATIONS: list[str] = [
     # 1 -> 2: photos left for later, and relearned embedding versions.
     """
     CREATE TABLE deferred (fingerprint TEXT PRIMARY KEY, time REAL NOT NULL);
+    CREATE TABLE rejections (             -- 'not this label': photos taken out of an accepted group
+        fingerprint TEXT NOT NULL,
+        label TEXT NOT NULL,
+        decision INTEGER NOT NULL,
+        PRIMARY KEY (fingerprint, label, decision)
+    );
     CREATE TABLE relearn_versions (
         id INTEGER PRIMARY KEY AUTOINCREMENT,
         time TEXT NOT NULL,
@@ -237,8 +243,9 @@ class Store:
 
     def record_decision(self, kind: str, annotator: str, photos: Sequence[str], changes: dict[str, LabelRow | None],
                         label: str | None = None, group_id: int | None = None, undoes: int | None = None,
-                        close_proposals: Iterable[int] = ()) -> int:
-        """Apply label changes ({fingerprint: new row or None to clear}) and log them, atomically."""
+                        close_proposals: Iterable[int] = (), rejected: Iterable[str] = ()) -> int:
+        """Apply label changes ({fingerprint: new row or None to clear}) and log them, atomically.
+        `rejected`: fingerprints the annotator said are not `label` (taken out of the group)."""
         with self.transaction() as db:
             before = {}
             for fp in changes:
@@ -258,6 +265,11 @@ class Store:
                               json.dumps(before), undoes))
             for gid in close_proposals:
                 db.execute("UPDATE proposals SET open=0 WHERE id=?", (gid,))
+            if label is not None:
+                db.executemany("INSERT OR IGNORE INTO rejections VALUES (?, ?, ?)",
+                               [(fp, label, cur.lastrowid) for fp in rejected])
+            if undoes is not None:
+                db.execute("DELETE FROM rejections WHERE decision=?", (undoes,))
             return cur.lastrowid
 
     def last_undoable_of(self, kinds: Sequence[str]):
@@ -269,6 +281,14 @@ class Store:
                 f"SELECT id, kind, before, group_id FROM decisions d WHERE kind IN ({marks}) AND NOT EXISTS "
                 "(SELECT 1 FROM decisions u WHERE u.undoes = d.id) ORDER BY id DESC LIMIT 1", tuple(kinds)).fetchone()
         return None if r is None else (r[0], r[1], json.loads(r[2]), r[3])
+
+    def rejections(self) -> dict[str, set[str]]:
+        with self._lock:
+            rows = self._db.execute("SELECT fingerprint, label FROM rejections").fetchall()
+        out: dict[str, set[str]] = {}
+        for fp, lab in rows:
+            out.setdefault(fp, set()).add(lab)
+        return out
 
     def decision_count(self) -> int:
         with self._lock:

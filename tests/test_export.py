@@ -1,0 +1,370 @@
+"""Tests for core.export, checked against outside readers: Python's csv module (RFC 4180),
+pycocotools (COCO format) and torchvision's ImageFolder."""
+
+import csv
+import json
+import random
+import shutil
+from collections import Counter
+from pathlib import Path
+
+import pytest
+from PIL import Image
+
+from core import export
+from core.export import (ExportError, LabelledPhoto, export_coco, export_csv, export_folders,
+                         folder_names, safe_folder_name, stratified_split)
+
+TIME = "2026-12-01T23:59:00Z"
+AWKWARD = ["a,b", 'say "hi"', "two\nlines", "Åsa – ñandú 写真", "=SUM(A1)", "+1", "-x",
+           "@cmd", "\tindented", "plain"]
+
+
+def photo(path, label, burst=None, width=32, height=24):
+    return LabelledPhoto(path, label, "group", "ana", TIME, width, height, burst)
+
+
+def entries(folder):
+    return sorted(p.name for p in Path(folder).iterdir())
+
+
+# ---------------------------------------------------------------------------- CSV
+
+def test_csv_reads_back_with_python_csv(tmp_path):
+    photos = [photo(f"drawer {i}/p{i}.jpg", label) for i, label in enumerate(AWKWARD)]
+    photos.append(photo("x,y/with comma.jpg", "plain"))
+    out = tmp_path / "labels.csv"
+    assert export_csv(out, photos) == len(photos)
+
+    # Outside reference: Python's csv module reading with newline="" (as its docs require).
+    with open(out, newline="", encoding="utf-8") as f:
+        rows = list(csv.reader(f))
+    assert rows[0] == ["path", "label", "how", "annotator", "time"]
+    read = {row[0]: row[1] for row in rows[1:]}
+    assert len(rows) == len(photos) + 1
+    for p in photos:
+        # Formula neutralisation (documented in export_csv): leading = + - @ tab get a quote.
+        expected = "'" + p.label if p.label[0] in "=+-@\t" else p.label
+        assert read[p.path] == expected
+    assert read["drawer 4/p4.jpg"] == "'=SUM(A1)"
+    assert read["x,y/with comma.jpg"] == "plain"
+    assert [r[0] for r in rows[1:]] == sorted(p.path for p in photos)
+    assert rows[1][2:] == ["group", "ana", TIME]
+
+
+def test_csv_bytes_follow_rfc_4180(tmp_path):
+    out = tmp_path / "labels.csv"
+    export_csv(out, [photo("a.jpg", "a,b"), photo("b.jpg", 'say "hi"'), photo("c.jpg", "é")])
+    raw = out.read_bytes()
+    # RFC 4180 section 2: CRLF after each record, header first, fields with commas or quotes
+    # enclosed in double quotes, a double quote inside escaped by doubling it.
+    assert raw.startswith(b"path,label,how,annotator,time\r\n")
+    assert raw.endswith(b"\r\n") and raw.count(b"\r\n") == 4
+    assert b"\n" not in raw.replace(b"\r\n", b"")
+    assert b'a.jpg,"a,b",group' in raw
+    assert b'b.jpg,"say ""hi""",group' in raw
+    assert "c.jpg,é,group".encode("utf-8") in raw  # UTF-8, no escaping
+
+
+def test_csv_refuses_bad_input_and_writes_nothing(tmp_path):
+    out = tmp_path / "labels.csv"
+    with pytest.raises(ExportError, match="more than once: a.jpg"):
+        export_csv(out, [photo("a.jpg", "x"), photo("a.jpg", "y")])
+    with pytest.raises(ExportError, match="label is empty"):
+        export_csv(out, [photo("a.jpg", " ")])
+    with pytest.raises(ExportError, match="relative"):
+        export_csv(out, [photo("../a.jpg", "x")])
+    with pytest.raises(ExportError, match="does not exist"):
+        export_csv(tmp_path / "nowhere" / "labels.csv", [photo("a.jpg", "x")])
+    assert entries(tmp_path) == []
+
+
+def test_csv_failure_mid_export_keeps_previous_file(tmp_path, monkeypatch):
+    out = tmp_path / "labels.csv"
+    export_csv(out, [photo("old.jpg", "old")])
+    before = out.read_bytes()
+    real_row, calls = export._csv_row, []
+
+    def failing_row(p):
+        calls.append(p)
+        if len(calls) == 3:
+            raise RuntimeError("disk gone")
+        return real_row(p)
+
+    monkeypatch.setattr(export, "_csv_row", failing_row)
+    with pytest.raises(RuntimeError, match="disk gone"):
+        export_csv(out, [photo(f"{i}.jpg", "new") for i in range(5)])
+    assert out.read_bytes() == before
+    assert entries(tmp_path) == ["labels.csv"]  # no temp file left
+
+
+def test_csv_failed_replace_gives_clear_error(tmp_path, monkeypatch):
+    out = tmp_path / "labels.csv"
+    export_csv(out, [photo("old.jpg", "old")])
+    before = out.read_bytes()
+
+    def refuse(*args):
+        raise PermissionError("read-only")
+
+    monkeypatch.setattr(export.os, "replace", refuse)
+    with pytest.raises(ExportError, match="read-only; the previous file, if any, is unchanged"):
+        export_csv(out, [photo("new.jpg", "new")])
+    monkeypatch.undo()
+    assert out.read_bytes() == before and entries(tmp_path) == ["labels.csv"]
+
+
+# ---------------------------------------------------------------------------- COCO
+
+def test_coco_loads_in_pycocotools(tmp_path):
+    from pycocotools.coco import COCO
+
+    labels = ["washer"] * 5 + ["bolt"] * 3 + ["a,b"] + ["Åsa"] * 2
+    photos = [photo(f"d/{i:02d}.jpg", label, width=40 + i, height=30) for i, label in
+              enumerate(labels)]
+    random.Random(1).shuffle(photos)
+    out = tmp_path / "coco.json"
+    counts = export_coco(out, photos, description="drawers", date_created="2026-12-02T08:00:00Z")
+    assert counts == {"images": 11, "annotations": 11, "categories": 4}
+
+    # Outside reference: pycocotools builds its index from the file.
+    coco = COCO(str(out))
+    assert len(coco.getCatIds()) == 4
+    assert len(coco.getImgIds()) == 11
+    assert len(coco.getAnnIds()) == 11
+    anns = coco.loadAnns(coco.getAnnIds())
+    assert len(anns) == 11
+    # COCO format: image-level label, so no bbox; one annotation per image.
+    assert all("bbox" not in a for a in anns)
+    assert all(len(coco.getAnnIds(imgIds=[i])) == 1 for i in coco.getImgIds())
+    cats = coco.loadCats(coco.getCatIds())
+    assert [c["name"] for c in cats] == sorted(set(labels))  # sorted by name, ids from 1
+    assert [c["id"] for c in cats] == [1, 2, 3, 4]
+    assert {c["supercategory"] for c in cats} == {"photo"}
+    for c in cats:
+        assert len(coco.getImgIds(catIds=[c["id"]])) == labels.count(c["name"])
+    images = coco.loadImgs(coco.getImgIds())
+    assert sorted(i["id"] for i in images) == list(range(1, 12))
+    by_path = {p.path: p for p in photos}
+    for img in images:
+        p = by_path[img["file_name"]]
+        assert (img["width"], img["height"]) == (p.width, p.height)
+        [ann] = coco.loadAnns(coco.getAnnIds(imgIds=[img["id"]]))
+        assert coco.loadCats(ann["category_id"])[0]["name"] == p.label
+    info = coco.dataset["info"]
+    assert info["description"] == "drawers" and info["year"] == 2026
+    assert info["date_created"] == "2026-12-02T08:00:00Z" and "version" in info
+    assert isinstance(coco.dataset["licenses"], list)
+
+
+def test_coco_failure_keeps_previous_file(tmp_path, monkeypatch):
+    out = tmp_path / "coco.json"
+    export_coco(out, [photo("old.jpg", "old")])
+    before = out.read_bytes()
+
+    def half_dump(obj, f, **kwargs):
+        f.write('{"images": [')
+        raise RuntimeError("interrupted")
+
+    monkeypatch.setattr(export.json, "dump", half_dump)
+    with pytest.raises(RuntimeError, match="interrupted"):
+        export_coco(out, [photo("new.jpg", "new")])
+    monkeypatch.undo()
+    assert out.read_bytes() == before and entries(tmp_path) == ["coco.json"]
+    with pytest.raises(ExportError, match="not an ISO 8601 date"):
+        export_coco(out, [photo("new.jpg", "new")], date_created="yesterday")
+
+
+# ---------------------------------------------------------------------------- split
+
+def burst_photos():
+    """Three labels of 60, 30 and 12 photos; some photos come in bursts of 2 to 4."""
+    rng, photos, burst = random.Random(7), [], 0
+    for label, n in (("washer", 60), ("bolt", 30), ("spring", 12)):
+        i = 0
+        while i < n:
+            size = min(rng.choice([1, 1, 1, 2, 3, 4]), n - i)
+            b = None if size == 1 else (burst := burst + 1)
+            photos += [photo(f"{label}/{i + k:03d}.jpg", label, b) for k in range(size)]
+            i += size
+    return photos
+
+
+def test_split_is_stratified_and_keeps_bursts_together():
+    photos = burst_photos()
+    split = stratified_split(photos, (0.8, 0.1, 0.1), seed=3)
+    assert sorted(p.path for ps in split.values() for p in ps) == sorted(p.path for p in photos)
+    side = {p.path: name for name, ps in split.items() for p in ps}
+    for b in {p.burst for p in photos if p.burst is not None}:
+        assert len({side[p.path] for p in photos if p.burst == b}) == 1
+    # Documented rule (stratified_split): each split within one unit (here <= 4 photos) of
+    # its share of each label.
+    for label, n in Counter(p.label for p in photos).items():
+        for name, fraction in zip(("train", "val", "test"), (0.8, 0.1, 0.1)):
+            got = sum(p.label == label for p in split[name])
+            assert abs(got - fraction * n) <= 4, (label, name, got)
+    assert stratified_split(photos, (0.8, 0.1, 0.1), seed=3) == split
+    assert stratified_split(list(reversed(photos)), (0.8, 0.1, 0.1), seed=3) == split
+    assert stratified_split(photos, (0.8, 0.1, 0.1), seed=4) != split
+
+
+def test_split_small_labels_and_mixed_bursts():
+    photos = [photo("one.jpg", "rare"), photo("two-a.jpg", "pair"), photo("two-b.jpg", "pair"),
+              photo("m1.jpg", "x", burst=9), photo("m2.jpg", "x", burst=9),
+              photo("m3.jpg", "y", burst=9)]
+    split = stratified_split(photos, (0.8, 0.1, 0.1))
+    # Documented rule: 1 to 3 photos of a label stay in the largest split.
+    assert [p.path for p in split["train"]] == ["m1.jpg", "m2.jpg", "m3.jpg", "one.jpg",
+                                                 "two-a.jpg", "two-b.jpg"]
+    assert split["val"] == [] and split["test"] == []
+    named = stratified_split([photo(f"{i}.jpg", "a") for i in range(10)], {"fit": 0.5, "hold": 0.5})
+    assert [len(v) for v in named.values()] == [5, 5]
+    for bad in [(0.5, 0.4), (1.2, -0.2), (0.25,) * 4, {"../x": 1.0}]:
+        with pytest.raises(ExportError):
+            stratified_split(photos, bad)
+
+
+# ---------------------------------------------------------------------------- class folders
+
+LABELS = ["a/b", "a_b", "..", "CON", "Cat", "cat", "Åsa", "ok"]
+
+
+@pytest.fixture
+def source(tmp_path):
+    """Real PNG and JPEG photos written by Pillow, with clashing file names in one label."""
+    root = tmp_path / "photos"
+    photos, rng = [], random.Random(0)
+    for li, label in enumerate(LABELS):
+        for i in range(3 + li % 3):
+            ext = "png" if i % 2 else "jpg"
+            rel = f"shelf{i % 2}/{li}-{i}.{ext}"
+            if label == "ok" and i < 2:
+                rel = f"shelf{i}/same.png"  # same file name twice inside one class folder
+            w, h = 16 + i, 12 + li
+            (root / rel).parent.mkdir(parents=True, exist_ok=True)
+            Image.new("RGB", (w, h), (rng.randrange(256), 20 * li, 40)).save(root / rel)
+            photos.append(photo(rel, label, width=w, height=h))
+    return root, photos
+
+
+def image_folder_counts(root):
+    from torchvision.datasets import ImageFolder
+
+    # Outside reference: torchvision's ImageFolder reads the class-folder tree.
+    ds = ImageFolder(str(root))
+    image, _ = ds[0]
+    assert image.size[0] > 0  # the photo decodes through the link or copy
+    return {cls: n for cls, n in Counter(ds.classes[t] for t in ds.targets).items()}
+
+
+def test_image_folder_loads_linked_tree(tmp_path, source):
+    root, photos = source
+    out = tmp_path / "out" / "set"
+    out.parent.mkdir()
+    counts = export_folders(out, photos, root)
+    expected = Counter(p.label for p in photos)
+    assert counts == dict(expected)
+    names = folder_names(expected)
+    assert len(set(names.values())) == len(LABELS)
+    assert {names[label]: n for label, n in expected.items()} == image_folder_counts(out)
+    assert all(".." not in n and "/" not in n and not n.startswith(".") for n in names.values())
+    assert names["CON"] == "CON_" and names["ok"] == "ok" and names["Åsa"] == "Åsa"
+    # Windows device names count with an extension too (Microsoft's file-naming rules, from
+    # memory); control characters are not allowed in Windows names either.
+    assert safe_folder_name("con.txt") == "con_.txt" and safe_folder_name("a\nb") == "a_b"
+    files = [f for f in out.rglob("*") if f.is_file() and f.name != export.MARKER_NAME]
+    assert len(files) == len(photos) and all(f.is_symlink() for f in files)
+    assert sorted(f.name for f in (out / "ok").iterdir() if "same" in f.name) == sorted(
+        f"{export._short_hash(p)}_{Path(p).name}" for p in ("shelf0/same.png", "shelf1/same.png"))
+    assert entries(out.parent) == ["set"]  # nothing left beside it
+    assert json.loads((out / export.MARKER_NAME).read_text("utf-8"))["folders"] == names
+
+
+def test_image_folder_loads_split_tree_per_split(tmp_path, source):
+    root, photos = source
+    photos = [photo(p.path, p.label, burst=i // 2 if p.label == "Åsa" else None,
+                    width=p.width, height=p.height) for i, p in enumerate(photos)]
+    out = tmp_path / "set"
+    counts = export_folders(out, photos, root, split=(0.6, 0.4), seed=5, mode="copy")
+    expected = stratified_split(photos, (0.6, 0.4), seed=5)
+    names = folder_names(p.label for p in photos)
+    assert set(counts) == {"train", "val"}
+    for part, members in expected.items():
+        want = Counter(names[p.label] for p in members)
+        assert image_folder_counts(out / part) == dict(want)
+        assert counts[part] == dict(Counter(p.label for p in members))
+    files = [f for f in out.rglob("*") if f.is_file() and f.name != export.MARKER_NAME]
+    assert files and not any(f.is_symlink() for f in files)
+    # Bursts stay on one side: find each exported copy's split by its bytes.
+    side = {}
+    for f in files:
+        for p in photos:
+            if (root / p.path).read_bytes() == f.read_bytes():
+                side[p.path] = f.relative_to(out).parts[0]
+    for b in {p.burst for p in photos if p.burst is not None}:
+        assert len({side[p.path] for p in photos if p.burst == b}) == 1
+
+
+def test_link_failure_falls_back_to_copy(tmp_path, source, monkeypatch):
+    root, photos = source
+
+    def no_links(*args, **kwargs):
+        raise OSError(1, "Operation not permitted")
+
+    monkeypatch.setattr(export.os, "symlink", no_links)
+    out = tmp_path / "set"
+    export_folders(out, photos, root)
+    files = [f for f in out.rglob("*") if f.is_file() and f.name != export.MARKER_NAME]
+    assert len(files) == len(photos) and not any(f.is_symlink() for f in files)
+    assert sum(image_folder_counts(out).values()) == len(photos)
+
+
+def test_refuses_foreign_folder_and_replaces_previous_export(tmp_path, source):
+    root, photos = source
+    foreign = tmp_path / "mine"
+    foreign.mkdir()
+    (foreign / "notes.txt").write_text("keep me")
+    with pytest.raises(ExportError, match="not empty and is not a previous Kinfold export"):
+        export_folders(foreign, photos, root)
+    assert entries(foreign) == ["notes.txt"]
+    with pytest.raises(ExportError, match="inside the photo folder"):
+        export_folders(root / "export", photos, root)
+    with pytest.raises(ExportError, match="would be replaced"):
+        export_folders(tmp_path, photos, root)
+
+    out = tmp_path / "set"
+    assert {p.label for p in photos[:3]} == {"a/b"}
+    export_folders(out, photos[:3], root)
+    assert folder_names(["a/b"])["a/b"] in entries(out)
+    export_folders(out, photos[3:], root)  # a previous export is replaced whole
+    assert folder_names(LABELS)["a/b"] not in entries(out)
+    assert sum(image_folder_counts(out).values()) == len(photos) - 3
+    assert sorted(entries(tmp_path)) == ["mine", "photos", "set"]
+
+
+def test_failures_leave_previous_export_intact(tmp_path, source, monkeypatch):
+    root, photos = source
+    out = tmp_path / "set"
+    export_folders(out, photos[:4], root, mode="copy")
+    snapshot = sorted(str(p.relative_to(out)) for p in out.rglob("*"))
+
+    (root / photos[5].path).unlink()
+    with pytest.raises(ExportError, match=f"1 photo\\(s\\) missing .*{photos[5].path}"):
+        export_folders(out, photos, root, mode="copy")
+    assert sorted(str(p.relative_to(out)) for p in out.rglob("*")) == snapshot
+
+    real_copy, calls = shutil.copy2, []
+
+    def failing_copy(src, dst, **kwargs):
+        calls.append(src)
+        if len(calls) == 3:
+            raise OSError(28, "No space left on device")
+        return real_copy(src, dst, **kwargs)
+
+    monkeypatch.setattr(export.shutil, "copy2", failing_copy)
+    rest = [p for p in photos if p != photos[5]]
+    with pytest.raises(ExportError, match="could not copy .*No space left on device"):
+        export_folders(out, rest, root, mode="copy")
+    assert sorted(str(p.relative_to(out)) for p in out.rglob("*")) == snapshot
+    assert sorted(entries(tmp_path)) == ["photos", "set"]  # no half-written temp folder
+    monkeypatch.undo()
+    assert sum(image_folder_counts(out).values()) == 4

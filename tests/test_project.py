@@ -1,0 +1,165 @@
+"""The Project verbs: decisions, persistence, undo, bad input, and the catalogue's bookkeeping."""
+import json
+import shutil
+import subprocess
+import sys
+from collections import Counter
+
+import numpy as np
+import pytest
+
+from core.project import Project, ProjectError
+
+
+def truth_of(path: str) -> str:
+    return path.split("/")[-1].split("_")[0]
+
+
+def test_scan_reports_broken_and_non_image_files(photo_project_folder):
+    with Project.open(photo_project_folder) as p:
+        rep = p.scan()
+        reasons = dict(rep.skipped)
+        assert rep.photos == 30
+        assert "truncated" in reasons["b/broken.jpg"] or "cut short" in reasons["b/broken.jpg"]
+        assert reasons["notes.txt"].startswith("not a photo")
+        assert rep.embedded == 0          # everything was embedded by the template scan
+
+
+def test_proposals_are_disjoint_capped_and_ordered(photo_project_folder):
+    with Project.open(photo_project_folder) as p:
+        groups = p.propose(limit=20)
+        seen = Counter(m for g in groups for m in g.members)
+        assert seen and max(seen.values()) == 1           # a photo sits in at most one group
+        assert all(1 <= len(g.members) <= 48 for g in groups)
+        assert all(0.0 <= g.trust <= 1.0 for g in groups)
+        assert sum(seen.values()) == 30                    # every photo is proposed somewhere
+        # The six source photos are far apart: the first groups are each one source photo's variants.
+        first = groups[0]
+        assert len({truth_of(m) for m in first.members}) == 1 and len(first.members) >= 3
+
+
+def test_accept_with_drop_and_suggested_label_and_reopen(photo_project_folder):
+    with Project.open(photo_project_folder, annotator="ana") as p:
+        g = p.propose(limit=5)[0]
+        cls = truth_of(g.members[0])
+        p.accept(g.id, cls, drop=g.members[-1:])
+        st = p.status()
+        assert st.by_label == {cls: len(g.members) - 1}
+        with pytest.raises(ProjectError, match="no longer open"):
+            p.accept(g.id, cls)
+        # The dropped photo was said not to be `cls`, so it is never proposed under that label.
+        for h in p.propose(limit=20):
+            if g.members[-1] in h.members:
+                assert h.suggested_label != cls or h.kind == "new area"
+    # Decisions survive closing and reopening.
+    with Project.open(photo_project_folder) as p:
+        st = p.status()
+        assert st.by_label == {cls: len(g.members) - 1}
+        log = p.store.decisions()
+        assert log[-1]["kind"] == "accept" and log[-1]["annotator"] == "ana" and log[-1]["label"] == cls
+
+
+def test_undo_walks_back_several_steps(photo_project_folder):
+    with Project.open(photo_project_folder) as p:
+        g1 = p.propose(limit=5)[0]
+        p.accept(g1.id, "first")
+        g2 = p.propose(limit=5)[0]
+        p.accept(g2.id, "second")
+        p.set_aside([p.propose(limit=1)[0].members[0]])
+        assert p.status().set_aside == 1
+        assert p.undo()["kind"] == "set_aside"
+        assert p.status().set_aside == 0 and set(p.status().by_label) == {"first", "second"}
+        assert p.undo()["kind"] == "accept"
+        assert set(p.status().by_label) == {"first"}
+        # The undone group comes back first, as it was.
+        assert p.propose(limit=3)[0].members == g2.members
+        assert p.undo()["kind"] == "accept"
+        assert p.status().labelled == 0
+        assert p.undo() is None
+
+
+def test_label_relabel_clear_and_review(photo_project_folder):
+    with Project.open(photo_project_folder) as p:
+        photos = p.photos()
+        cats = [q for q in photos if truth_of(q) == "chelsea"]
+        p.label(cats + ["b/coins_0.jpg"], "cat")
+        review = p.review("cat")
+        assert review[0][0] == "b/coins_0.jpg"             # the odd one out is least typical
+        p.label(["b/coins_0.jpg"], "coins")
+        assert p.status().by_label == {"cat": 5, "coins": 1}
+        assert p.store.labels()[p.photo_info("b/coins_0.jpg")["fingerprint"]].how == "relabel"
+        p.clear(["b/coins_0.jpg"])
+        assert p.status().by_label == {"cat": 5}
+        with pytest.raises(ProjectError, match="not a photo"):
+            p.label(["nope.jpg"], "x")
+        with pytest.raises(ProjectError, match="empty"):
+            p.label(cats, "   ")
+
+
+def test_split_gives_two_parts_shown_first(photo_project_folder):
+    with Project.open(photo_project_folder) as p:
+        photos = p.photos()
+        mixed = [q for q in photos if truth_of(q) in ("chelsea", "rocket")]
+        # Make a mixed group the way the engine would offer one: through a stored proposal.
+        gid = p.store.replace_open_proposals([dict(members=mixed, trust=0.5, kind="new area")])[0]
+        parts = p.split(gid)
+        assert len(parts) == 2
+        assert sorted(m for g in parts for m in g.members) == sorted(mixed)
+        assert all(len({truth_of(m) for m in g.members}) == 1 for g in parts)
+        nxt = p.propose(limit=5)
+        assert [g.id for g in nxt[:2]] == [g.id for g in parts]
+
+
+def test_rename_keeps_label_and_edit_reembeds(photo_project_folder):
+    with Project.open(photo_project_folder) as p:
+        p.label(["a/chelsea_0.jpg"], "cat")
+    (photo_project_folder / "a" / "chelsea_0.jpg").rename(photo_project_folder / "moved.jpg")
+    shutil.copy(photo_project_folder / "b" / "rocket_1.jpg", photo_project_folder / "new.jpg")
+    with open(photo_project_folder / "b" / "coins_0.jpg", "ab") as f:
+        f.write(b"\0")                                     # same photo, different bytes
+    with Project.open(photo_project_folder) as p:
+        rep = p.scan()
+        assert rep.new == 2 and rep.changed == 1 and rep.removed == 1
+        assert rep.embedded == 1                           # new.jpg has rocket_1's bytes: already embedded
+        assert p.photo_info("moved.jpg")["label"] == "cat"
+        assert p.status().photos == 31
+
+
+def test_second_open_is_refused_while_locked(photo_project_folder):
+    with Project.open(photo_project_folder):
+        with pytest.raises(ProjectError, match="already open"):
+            Project.open(photo_project_folder)
+    Project.open(photo_project_folder).close()
+
+
+def test_separate_store_for_read_only_folder(photo_project_folder, tmp_path):
+    store = tmp_path / "elsewhere"
+    with Project.open(photo_project_folder, store=store) as p:
+        assert p.store.directory == store.resolve()
+
+
+def test_core_imports_without_qt():
+    code = ("import sys; import core.project, core.cli, core.export, core.proposals, core.neighbours; "
+            "bad = [m for m in sys.modules if m.startswith(('PySide6', 'shiboken6', 'PyQt'))]; "
+            "print(bad); sys.exit(1 if bad else 0)")
+    assert subprocess.run([sys.executable, "-c", code]).returncode == 0
+
+
+def test_cli_round_trip_and_bad_input(photo_project_folder, tmp_path):
+    def kinfold(*args):
+        return subprocess.run([sys.executable, "-m", "core.cli", *args], capture_output=True, text=True)
+
+    r = kinfold("propose", str(photo_project_folder), "--json", "--limit", "3")
+    assert r.returncode == 0, r.stderr
+    groups = json.loads(r.stdout)
+    g = groups[0]
+    r = kinfold("accept", str(photo_project_folder), str(g["id"]), "thing", "--json")
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout)["by_label"] == {"thing": len(g["members"])}
+    csv_path = tmp_path / "out.csv"
+    r = kinfold("export", str(photo_project_folder), "--csv", str(csv_path), "--json")
+    assert r.returncode == 0 and json.loads(r.stdout)["csv"]["rows"] == len(g["members"])
+    r = kinfold("status", str(tmp_path / "missing"))
+    assert r.returncode == 1 and r.stderr.count("\n") == 1 and "not a folder" in r.stderr
+    r = kinfold("accept", str(photo_project_folder), "99999", "x")
+    assert r.returncode == 1 and "no group 99999" in r.stderr
