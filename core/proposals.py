@@ -37,6 +37,7 @@ class Settings:
     unknown_prior: float = 0.05      # mass of the "unknown" column each unlabelled photo feeds
     min_confidence: float = 0.5      # below this, a photo is left to new-area groups
     explore_every: int = 3           # a new-area group at least every this many places
+    min_shared: int = 0              # new-area member must share this many of its 10 nearest with the anchor
 
 
 @dataclass
@@ -153,6 +154,10 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
             continue
         nb = graph.idx[a, :k]
         ok = graph.mutual[a, :k] & (nb >= 0) & (graph.sims[a, :k] >= s.min_mutual_sim)
+        if s.min_shared > 0:
+            near_a = graph.idx[a, :10]
+            shared = (graph.idx[np.maximum(nb, 0), :10][:, :, None] == near_a[None, None, :]).any(2).sum(1)
+            ok &= shared >= s.min_shared
         members = _fill([a] + [int(j) for j in nb[ok]], graph, available, s.max_group)
         # Trust: how certain the anchor's neighbourhood is (entropy rank) and how many of its
         # ten nearest are mutual neighbours (agreement).
