@@ -51,3 +51,15 @@ def photo_project_folder(scanned_template, tmp_path):
     dest = tmp_path / "photos"
     shutil.copytree(scanned_template, dest, symlinks=True)
     return dest
+
+
+@pytest.fixture(scope="session")
+def scanned_demo(tmp_path_factory):
+    """A scanned copy of the demo folder (sample_images/), made once per test session."""
+    from core.project import Project
+
+    dest = tmp_path_factory.mktemp("demo") / "sample_images"
+    shutil.copytree(ROOT / "sample_images", dest)
+    with Project.open(dest, annotator="tester") as p:
+        p.scan()
+    return dest
