@@ -260,7 +260,7 @@ def main(argv=None) -> int:
 def _reset_decisions(p: Project) -> None:
     """Start each run from no labels: a fresh store would re-embed, so the labels are wiped instead."""
     with p.store.transaction() as db:
-        for t in ("labels", "decisions", "proposals", "deferred", "relearn_versions"):
+        for t in ("labels", "decisions", "proposals", "deferred", "rejections", "relearn_versions"):
             db.execute(f"DELETE FROM {t}")
     p._graph = None
 

@@ -31,11 +31,11 @@ class Settings:
     max_group: int = MAX_GROUP
     mutual_k: int = 20               # neighbours considered for a new-area group (tuned on Fashion-MNIST 2,000)
     min_mutual_sim: float = 0.0      # floor on similarity to the anchor in a new-area group
-    propagation_k: int = 10          # graph degree used for label propagation
+    propagation_k: int = 5           # graph degree used for label propagation
     alpha: float = 0.9               # diffusion: weight of the neighbours against the seed labels
     iterations: int = 20
     unknown_prior: float = 0.05      # mass of the "unknown" column each unlabelled photo feeds
-    min_confidence: float = 0.5      # below this, a photo is left to new-area groups
+    min_confidence: float = 0.7      # below this, a photo is left to new-area groups
     explore_every: int = 3           # a new-area group at least every this many places
     min_shared: int = 2              # new-area member must share this many of its 10 nearest with the anchor
 
