@@ -1,0 +1,191 @@
+"""Export: CSV, COCO JSON and/or class folders (optionally split train/val/test) into one destination
+folder, written in a worker; the dialog then says what was written."""
+from __future__ import annotations
+
+from pathlib import Path
+
+from PySide6.QtWidgets import (QCheckBox, QDialog, QDoubleSpinBox, QFileDialog, QFormLayout, QHBoxLayout,
+                               QLabel, QLineEdit, QPushButton, QRadioButton, QVBoxLayout, QWidget)
+
+from app.jobs import Job, JobProgress
+
+CSV_NAME, COCO_NAME, FOLDERS_NAME = "labels.csv", "labels.coco.json", "classes"
+
+
+def _count_text(counts: dict) -> str:
+    return ", ".join(f"{k} {v}" for k, v in counts.items())
+
+
+def export_report(written: dict) -> str:
+    lines = []
+    if "csv" in written:
+        lines.append(f"CSV: {written['csv']['rows']} rows → {written['csv']['path']}")
+    if "coco" in written:
+        w = written["coco"]
+        lines.append(f"COCO JSON: {w['images']} images, {w['annotations']} annotations, "
+                     f"{w['categories']} categories → {w['path']}")
+    if "folders" in written:
+        w = written["folders"]
+        counts = w["counts"]
+        if counts and isinstance(next(iter(counts.values())), dict):
+            for part, by_label in counts.items():
+                lines.append(f"folders/{part}: {sum(by_label.values())} photos in {len(by_label)} classes")
+        else:
+            lines.append(f"folders: {sum(counts.values())} photos in {len(counts)} classes")
+        lines.append(f"    → {w['path']}")
+    return "\n".join(lines)
+
+
+def run_export(project, destination: Path, csv: bool, coco: bool, folders: bool, split, mode: str,
+               progress, cancel) -> dict:
+    steps = [s for s, on in (("csv", csv), ("coco", coco), ("folders", folders)) if on]
+    written: dict = {}
+    destination.mkdir(parents=True, exist_ok=True)
+    for i, step in enumerate(steps):
+        if cancel():
+            break
+        progress(i, len(steps), f"writing {step}")
+        if step == "csv":
+            path = destination / CSV_NAME
+            written["csv"] = {"path": str(path), "rows": project.export_csv(path)}
+        elif step == "coco":
+            path = destination / COCO_NAME
+            written["coco"] = {"path": str(path), **project.export_coco(path)}
+        else:
+            path = destination / FOLDERS_NAME
+            written["folders"] = {"path": str(path), "counts": project.export_folders(path, split=split, mode=mode)}
+    progress(len(steps), len(steps), "done")
+    return written
+
+
+class ExportDialog(QDialog):
+    def __init__(self, project, parent=None, on_written=None):
+        super().__init__(parent)
+        self.project = project
+        self.on_written = on_written
+        self.job: Job | None = None
+        self.written: dict | None = None
+        self.setWindowTitle("Export labels")
+        self.setMinimumWidth(720)
+        folder = Path(project.folder)
+        self.destination = QLineEdit(str(folder.parent / f"{folder.name}-labels"))
+        choose = QPushButton("Choose…")
+        self.csv = QCheckBox(f"CSV table ({CSV_NAME})")
+        self.coco = QCheckBox(f"COCO JSON ({COCO_NAME})")
+        self.folders = QCheckBox(f"Class folders ({FOLDERS_NAME}/<label>/…)")
+        for box in (self.csv, self.coco, self.folders):
+            box.setChecked(True)
+        self.split = QCheckBox("Split into train / val / test")
+        self.fractions = [QDoubleSpinBox() for _ in range(3)]
+        for spin, value in zip(self.fractions, (0.8, 0.1, 0.1)):
+            spin.setRange(0.0, 1.0)
+            spin.setSingleStep(0.05)
+            spin.setDecimals(2)
+            spin.setValue(value)
+        self.link = QRadioButton("links to the photos")
+        self.copy = QRadioButton("copies")
+        self.link.setChecked(True)
+        self.progress = JobProgress(unit="steps")
+        self.progress.hide()
+        self.report = QLabel()
+        self.report.setWordWrap(True)
+        self.report.setObjectName("muted")
+        self.run = QPushButton("Export")
+        self.run.setObjectName("primary")
+        self.run.setDefault(True)
+        close = QPushButton("Close")
+
+        dest_row = QHBoxLayout()
+        dest_row.addWidget(self.destination, 1)
+        dest_row.addWidget(choose)
+        fraction_row = QHBoxLayout()
+        for name, spin in zip(("train", "val", "test"), self.fractions):
+            fraction_row.addWidget(QLabel(name))
+            fraction_row.addWidget(spin)
+            fraction_row.addSpacing(8)
+        fraction_row.addStretch(1)
+        split_row = QVBoxLayout()
+        split_row.addWidget(self.split)
+        split_row.addLayout(fraction_row)
+        mode_row = QHBoxLayout()
+        mode_row.addWidget(self.link)
+        mode_row.addWidget(self.copy)
+        mode_row.addStretch(1)
+        form = QFormLayout()
+        form.addRow("Destination", dest_row)
+        what = QVBoxLayout()
+        for box in (self.csv, self.coco, self.folders):
+            what.addWidget(box)
+        what_w = QWidget()
+        what_w.setLayout(what)
+        form.addRow("Write", what_w)
+        form.addRow("Folders", split_row)
+        form.addRow("Photos as", mode_row)
+        buttons = QHBoxLayout()
+        buttons.addStretch(1)
+        buttons.addWidget(close)
+        buttons.addWidget(self.run)
+        lay = QVBoxLayout(self)
+        lay.addLayout(form)
+        lay.addWidget(self.progress)
+        lay.addWidget(self.report)
+        lay.addLayout(buttons)
+
+        choose.clicked.connect(self._choose)
+        self.run.clicked.connect(self.start)
+        close.clicked.connect(self.reject)
+        self.folders.toggled.connect(self._sync)
+        self.split.toggled.connect(self._sync)
+        self._sync()
+
+    def _sync(self) -> None:
+        self.split.setEnabled(self.folders.isChecked())
+        for spin in self.fractions:
+            spin.setEnabled(self.folders.isChecked() and self.split.isChecked())
+        self.link.setEnabled(self.folders.isChecked())
+        self.copy.setEnabled(self.folders.isChecked())
+
+    def _choose(self) -> None:
+        d = QFileDialog.getExistingDirectory(self, "Export into", self.destination.text())
+        if d:
+            self.destination.setText(d)
+
+    def start(self) -> Job | None:
+        if not (self.csv.isChecked() or self.coco.isChecked() or self.folders.isChecked()):
+            self.report.setText("⚠  choose at least one thing to write")
+            return None
+        text = self.destination.text().strip()
+        if not text:
+            self.report.setText("⚠  choose a destination folder")
+            return None
+        split = (tuple(s.value() for s in self.fractions)
+                 if self.folders.isChecked() and self.split.isChecked() else None)
+        args = (self.project, Path(text).expanduser(), self.csv.isChecked(), self.coco.isChecked(),
+                self.folders.isChecked(), split, "copy" if self.copy.isChecked() else "link")
+        self.job = Job("exporting", lambda progress, cancel: run_export(*args, progress, cancel), self)
+        self.progress.show()
+        self.progress.attach(self.job)
+        self.run.setEnabled(False)
+        self.report.setText("")
+        self.job.finished.connect(self._finished)
+        self.job.failed.connect(self._failed)
+        return self.job.start()
+
+    def _finished(self, written: dict) -> None:
+        self.written = written
+        self.progress.hide()
+        self.run.setEnabled(True)
+        self.report.setText("Written:\n" + export_report(written))
+        if self.on_written:
+            self.on_written(written)
+
+    def _failed(self, message: str) -> None:
+        self.progress.hide()
+        self.run.setEnabled(True)
+        self.report.setText(f"⚠  {message}\nNothing else was changed.")
+
+    def reject(self) -> None:
+        if self.job is not None and not self.job.wait(0):
+            self.job.cancel()
+            self.job.wait(30)
+        super().reject()

@@ -1,0 +1,75 @@
+"""The shortcut sheet (F1 or ?): drawn over the window from the window's own actions."""
+from __future__ import annotations
+
+from PySide6.QtCore import QRectF, Qt
+from PySide6.QtGui import QColor, QFont, QFontMetrics, QPainter
+from PySide6.QtWidgets import QWidget
+
+from app import theme
+
+# Keys the grid understands without a menu action.
+GRID_KEYS = [("Arrow keys", "move between photos"),
+             ("Any letter", "start typing a label"),
+             ("Tab", "move to the label field"),
+             ("Esc", "back from the label field / close a view")]
+
+
+class HelpOverlay(QWidget):
+    def __init__(self, parent: QWidget, sections):
+        """`sections`: [(title, [(keys, what)])]."""
+        super().__init__(parent)
+        self.sections = sections
+        self.setFocusPolicy(Qt.FocusPolicy.StrongFocus)
+        self.hide()
+
+    def toggle(self) -> None:
+        if self.isVisible():
+            self.hide()
+            return
+        self.setGeometry(self.parentWidget().rect())
+        self.show()
+        self.raise_()
+        self.setFocus()
+
+    def keyPressEvent(self, event):
+        self.hide()
+
+    def mousePressEvent(self, event):
+        self.hide()
+
+    def paintEvent(self, event):
+        p = QPainter(self)
+        p.setRenderHint(QPainter.RenderHint.Antialiasing)
+        p.fillRect(self.rect(), QColor(36, 41, 46, 150))
+        font = QFont(self.font())
+        fm = QFontMetrics(font)
+        line = fm.height() + 6
+        width = min(self.width() - 40, 620)
+        height = min(self.height() - 40, 18 + line + 6 + sum((len(keys) + 1) * line + 8 for _, keys in self.sections) + 12)
+        card = QRectF((self.width() - width) / 2, (self.height() - height) / 2, width, height)
+        p.setPen(QColor(theme.LINE))
+        p.setBrush(QColor(theme.SURFACE))
+        p.drawRoundedRect(card, 10, 10)
+        y = card.top() + 18
+        bold = QFont(font)
+        bold.setBold(True)
+        p.setFont(bold)
+        p.setPen(QColor(theme.INK))
+        p.drawText(QRectF(card.left() + 24, y, width - 48, line), "Keyboard — any key closes this sheet")
+        y += line + 6
+        key_w = 170
+        for title, keys in self.sections:
+            p.setFont(bold)
+            p.setPen(QColor(theme.MUTED))
+            p.drawText(QRectF(card.left() + 24, y, width - 48, line), title.upper())
+            y += line
+            for k, what in keys:
+                p.setFont(bold)
+                p.setPen(QColor(theme.ACCENT))
+                p.drawText(QRectF(card.left() + 24, y, key_w, line), k)
+                p.setFont(font)
+                p.setPen(QColor(theme.INK))
+                p.drawText(QRectF(card.left() + 24 + key_w, y, width - 48 - key_w, line), what)
+                y += line
+            y += 8
+        p.end()

@@ -1,0 +1,268 @@
+"""A grid of photo thumbnails: list model, card painter and view, shared by the group, review and
+preview screens. Taken-out photos are greyed, struck through, badged with an X and captioned
+"taken out", so the state never rests on colour alone."""
+from __future__ import annotations
+
+import math
+from pathlib import PurePosixPath
+
+from PySide6.QtCore import QAbstractListModel, QModelIndex, QPoint, QRect, QSize, Qt, Signal
+from PySide6.QtGui import QColor, QFont, QFontMetrics, QPainter, QPen
+from PySide6.QtWidgets import QAbstractItemView, QListView, QStyle, QStyledItemDelegate
+
+from app import theme
+from app.thumbnails import Thumbnails
+
+PATH_ROLE = Qt.ItemDataRole.UserRole + 1
+OUT_ROLE = Qt.ItemDataRole.UserRole + 2
+NOTE_ROLE = Qt.ItemDataRole.UserRole + 3
+
+PAD = 6
+SPACING = 8
+MIN_SIDE, MAX_SIDE = 112, 360   # rule of thumb: below ~110 px parts become hard to tell apart
+BOX_RATIO = 0.75                # thumbnail boxes are 4:3, the shape of most camera photos
+
+
+def box_height(side: int) -> int:
+    return round(side * BOX_RATIO)
+
+
+class PhotoModel(QAbstractListModel):
+    def __init__(self, thumbs: Thumbnails, parent=None):
+        super().__init__(parent)
+        self.thumbs = thumbs
+        self.paths: list[str] = []
+        self.notes: list[str] = []
+        self.out: set[str] = set()
+        self.side = 160
+        self._rows: dict[str, list[int]] = {}
+        thumbs.ready.connect(self._thumb_ready)
+
+    def set_photos(self, paths, notes=None) -> None:
+        self.beginResetModel()
+        self.paths = list(paths)
+        self.notes = list(notes) if notes is not None else [""] * len(self.paths)
+        self.out = set()
+        self._rows = {}
+        for i, p in enumerate(self.paths):
+            self._rows.setdefault(p, []).append(i)
+        self.endResetModel()
+
+    def set_side(self, side: int) -> None:
+        if side != self.side:
+            self.side = side
+            self.layoutChanged.emit()
+
+    def toggle(self, row: int) -> None:
+        p = self.paths[row]
+        self.out.symmetric_difference_update({p})
+        idx = self.index(row)
+        self.dataChanged.emit(idx, idx, [OUT_ROLE])
+
+    def taken_out(self) -> list[str]:
+        return [p for p in self.paths if p in self.out]
+
+    def rowCount(self, parent=QModelIndex()):
+        return 0 if parent.isValid() else len(self.paths)
+
+    def data(self, index, role=Qt.ItemDataRole.DisplayRole):
+        if not index.isValid():
+            return None
+        p = self.paths[index.row()]
+        if role == Qt.ItemDataRole.DisplayRole:
+            return PurePosixPath(p).name
+        if role == Qt.ItemDataRole.DecorationRole:
+            return self.thumbs.pixmap(p, self.side)
+        if role == PATH_ROLE:
+            return p
+        if role == OUT_ROLE:
+            return p in self.out
+        if role == NOTE_ROLE:
+            return self.notes[index.row()]
+        if role == Qt.ItemDataRole.ToolTipRole:
+            note = self.notes[index.row()]
+            return p + ("  (taken out)" if p in self.out else "") + (f"\n{note}" if note else "")
+        if role == Qt.ItemDataRole.AccessibleTextRole:
+            return PurePosixPath(p).name + (", taken out" if p in self.out else "")
+        return None
+
+    def _thumb_ready(self, rel: str) -> None:
+        for r in self._rows.get(rel, ()):
+            idx = self.index(r)
+            self.dataChanged.emit(idx, idx, [Qt.ItemDataRole.DecorationRole])
+
+
+class PhotoCard(QStyledItemDelegate):
+    """One card: thumbnail in a square box, file name, optional note line."""
+
+    def __init__(self, parent=None, notes: bool = False):
+        super().__init__(parent)
+        self.notes = notes
+
+    def _lines(self) -> int:
+        return 2 if self.notes else 1
+
+    def sizeHint(self, option, index):
+        side = index.model().side
+        fm = QFontMetrics(option.font)
+        return QSize(side + 2 * PAD, box_height(side) + 2 * PAD + self._lines() * (fm.height() + 2))
+
+    def paint(self, painter: QPainter, option, index):
+        painter.save()
+        painter.setRenderHint(QPainter.RenderHint.Antialiasing)
+        r = option.rect.adjusted(1, 1, -1, -1)
+        side = index.model().side
+        out = bool(index.data(OUT_ROLE))
+        selected = bool(option.state & QStyle.StateFlag.State_Selected)
+        current = bool(option.state & QStyle.StateFlag.State_HasFocus)
+        painter.setPen(QPen(QColor(theme.LINE), 1))
+        painter.setBrush(QColor(theme.ACCENT_SOFT if selected else theme.SURFACE))
+        painter.drawRoundedRect(r, 6, 6)
+
+        box = QRect(r.left() + PAD - 1, r.top() + PAD - 1, side, box_height(side))
+        pm = index.data(Qt.ItemDataRole.DecorationRole)
+        if pm is not None:
+            size = pm.size().scaled(box.size(), Qt.AspectRatioMode.KeepAspectRatio)
+            if pm.width() < box.width() and pm.height() < box.height():
+                size = pm.size()  # never enlarge a small photo
+            target = QRect(0, 0, size.width(), size.height())
+            target.moveCenter(box.center())
+            painter.setOpacity(0.28 if out else 1.0)
+            painter.drawPixmap(target, pm)
+            painter.setOpacity(1.0)
+        else:
+            painter.setPen(QColor(theme.MUTED))
+            unreadable = index.data(PATH_ROLE) in index.model().thumbs.unreadable
+            painter.drawText(box, Qt.AlignmentFlag.AlignCenter, "no preview" if unreadable else "…")
+
+        if out:
+            self._cross_badge(painter, box)
+            self._out_tag(painter, box, option.font)
+        if selected:
+            self._tick_badge(painter, box)
+
+        fm = QFontMetrics(option.font)
+        text_rect = QRect(r.left() + PAD, box.bottom() + 3, r.width() - 2 * PAD, fm.height())
+        font = QFont(option.font)
+        font.setStrikeOut(out)
+        painter.setFont(font)
+        painter.setPen(QColor(theme.MUTED if out else theme.INK))
+        name = str(index.data(Qt.ItemDataRole.DisplayRole))
+        painter.drawText(text_rect, Qt.AlignmentFlag.AlignHCenter,
+                         fm.elidedText(name, Qt.TextElideMode.ElideMiddle, text_rect.width()))
+        if self.notes:
+            font.setStrikeOut(False)
+            painter.setFont(font)
+            painter.setPen(QColor(theme.MUTED))
+            painter.drawText(text_rect.translated(0, fm.height() + 2), Qt.AlignmentFlag.AlignHCenter,
+                             str(index.data(NOTE_ROLE) or ""))
+        if current:  # the keyboard position: a thick outline, visible without colour vision
+            painter.setBrush(Qt.BrushStyle.NoBrush)
+            painter.setPen(QPen(QColor(theme.INK), 3))
+            painter.drawRoundedRect(r.adjusted(1, 1, -1, -1), 6, 6)
+        painter.restore()
+
+    @staticmethod
+    def _badge(painter: QPainter, box: QRect, colour: str) -> QRect:
+        d = max(22, box.width() // 6)
+        badge = QRect(box.right() - d - 4, box.top() + 4, d, d)
+        painter.setPen(QPen(QColor("white"), 2))
+        painter.setBrush(QColor(colour))
+        painter.drawEllipse(badge)
+        return badge
+
+    @staticmethod
+    def _out_tag(painter: QPainter, box: QRect, font: QFont) -> None:
+        bold = QFont(font)
+        bold.setBold(True)
+        fm = QFontMetrics(bold)
+        tag = QRect(0, 0, fm.horizontalAdvance("TAKEN OUT") + 16, fm.height() + 6)
+        tag.moveCenter(box.center())
+        painter.setPen(Qt.PenStyle.NoPen)
+        painter.setBrush(QColor(theme.INK))
+        painter.drawRoundedRect(tag, 4, 4)
+        painter.setPen(QColor("white"))
+        painter.setFont(bold)
+        painter.drawText(tag, Qt.AlignmentFlag.AlignCenter, "TAKEN OUT")
+
+    def _cross_badge(self, painter: QPainter, box: QRect) -> None:
+        b = self._badge(painter, box, theme.PROBLEM).adjusted(7, 7, -7, -7)
+        painter.setPen(QPen(QColor("white"), 3, Qt.PenStyle.SolidLine, Qt.PenCapStyle.RoundCap))
+        painter.drawLine(b.topLeft(), b.bottomRight())
+        painter.drawLine(b.topRight(), b.bottomLeft())
+
+    def _tick_badge(self, painter: QPainter, box: QRect) -> None:
+        b = self._badge(painter, box, theme.ACCENT).adjusted(6, 7, -6, -6)
+        painter.setPen(QPen(QColor("white"), 3, Qt.PenStyle.SolidLine, Qt.PenCapStyle.RoundCap))
+        painter.drawPolyline([QPoint(b.left(), b.center().y()), QPoint(b.center().x() - 1, b.bottom()),
+                              b.topRight()])
+
+
+def fitting_side(width: int, height: int, count: int, extra_height: int,
+                 lo: int = MIN_SIDE, hi: int = MAX_SIDE) -> int:
+    """The largest thumbnail side (step 8 px, so cached sizes get reused) at which `count` cards fit a
+    width x height viewport without scrolling; `lo` when none does (the grid then scrolls). Mirrors
+    QListView's icon layout: cards `SPACING` apart, the first one at the corner."""
+    for side in range(hi, lo - 1, -8):
+        cols = max(1, (width + SPACING) // (side + 2 * PAD + SPACING))
+        rows = math.ceil(max(count, 1) / cols)
+        if rows * (box_height(side) + 2 * PAD + extra_height + SPACING) - SPACING <= height:
+            return side
+    return lo
+
+
+class PhotoGrid(QListView):
+    """Icon-mode list of photo cards. `typed` carries a printable key pressed on the grid (so the
+    window can start a label with it); `opened` a photo double-clicked."""
+
+    typed = Signal(str)
+    opened = Signal(str)
+
+    def __init__(self, model: PhotoModel, parent=None, notes: bool = False, fit: bool = True):
+        super().__init__(parent)
+        self.setModel(model)
+        self.card = PhotoCard(self, notes=notes)
+        self.setItemDelegate(self.card)
+        self.setViewMode(QListView.ViewMode.IconMode)
+        self.setMovement(QListView.Movement.Static)
+        self.setResizeMode(QListView.ResizeMode.Adjust)
+        # Qt caches a uniform card size; a fitted grid changes its size, so only fixed grids use the cache.
+        self.setUniformItemSizes(not fit)
+        self.setSpacing(SPACING // 2)
+        self.setWrapping(True)
+        self.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
+        self.setVerticalScrollMode(QAbstractItemView.ScrollMode.ScrollPerPixel)
+        self.fit = fit
+        self.doubleClicked.connect(lambda idx: self.opened.emit(idx.data(PATH_ROLE)))
+        model.modelReset.connect(self.refit)
+
+    def photo_model(self) -> PhotoModel:
+        return self.model()
+
+    def current_path(self) -> str | None:
+        idx = self.currentIndex()
+        return idx.data(PATH_ROLE) if idx.isValid() else None
+
+    def side_for(self, count: int) -> int:
+        vp = self.viewport().size()
+        extra = self.card._lines() * (QFontMetrics(self.font()).height() + 2)
+        return fitting_side(vp.width(), vp.height(), count, extra)
+
+    def refit(self) -> None:
+        if not self.fit:
+            return
+        self.photo_model().set_side(self.side_for(self.model().rowCount()))
+        if self.model().rowCount() and not self.currentIndex().isValid():
+            self.setCurrentIndex(self.model().index(0))
+
+    def resizeEvent(self, event):
+        super().resizeEvent(event)
+        self.refit()
+
+    def keyPressEvent(self, event):
+        text = event.text()
+        mods = event.modifiers() & ~Qt.KeyboardModifier.ShiftModifier & ~Qt.KeyboardModifier.KeypadModifier
+        if text and text.isprintable() and not text.isspace() and text != "?" and mods == Qt.KeyboardModifier.NoModifier:
+            self.typed.emit(text)
+            return
+        super().keyPressEvent(event)

@@ -1,0 +1,160 @@
+"""Render the main screens to PNG files, from a real session on a copy of the demo folder.
+
+    python -m app.screenshots                      # -> resources/screenshots/*.png
+    python -m app.screenshots --out DIR --folder PHOTOS
+
+Runs without a screen (Qt's offscreen platform unless QT_QPA_PLATFORM says otherwise; xvfb-run works too).
+The demo folder is copied to a temporary place and scanned there, so the originals are not touched.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import sys
+import tempfile
+import time
+from collections import Counter
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+SIZE = (1280, 800)
+
+
+def _wait(app, condition, seconds: float) -> bool:
+    from PySide6.QtCore import QEventLoop
+
+    end = time.monotonic() + seconds
+    while not condition() and time.monotonic() < end:
+        app.processEvents(QEventLoop.ProcessEventsFlag.AllEvents, 30)
+        time.sleep(0.01)
+    return condition()
+
+
+def _settle(app, seconds: float = 0.8) -> None:
+    _wait(app, lambda: False, seconds)  # let thumbnails arrive and repaint
+
+
+def _save(widget, path: Path) -> None:
+    from PySide6.QtGui import QImage
+
+    img = widget.grab().toImage().convertToFormat(QImage.Format.Format_RGB888)
+    img.save(str(path), "PNG", 0)  # 0: smallest file
+    print(f"wrote {path} ({path.stat().st_size // 1024} KB)")
+
+
+def _names_from_truth(folder: Path):
+    """Plausible labels for the pictured session: the demo's truth names, when the truth file is there."""
+    truth_csv = ROOT / "resources" / "demo_truth.csv"
+    if not truth_csv.is_file():
+        return None
+    from core.demo import load_demo_truth
+
+    truth = load_demo_truth(truth_csv)
+    return lambda members: Counter(truth.get(m, "part").replace("_", " ") for m in members).most_common(1)[0][0]
+
+
+def render(out: Path, source: Path) -> list[Path]:
+    os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+    from PySide6.QtCore import QSettings, Qt
+    from PySide6.QtWidgets import QApplication
+
+    from app.main_window import MainWindow
+
+    app = QApplication.instance() or QApplication(sys.argv[:1])
+    out.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix="kinfold-shots-"))
+    written = []
+    try:
+        folder = tmp / "spare-parts"
+        shutil.copytree(source, folder, ignore=lambda _d, names: [n for n in names if n == ".kinfold"])
+        settings = QSettings(str(tmp / "settings.ini"), QSettings.Format.IniFormat)
+        settings.setValue("recent", [str(folder), str(source.resolve())])
+        w = MainWindow(settings)
+        w.resize(*SIZE)
+        w.show()
+        w.start.show_recent(w.recent_folders())
+        _settle(app, 0.3)
+        _save(w, out / "1-start.png")
+        written.append(out / "1-start.png")
+
+        w.open_folder(str(folder))
+        bar = w.scan_page.progress.bar
+        text = w.scan_page.progress.text
+        _wait(app, lambda: ("embedded" in text.text() and bar.value() > bar.maximum() * 0.4) or bool(w.groups), 300)
+        _save(w, out / "2-scan.png")
+        written.append(out / "2-scan.png")
+        if not _wait(app, lambda: bool(w.groups), 300):
+            raise SystemExit("the scan did not finish in 5 minutes")
+
+        name_of = _names_from_truth(folder) or (lambda members: "part")
+        for _ in range(3):  # a session under way: a few groups accepted
+            g = w.current()
+            w.project.accept(g.id, name_of(g.members))
+            w.refresh()
+        g = w.current()
+        w.group_page.label.setText(name_of(g.members))
+        w.group_page.grid.setFocus()
+        for row in (2, 5):
+            if row < len(g.members):
+                w.group_model.toggle(row)
+        w.group_page.grid.setCurrentIndex(w.group_model.index(1))
+        w.group_page.say(f"{len(w.group_model.taken_out())} taken out: they go back to the pool when you accept.")
+        _settle(app, 1.5)
+        _save(w, out / "3-group.png")
+        written.append(out / "3-group.png")
+
+        w.help.toggle()
+        _settle(app, 0.2)
+        _save(w, out / "4-keys.png")
+        written.append(out / "4-keys.png")
+        w.help.toggle()
+
+        w.preview(g.members[0])
+        dlg = w.last_preview
+        dlg.resize(1000, 720)
+        _settle(app, 1.2)
+        _save(dlg, out / "5-preview.png")
+        written.append(out / "5-preview.png")
+        dlg.close()
+
+        w.open_review()
+        grid = w.review_page.grid
+        grid.selectionModel().select(w.review_model.index(0), grid.selectionModel().SelectionFlag.Select)
+        _settle(app, 1.5)
+        _save(w, out / "6-review.png")
+        written.append(out / "6-review.png")
+        w.back_to_groups()
+
+        w.export()
+        exp = w.last_export
+        exp.destination.setText(str(tmp / "spare-parts-labels"))
+        exp.split.setChecked(True)
+        exp.run.click()
+        _wait(app, lambda: exp.written is not None or "⚠" in exp.report.text(), 60)
+        _settle(app, 0.2)
+        _save(exp, out / "7-export.png")
+        written.append(out / "7-export.png")
+        exp.reject()
+        w.close()
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    return written
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(prog="python -m app.screenshots", description=__doc__.split("\n\n")[0])
+    ap.add_argument("--out", default=str(ROOT / "resources" / "screenshots"))
+    ap.add_argument("--folder", default=str(ROOT / "sample_images"), help="photo folder to picture")
+    args = ap.parse_args(argv)
+    source = Path(args.folder)
+    if not source.is_dir() or not any(source.iterdir()):
+        print(f"{source} is empty: make the demo first (python -m core.demo --out {source} "
+              "--truth resources/demo_truth.csv)", file=sys.stderr)
+        return 1
+    render(Path(args.out), source)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
