@@ -166,9 +166,11 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
         g = Group(members, trust, "new area")
         if prob is not None:
             votes = prob[members, :n_labels].sum(0)
-            if votes.max() > 0:
-                g.suggested_label = int(votes.argmax())
-                g.confidence = float(prob[members, g.suggested_label].mean())
+            best = int(votes.argmax())
+            conf = float(prob[members, best].mean())
+            # A new area mostly holds photos no label reaches; suggest only what the labels support.
+            if conf >= 0.5:
+                g.suggested_label, g.confidence = best, conf
         explore.append(g)
 
     return _order(probable, explore, limit, s.explore_every)
