@@ -42,16 +42,6 @@ def demo_source(tmp_path_factory):
     return out
 
 
-@pytest.fixture(scope="module")
-def scanned_demo(demo_source, tmp_path_factory):
-    """A copy of the demo folder scanned once through the core API (the window reopens copies of it)."""
-    folder = tmp_path_factory.mktemp("scanned") / "photos"
-    shutil.copytree(demo_source, folder, ignore=_ignore_store)
-    with Project.open(folder, annotator="tester") as p:
-        p.scan()
-    return folder
-
-
 @pytest.fixture
 def folder(scanned_demo, tmp_path):
     dest = tmp_path / "photos"
