@@ -352,10 +352,6 @@ class Store:
             r = self._db.execute("SELECT open FROM proposals WHERE id=?", (group_id,)).fetchone()
         return bool(r and r[0])
 
-    def unpin_all(self) -> None:
-        with self.transaction() as db:
-            db.execute("UPDATE proposals SET open=0 WHERE open=1 AND pinned=1")
-
     # -- deferred ----------------------------------------------------------------------------
     def defer(self, fingerprints: Iterable[str]) -> None:
         now = time.time()

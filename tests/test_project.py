@@ -163,3 +163,12 @@ def test_cli_round_trip_and_bad_input(photo_project_folder, tmp_path):
     assert r.returncode == 1 and r.stderr.count("\n") == 1 and "not a folder" in r.stderr
     r = kinfold("accept", str(photo_project_folder), "99999", "x")
     assert r.returncode == 1 and "no group 99999" in r.stderr
+
+
+def test_store_schema_version_and_wal(photo_project_folder):
+    with Project.open(photo_project_folder) as p:
+        from core.store import SCHEMA_VERSION
+
+        assert p.store.schema_version() == SCHEMA_VERSION
+        # WAL keeps readers (a second `kinfold status`) from blocking on the writer (SQLite docs).
+        assert p.store._db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
