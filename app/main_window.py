@@ -21,6 +21,7 @@ from app.preview import PreviewDialog
 from app.side_panel import SidePanel
 from app.thumbnails import Thumbnails
 from core.project import Project, ProjectError
+from core.proposals import MIN_SPLIT
 from core.store import StoreError
 
 LOOKAHEAD = 6          # groups asked for at a time: the current one and what the side panel lists
@@ -135,7 +136,7 @@ class MainWindow(QMainWindow):
         tips = {
             "accept": "Label the group (all but the taken-out photos) with the label in the field",
             "toggle": "Take the photo under the keyboard outline out of the group, or put it back",
-            "split": "Break the group into two parts that are each more alike",
+            "split": f"Break the group into two parts that are each more alike (groups of {MIN_SPLIT} or more)",
             "later": "Leave this group; its photos come back after everything else",
             "aside": "Mark the taken-out photos — or, if none, the whole group — as belonging to no class",
             "undo": "Reverse the last decision (repeat to go further back)",
@@ -176,6 +177,8 @@ class MainWindow(QMainWindow):
         on_group = idle and page is self.work and bool(self.groups)
         for k in ("accept", "toggle", "split", "later", "aside", "preview"):
             self.actions[k].setEnabled(on_group)
+        # The engine offers a split only for groups large enough to hold two parts worth confirming.
+        self.actions["split"].setEnabled(on_group and self.current().splittable)
         self.actions["preview"].setEnabled(idle and page in (self.work, self.review_page))
         self.actions["undo"].setEnabled(idle and page in (self.work, self.review_page))
         self.actions["review"].setEnabled(idle and page is self.work)

@@ -93,7 +93,7 @@ def simulate(project: Project, truth: dict[str, str], *, sitting: int = 100, rel
         classes = [truth[m] for m in g.members]
         m = majority(classes)
         minority = sum(c != m for c in classes)
-        if allow_split and len(classes) > 1 and minority / len(classes) >= 0.3:
+        if allow_split and g.splittable and minority / len(classes) >= 0.3:
             project.split(g.id)
             actions += 1
             run.splits += 1

@@ -75,7 +75,7 @@ def cmd_propose(args):
     with _open(args) as p:
         groups = p.propose(limit=args.limit)
         if args.json:
-            _print([dataclasses.asdict(g) for g in groups], True)
+            _print([dict(dataclasses.asdict(g), splittable=g.splittable) for g in groups], True)
             return
         for g in groups:
             sug = f"  suggests '{g.suggested_label}' ({g.confidence:.2f})" if g.suggested_label else ""

@@ -62,6 +62,11 @@ class Proposal:
     confidence: float | None
     kind: str                                     # "new area", "probable label" or "split part"
 
+    @property
+    def splittable(self) -> bool:
+        """Whether `split` is offered: below MIN_SPLIT photos, taking members out is no more work."""
+        return len(self.members) >= proposals.MIN_SPLIT
+
 
 @dataclass
 class Status:
@@ -400,8 +405,9 @@ class Project:
         """Break a group into two coherent parts; they come back first in the next proposals."""
         row = self._open_group(group_id)
         members = [m for m in row.members if m in self._index]
-        if len(members) < 2:
-            raise ProjectError(f"group {group_id} has a single photo; nothing to split")
+        if len(members) < proposals.MIN_SPLIT:
+            raise ProjectError(f"group {group_id} has {len(members)} photos; splitting needs at least "
+                               f"{proposals.MIN_SPLIT} (take the odd ones out instead)")
         g = self.graph()
         part = proposals.split_members(g.x[[self._index[m] for m in members]])
         parts = [[m for m, p in zip(members, part) if p == k] for k in (0, 1)]

@@ -108,6 +108,12 @@ def test_split_gives_two_parts_shown_first(photo_project_folder):
         assert all(len({truth_of(m) for m in g.members}) == 1 for g in parts)
         nxt = p.propose(limit=5)
         assert [g.id for g in nxt[:2]] == [g.id for g in parts]
+        # A group too small to split is refused with the reason; nothing is logged.
+        small = p.store.replace_open_proposals([dict(members=mixed[:3], trust=0.5, kind="new area")])[0]
+        decisions = p.store.decision_count()
+        with pytest.raises(ProjectError, match="at least 8"):
+            p.split(small)
+        assert p.store.decision_count() == decisions
 
 
 def test_rename_keeps_label_and_edit_reembeds(photo_project_folder):
@@ -153,6 +159,7 @@ def test_cli_round_trip_and_bad_input(photo_project_folder, tmp_path):
     assert r.returncode == 0, r.stderr
     groups = json.loads(r.stdout)
     g = groups[0]
+    assert all(x["splittable"] == (len(x["members"]) >= 8) for x in groups)
     r = kinfold("accept", str(photo_project_folder), str(g["id"]), "thing", "--json")
     assert r.returncode == 0, r.stderr
     assert json.loads(r.stdout)["by_label"] == {"thing": len(g["members"])}
