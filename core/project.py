@@ -34,7 +34,7 @@ Cancel = Callable[[], bool]
 STORE_DIR = ".kinfold"
 DEFAULT_EXTRACTOR = "efficientnet-lite0"
 _EMBED_CHUNK = 1024          # photos embedded and committed per step, so a crash loses at most this
-_UNDOABLE = ("accept", "label", "set_aside", "clear")
+_UNDOABLE = ("accept", "label", "set_aside", "clear", "split")
 
 
 class ProjectError(Exception):
@@ -428,7 +428,8 @@ class Project:
         self.store.add_pinned_proposals([], close=group_id)
 
     def undo(self) -> dict | None:
-        """Reverse the newest label decision not yet undone (repeat to walk further back).
+        """Reverse the newest decision not yet undone: a label change, or a split (the whole group
+        comes back first). Repeat to walk further back.
         Returns what was undone, or None when there is nothing left to undo."""
         last = self.store.last_undoable_of(_UNDOABLE)
         if last is None:
@@ -438,6 +439,13 @@ class Project:
         self.store.record_decision("undo", self.annotator, [], changes, undoes=dec_id)
         if kind == "accept" and group_id is not None:
             self.store.repin_proposal(group_id)  # the group comes back first, as it was
+        elif kind == "split" and group_id is not None:
+            # The parts still open give way to the whole group again.
+            whole = self.store.proposal(group_id)
+            members = set(whole.members) if whole else set()
+            parts = [r.id for r in self.store.open_proposals(pinned_only=True)
+                     if r.kind == "split part" and set(r.members) <= members]
+            self.store.repin_proposal(group_id, close=parts)
         return {"decision": dec_id, "kind": kind, "photos": len(changes)}
 
     # -- reading -----------------------------------------------------------------------------

@@ -301,9 +301,11 @@ class Store:
         return [dict(id=r[0], kind=r[1], label=r[2], annotator=r[3], time=r[4], group_id=r[5],
                      photos=json.loads(r[6]), undoes=r[7]) for r in rows]
 
-    def repin_proposal(self, group_id: int) -> None:
-        """Reopen a proposal so that it is shown first again (after an undo)."""
+    def repin_proposal(self, group_id: int, close: Iterable[int] = ()) -> None:
+        """Reopen a proposal so that it is shown first again (after an undo), closing `close`
+        (the parts of an undone split) in the same transaction."""
         with self.transaction() as db:
+            db.executemany("UPDATE proposals SET open=0 WHERE id=?", [(i,) for i in close])
             db.execute("UPDATE proposals SET open=1, pinned=1 WHERE id=?", (group_id,))
 
     # -- proposals ---------------------------------------------------------------------------

@@ -108,6 +108,11 @@ def test_split_gives_two_parts_shown_first(photo_project_folder):
         assert all(len({truth_of(m) for m in g.members}) == 1 for g in parts)
         nxt = p.propose(limit=5)
         assert [g.id for g in nxt[:2]] == [g.id for g in parts]
+        # Undo brings the whole group back first, in place of its parts.
+        assert p.undo()["kind"] == "split"
+        again = p.propose(limit=5)
+        assert again[0].id == gid and again[0].members == mixed
+        assert not {g.id for g in parts} & {g.id for g in again}
         # A group too small to split is refused with the reason; nothing is logged.
         small = p.store.replace_open_proposals([dict(members=mixed[:3], trust=0.5, kind="new area")])[0]
         decisions = p.store.decision_count()
