@@ -28,6 +28,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from core.project import Project  # noqa: E402
+from core.proposals import FREE  # noqa: E402
 
 
 @dataclass
@@ -41,6 +42,7 @@ class Run:
     relearn_seconds: list[float] = field(default_factory=list)
     splits: int = 0
     groups: int = 0
+    sittings: list[dict] = field(default_factory=list)    # geometry figures at each sitting's end
 
     def record(self, actions: int, labelled: int) -> None:
         self.curve.append((actions, labelled))
@@ -67,6 +69,28 @@ class Run:
         return out
 
 
+def geometry_figures(project: Project, truth: dict[str, str], top: int = 100) -> dict:
+    """10-neighbour purity of the whole collection in the space proposals use (share of each photo's
+    10 nearest other photos of its true class), and the purity of the top `top` proposed groups
+    (share of their members in their group's majority class) with their mean size."""
+    g = project.graph()
+    y = np.array([truth.get(p, "") for p in project.photos()], dtype=object)
+    idx = g.idx[:, :10]
+    ok = idx >= 0
+    hit = (y[np.maximum(idx, 0)] == y[:, None]) & ok
+    purity = float(hit.sum() / max(ok.sum(), 1))
+    # Over the photos still unlabelled: the relearned head was trained on the others' labels.
+    free = project._state_arrays()[0] == FREE
+    purity_free = float(hit[free].sum() / max(ok[free].sum(), 1)) if free.any() else float("nan")
+    groups = project.propose(limit=top)
+    sizes = [len(gr.members) for gr in groups]
+    kept = sum(Counter(truth[m] for m in gr.members).most_common(1)[0][1] for gr in groups)
+    return dict(labelled=project.status().labelled, purity10=round(purity, 4),
+                purity10_unlabelled=round(purity_free, 4),
+                top_groups=len(groups), top_group_purity=round(kept / max(sum(sizes), 1), 4),
+                top_group_size=round(float(np.mean(sizes)), 1) if sizes else 0.0)
+
+
 def majority(classes: list[str]) -> str:
     counts = Counter(classes)
     top = max(counts.values())
@@ -76,7 +100,7 @@ def majority(classes: list[str]) -> str:
 
 def simulate(project: Project, truth: dict[str, str], *, sitting: int = 100, relearn: bool = False,
              allow_split: bool = True, name: str = "kinfold", relearn_seconds: float | None = None,
-             max_actions: int | None = None) -> Run:
+             max_actions: int | None = None, figures: bool = True) -> Run:
     photos = [p for p in project.photos() if p in truth]
     run = Run(name, len(photos))
     used: set[str] = set(project.status().by_label)
@@ -110,10 +134,18 @@ def simulate(project: Project, truth: dict[str, str], *, sitting: int = 100, rel
             labelled += len(g.members) - len(drop)
             run.groups += 1
         run.record(actions, labelled)
-        if relearn and actions >= next_relearn:
-            t0 = time.perf_counter()
-            project.relearn(seconds=relearn_seconds)
-            run.relearn_seconds.append(time.perf_counter() - t0)
+        if actions >= next_relearn:
+            # The end of a sitting: geometry figures before and (with relearning) after the relearn.
+            row = dict(actions=actions)
+            if figures:
+                row["before"] = geometry_figures(project, truth)
+            if relearn:
+                t0 = time.perf_counter()
+                project.relearn(seconds=relearn_seconds)
+                run.relearn_seconds.append(time.perf_counter() - t0)
+                if figures:
+                    row["after"] = geometry_figures(project, truth)
+            run.sittings.append(row)
             next_relearn = actions + sitting
         if max_actions and actions >= max_actions:
             break
@@ -253,6 +285,21 @@ def main(argv=None) -> int:
     for r in runs:
         print(json.dumps(r.summary()))
     write_outputs(runs, Path(args.out), tag)
+    for r in runs:
+        if r.sittings:
+            print(f"{r.name}: at each sitting's end (-> after relearning: purity10 (unlabelled), "
+                  f"top-100 group purity (mean size))")
+            for row in r.sittings:
+                b, a = row.get("before", {}), row.get("after")
+                line = (f"  actions {row['actions']:5d}  labelled {b.get('labelled', 0):5d}  "
+                        f"purity10 {b.get('purity10')} (unlabelled {b.get('purity10_unlabelled')})  "
+                        f"top-100 groups {b.get('top_group_purity')} (mean size {b.get('top_group_size')})")
+                if a:
+                    line += (f"  ->  {a['purity10']} ({a['purity10_unlabelled']})  "
+                             f"{a['top_group_purity']} ({a['top_group_size']})")
+                print(line)
+    with open(Path(args.out) / f"{tag}-sittings.json", "w") as f:
+        json.dump({r.name: r.sittings for r in runs if r.sittings}, f, indent=1)
     print(f"curves: {Path(args.out) / (tag + '-curves.csv')} and .png")
     return 0
 
