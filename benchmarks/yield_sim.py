@@ -100,7 +100,7 @@ def majority(classes: list[str]) -> str:
 
 def simulate(project: Project, truth: dict[str, str], *, sitting: int = 100, relearn: bool = False,
              allow_split: bool = True, name: str = "kinfold", relearn_seconds: float | None = None,
-             max_actions: int | None = None, figures: bool = True) -> Run:
+             max_actions: int | None = None) -> Run:
     photos = [p for p in project.photos() if p in truth]
     run = Run(name, len(photos))
     used: set[str] = set(project.status().by_label)
@@ -136,15 +136,12 @@ def simulate(project: Project, truth: dict[str, str], *, sitting: int = 100, rel
         run.record(actions, labelled)
         if actions >= next_relearn:
             # The end of a sitting: geometry figures before and (with relearning) after the relearn.
-            row = dict(actions=actions)
-            if figures:
-                row["before"] = geometry_figures(project, truth)
+            row = dict(actions=actions, before=geometry_figures(project, truth))
             if relearn:
                 t0 = time.perf_counter()
                 project.relearn(seconds=relearn_seconds)
                 run.relearn_seconds.append(time.perf_counter() - t0)
-                if figures:
-                    row["after"] = geometry_figures(project, truth)
+                row["after"] = geometry_figures(project, truth)
             run.sittings.append(row)
             next_relearn = actions + sitting
         if max_actions and actions >= max_actions:
@@ -290,10 +287,10 @@ def main(argv=None) -> int:
             print(f"{r.name}: at each sitting's end (-> after relearning: purity10 (unlabelled), "
                   f"top-100 group purity (mean size))")
             for row in r.sittings:
-                b, a = row.get("before", {}), row.get("after")
-                line = (f"  actions {row['actions']:5d}  labelled {b.get('labelled', 0):5d}  "
-                        f"purity10 {b.get('purity10')} (unlabelled {b.get('purity10_unlabelled')})  "
-                        f"top-100 groups {b.get('top_group_purity')} (mean size {b.get('top_group_size')})")
+                b, a = row["before"], row.get("after")
+                line = (f"  actions {row['actions']:5d}  labelled {b['labelled']:5d}  "
+                        f"purity10 {b['purity10']} (unlabelled {b['purity10_unlabelled']})  "
+                        f"top-100 groups {b['top_group_purity']} (mean size {b['top_group_size']})")
                 if a:
                     line += (f"  ->  {a['purity10']} ({a['purity10_unlabelled']})  "
                              f"{a['top_group_purity']} ({a['top_group_size']})")
