@@ -178,6 +178,7 @@ class Project:
         self._features = (self.store.embeddings(ext, [r.fingerprint for r in self._rows])
                           if self._rows else np.zeros((0, 0), np.float32))
         self._graph = None
+        self._classifier_cache: tuple = (None, None)
 
     def extractor(self):
         if self._extractor is None:
@@ -246,6 +247,21 @@ class Project:
         from core import relearning
 
         return relearning.apply(self.store.relearn_state(version), self._features)
+
+    def label_classifier(self, names: list[str]) -> np.ndarray | None:
+        """(photos, len(names)) label probabilities from the active version's classifier (NaN for
+        labels it was not fitted on), or None without one."""
+        version = self.store.active_relearn_version()
+        if version is None or not self._rows:
+            return None
+        key = (version, len(self._rows), tuple(names))
+        if self._classifier_cache[0] != key:
+            from core import relearning
+
+            clf = relearning.load_classifier(self.store.relearn_state(version))
+            prob = None if clf is None else clf.probabilities(self._features, names)
+            self._classifier_cache = (key, prob)
+        return self._classifier_cache[1]
 
     def graph(self) -> neighbours.Graph:
         if self._graph is None:
@@ -329,7 +345,8 @@ class Project:
             if (fresh & (state == proposals.FREE)).any():
                 eligible = fresh
         groups = proposals.form_groups(g, state, label_of, len(names), max(limit - len(out), 0),
-                                       settings, eligible, self._not_label) if limit > len(out) else []
+                                       settings, eligible, self._not_label,
+                                       self.label_classifier(names)) if limit > len(out) else []
         records = [dict(members=[self._rows[i].path for i in gr.members], trust=round(gr.trust, 4),
                         suggested_label=names[gr.suggested_label] if gr.suggested_label is not None else None,
                         confidence=None if gr.confidence is None else round(gr.confidence, 4), kind=gr.kind)

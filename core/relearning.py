@@ -29,6 +29,14 @@ photo) changed the supervised result by under 0.002 of purity and left the neigh
 below the backbone (0.739 against 0.774 on Fashion-MNIST 2,000), so relearning does not ask the
 scan for it.
 
+A **label classifier** is fitted beside the head (on by default, `Settings.classifier`):
+multinomial logistic regression (scikit-learn's objective, L2 strength `classifier_c`, fitted with
+torch L-BFGS in float64) on the centred, normalised backbone embeddings of the labelled photos.
+`proposals.with_classifier` uses its probabilities for the labels it knows, scaled by the
+propagation's known mass, as the probable-label confidence; labels confirmed after the fit keep the
+propagated figure. On Fashion-MNIST 2,000 with 200 labels it ranks probable labels better than
+propagation (accuracy of the top 20 % 0.997 against 0.933; tests/test_relearning.py).
+
 The head is stored with `torch.save` (loaded back with `weights_only=True`) in the project store's
 relearned versions; `apply` turns backbone embeddings into the adapted ones.
 """
@@ -50,7 +58,6 @@ from core import neighbours
 Progress = Callable[[int, int, str], None]
 Cancel = Callable[[], bool]
 
-FORMAT = 1
 FREE, LABELLED, SET_ASIDE = 0, 1, 2      # same codes as core.proposals
 DEFAULT_SECONDS = 40.0                   # 10,000 photos on 2 shared cores must finish within 60 s
 
@@ -75,6 +82,8 @@ class Settings:
     lr: float = 2e-3
     weight_decay: float = 1e-4
     keep_original: float = 0.5       # share of the original (centred) geometry in the output
+    classifier: bool = True          # fit the label classifier proposals take their label confidence from
+    classifier_c: float = 1.0        # inverse L2 strength (scikit-learn's C)
     seed: int = 0
     threads: int = 1                 # on 2 shared cores one thread ran 5x faster than two (oversubscription)
 
@@ -116,30 +125,75 @@ def _centre_normalise(x: np.ndarray, mean: np.ndarray) -> np.ndarray:
 
 
 # -- serialising --------------------------------------------------------------------------------
-def _dump(head: Head, mean: np.ndarray, s: Settings) -> bytes:
+# Format 1 held a head only; format 2 holds a relearned version: an optional head (None keeps the
+# backbone's geometry) and an optional label classifier.
+FORMATS = (1, 2)
+
+
+def dump(head: Head | None, mean: np.ndarray | None, s: Settings, classifier: Classifier | None = None) -> bytes:
+    d: dict = {"format": 2, "head": None, "classifier": _classifier_dict(classifier)}
+    if head is not None:
+        d["head"] = {"mean": torch.from_numpy(mean.copy()), "dim": int(head.linear.out_features),
+                     "hidden": s.hidden, "keep_original": float(s.keep_original), "state": head.state_dict()}
     buf = io.BytesIO()
-    torch.save({"format": FORMAT, "mean": torch.from_numpy(mean.copy()), "dim": s.dim, "hidden": s.hidden,
-                "keep_original": float(s.keep_original), "head": head.state_dict()}, buf)
+    torch.save(d, buf)
     return buf.getvalue()
 
 
-def _load(state: bytes) -> tuple[Head, np.ndarray, float]:
+def with_classifier(state: bytes | None, classifier: Classifier | None) -> bytes:
+    """A version's state: the head of `state` (None: no head) together with `classifier`."""
+    d = {"format": 2, "head": None} if state is None else _read(state)
+    d["format"], d["classifier"] = 2, _classifier_dict(classifier)
+    buf = io.BytesIO()
+    torch.save(d, buf)
+    return buf.getvalue()
+
+
+def _classifier_dict(c: Classifier | None) -> dict | None:
+    if c is None:
+        return None
+    return {"weight": torch.from_numpy(c.weight.copy()), "bias": torch.from_numpy(c.bias.copy()),
+            "mean": torch.from_numpy(c.mean.copy()), "labels": list(c.labels)}
+
+
+def _read(state: bytes) -> dict:
     try:
         d = torch.load(io.BytesIO(state), weights_only=True)
     except Exception as exc:
         raise ValueError(f"the stored relearned head cannot be read ({type(exc).__name__}: {exc})") from exc
-    if not isinstance(d, dict) or d.get("format") != FORMAT:
+    if not isinstance(d, dict) or d.get("format") not in FORMATS:
         raise ValueError("the stored relearned head has an unknown format; relearn again")
-    mean = d["mean"].numpy()
-    head = Head(len(mean), int(d["dim"]), int(d["hidden"]))
-    head.load_state_dict(d["head"])
-    return head.eval(), mean, float(d["keep_original"])
+    if d["format"] == 1:
+        d = {"format": 2, "head": {"mean": d["mean"], "dim": d["dim"], "hidden": d["hidden"],
+                      "keep_original": d["keep_original"], "state": d["head"]}, "classifier": None}
+    return d
+
+
+def _load(state: bytes) -> tuple[Head, np.ndarray, float] | None:
+    h = _read(state)["head"]
+    if h is None:
+        return None
+    mean = h["mean"].numpy()
+    head = Head(len(mean), int(h["dim"]), int(h["hidden"]))
+    head.load_state_dict(h["state"])
+    return head.eval(), mean, float(h["keep_original"])
+
+
+def load_classifier(state: bytes) -> Classifier | None:
+    c = _read(state)["classifier"]
+    if c is None:
+        return None
+    return Classifier(c["weight"].numpy(), c["bias"].numpy(), c["mean"].numpy(), tuple(c["labels"]))
 
 
 def apply(state: bytes, features: np.ndarray) -> np.ndarray:
-    """The adapted embedding (n x (d + dim), float32, rows L2-normalised) of backbone `features`."""
-    head, mean, keep = _load(state)
+    """The adapted embedding (n x (d + dim), float32, rows L2-normalised) of backbone `features`;
+    the features themselves when the stored version has no head."""
+    loaded = _load(state)
     features = np.asarray(features, np.float32)
+    if loaded is None:
+        return features
+    head, mean, keep = loaded
     if features.ndim != 2 or features.shape[1] != len(mean):
         raise ValueError(f"the relearned head expects {len(mean)}-d embeddings, got shape {features.shape}")
     with _threads(Settings.threads), torch.no_grad():
@@ -319,7 +373,7 @@ def train_head(features: np.ndarray, state: np.ndarray, label_of: np.ndarray, se
             figures["loss_first"] = round(losses[0], 4)
             figures["loss_last"] = round(float(np.mean(losses[-10:])), 4)
         figures["seconds"] = round(time.perf_counter() - t0, 2)
-        return _dump(head.eval(), mean, s), figures
+        return dump(head.eval(), mean, s), figures
 
 
 def _can_supervise(y: np.ndarray) -> bool:
@@ -342,34 +396,116 @@ def _round_targets(z: np.ndarray, share: float, k: int, temperature: float) -> t
     return torch.from_numpy(targets)
 
 
+# -- the label classifier -----------------------------------------------------------------------
+@dataclass(frozen=True)
+class Classifier:
+    """Multinomial logistic regression on the centred, normalised backbone embeddings, fitted to
+    the confirmed labels. `labels` names the classes (rows of `weight`), so labels added after the
+    fit are simply not covered, and the propagation answers for them."""
+    weight: np.ndarray          # (classes, d)
+    bias: np.ndarray            # (classes,)
+    mean: np.ndarray            # (d,) collection mean at fit time
+    labels: tuple[str, ...]
+
+    def probabilities(self, features: np.ndarray, names: list[str]) -> np.ndarray:
+        """(n, len(names)) class probabilities; columns of labels the fit did not know are NaN."""
+        features = np.asarray(features, np.float32)
+        if features.ndim != 2 or features.shape[1] != len(self.mean):
+            raise ValueError(f"the label classifier expects {len(self.mean)}-d embeddings, got shape {features.shape}")
+        logits = _centre_normalise(features, self.mean) @ self.weight.T + self.bias
+        logits -= logits.max(1, keepdims=True)
+        p = np.exp(logits)
+        p /= p.sum(1, keepdims=True)
+        out = np.full((len(features), len(names)), np.nan, np.float32)
+        col = {name: j for j, name in enumerate(self.labels)}
+        for i, name in enumerate(names):
+            if name in col:
+                out[:, i] = p[:, col[name]]
+        return out
+
+
+def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray, names: list[str],
+                   c: float = 1.0, max_iter: int = 200) -> Classifier | None:
+    """Fit the label classifier to the labelled photos; None when fewer than two labels are in use.
+
+    The objective is scikit-learn's L2-penalised multinomial logistic regression,
+    0.5 |W|^2 + c * sum of log-losses (bias not penalised), minimised with L-BFGS in float64 so
+    the result is deterministic and matches that reference (tests/test_relearning.py)."""
+    features = np.asarray(features, np.float32)
+    rows = np.nonzero(np.asarray(state) == LABELLED)[0]
+    used = np.unique(np.asarray(label_of)[rows])
+    if len(used) < 2:
+        return None
+    mean = features.mean(0)
+    x = torch.from_numpy(_centre_normalise(features[rows], mean).astype(np.float64))
+    remap = np.full(max(len(names), int(used.max()) + 1), -1, np.int64)
+    remap[used] = np.arange(len(used))
+    y = torch.from_numpy(remap[np.asarray(label_of)[rows]])
+    w = torch.zeros((len(used), x.shape[1]), dtype=torch.float64, requires_grad=True)
+    b = torch.zeros(len(used), dtype=torch.float64, requires_grad=True)
+    opt = torch.optim.LBFGS([w, b], lr=1.0, max_iter=max_iter, history_size=20, tolerance_grad=1e-8,
+                            tolerance_change=1e-12, line_search_fn="strong_wolfe")
+    scale = 1.0 / (c * len(rows))          # the same minimum; keeps the numbers near 1 for L-BFGS
+
+    def closure():
+        opt.zero_grad()
+        loss = F.cross_entropy(x @ w.T + b, y, reduction="mean") + 0.5 * scale * (w * w).sum()
+        loss.backward()
+        return loss
+
+    with _threads(Settings.threads):
+        opt.step(closure)
+    return Classifier(w.detach().numpy().astype(np.float32), b.detach().numpy().astype(np.float32),
+                      mean.astype(np.float32), tuple(names[int(i)] for i in used))
+
+
 # -- the project verb ---------------------------------------------------------------------------
 def relearn_project(project, progress: Progress | None = None, seconds: float | None = None,
                     cancel: Cancel | None = None, settings: Settings | None = None) -> dict:
-    """Train a head on the project's backbone embeddings and confirmed labels, store it as a new
-    relearned version (which becomes active) and return its figures. Decisions are only read.
+    """Fit the label classifier (and, when switched on, train a head) on the project's backbone
+    embeddings and confirmed labels, store the result as a new relearned version (which becomes
+    active) and return its figures. Decisions are only read.
 
-    When there is nothing to learn from (no confirmed or set-aside photo and the neighbourhood
-    rounds off), or on cancel, nothing is stored and the figures say why (`version` is None)."""
+    When there is nothing to learn from, or on cancel, nothing is stored and the figures say why
+    (`version` is None)."""
     s = settings or Settings()
+    t0 = time.perf_counter()
     features = project._features
     if len(features) < 2:
         return dict(version=None, reason="fewer than two photos: nothing to relearn")
     state, label_of, names = project._state_arrays()
     confirmed = np.where(state == LABELLED, label_of, -1)[(state == LABELLED) | (state == SET_ASIDE)]
-    if not s.neighbourhood and not (s.supervised and _can_supervise(confirmed)):
-        return dict(version=None, reason="no confirmed labels yet: relearning needs a few labelled photos")
+    trains_head = s.neighbourhood or (s.supervised and _can_supervise(confirmed))
+    fits_classifier = s.classifier and len(np.unique(label_of[state == LABELLED])) >= 2
+    if not trains_head and not fits_classifier:
+        return dict(version=None, reason="relearning needs photos confirmed under at least two labels")
     before = _label_agreement(neighbours.prepare(project.features()), state, label_of)
-    result = train_head(features, state, label_of, s, progress, seconds, cancel)
-    if result is None:
+    blob = None
+    figures = dict(photos=len(features), labelled=int((state == LABELLED).sum()),
+                   set_aside=int((state == SET_ASIDE).sum()), supervised=False, neighbourhood=False,
+                   rounds=0, steps=0)
+    if trains_head:
+        result = train_head(features, state, label_of, s, progress, seconds, cancel)
+        if result is None:
+            return dict(version=None, cancelled=True, reason="cancelled; the active embedding is unchanged")
+        blob, figures = result
+    if cancel is not None and cancel():
         return dict(version=None, cancelled=True, reason="cancelled; the active embedding is unchanged")
-    blob, figures = result
-    head, mean, keep = _load(blob)
-    with _threads(s.threads), torch.no_grad():
-        adapted = _combine(features, head, mean, keep)
+    clf = None
+    if fits_classifier:
+        if progress:
+            progress(0, 1, "fitting the label classifier")
+        t1 = time.perf_counter()
+        clf = fit_classifier(features, state, label_of, names, c=s.classifier_c)
+        figures["classifier_seconds"] = round(time.perf_counter() - t1, 2)
+    figures["classifier_labels"] = 0 if clf is None else len(clf.labels)
+    blob = with_classifier(blob, clf)
+    adapted = apply(blob, features)
     figures["labelled_agreement_before"] = before
     # In-sample: the head was trained on these labels, so this shows fit, not generalisation.
     figures["labelled_agreement_after"] = _label_agreement(neighbours.prepare(adapted), state, label_of)
     figures["labels"] = len(names)
+    figures["seconds"] = round(time.perf_counter() - t0, 2)
     settings_dict = asdict(s)
     settings_dict["rounds"] = list(s.rounds)
     figures["version"] = project.store.add_relearn_version(extractor=project.extractor_id or "unknown",
