@@ -140,7 +140,7 @@ def dump(head: Head | None, mean: np.ndarray | None, s: Settings, classifier: Cl
     return buf.getvalue()
 
 
-def with_classifier(state: bytes | None, classifier: Classifier | None) -> bytes:
+def attach_classifier(state: bytes | None, classifier: Classifier | None) -> bytes:
     """A version's state: the head of `state` (None: no head) together with `classifier`."""
     d = {"format": 2, "head": None} if state is None else _read(state)
     d["format"], d["classifier"] = 2, _classifier_dict(classifier)
@@ -499,7 +499,7 @@ def relearn_project(project, progress: Progress | None = None, seconds: float | 
         clf = fit_classifier(features, state, label_of, names, c=s.classifier_c)
         figures["classifier_seconds"] = round(time.perf_counter() - t1, 2)
     figures["classifier_labels"] = 0 if clf is None else len(clf.labels)
-    blob = with_classifier(blob, clf)
+    blob = attach_classifier(blob, clf)
     adapted = apply(blob, features)
     figures["labelled_agreement_before"] = before
     # In-sample: the head was trained on these labels, so this shows fit, not generalisation.
