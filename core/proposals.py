@@ -40,6 +40,7 @@ class Settings:
     min_confidence: float = 0.7      # below this, a photo is left to new-area groups
     explore_every: int = 3           # a new-area group at least every this many places
     min_shared: int = 2              # new-area member must share this many of its 10 nearest with the anchor
+    smoothing: float = 0.5           # weight of the graph neighbours in the classifier's smoothed probabilities
 
 
 @dataclass
@@ -61,10 +62,7 @@ def propagate(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: i
     row-normalised kNN graph; rows are normalised to probabilities at the end.
     """
     n = graph.n
-    k = min(settings.propagation_k, graph.idx.shape[1])
-    idx = np.maximum(graph.idx[:, :k], 0)
-    w = np.clip(graph.sims[:, :k], 0, None) ** 3 * (graph.idx[:, :k] >= 0)
-    w = w / np.maximum(w.sum(1, keepdims=True), 1e-12)
+    idx, w = _graph_weights(graph, settings.propagation_k)
     y = np.zeros((n, n_labels + 1), np.float32)
     lab = state == LABELLED
     y[np.nonzero(lab)[0], label_of[lab]] = 1.0
@@ -75,6 +73,23 @@ def propagate(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: i
     for _ in range(settings.iterations):
         f = a * np.einsum("nk,nkc->nc", w, f[idx]) + (1 - a) * y
     return f / np.maximum(f.sum(1, keepdims=True), 1e-12)
+
+
+def _graph_weights(graph: Graph, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """(idx, w): each photo's k nearest neighbours and row-normalised weights max(sim, 0)^3."""
+    k = min(k, graph.idx.shape[1])
+    idx = np.maximum(graph.idx[:, :k], 0)
+    w = np.clip(graph.sims[:, :k], 0, None) ** 3 * (graph.idx[:, :k] >= 0)
+    return idx, w / np.maximum(w.sum(1, keepdims=True), 1e-12)
+
+
+def smooth(graph: Graph, p: np.ndarray, settings: Settings) -> np.ndarray:
+    """Per-photo probabilities averaged with their graph neighbours' (weight `smoothing` on the
+    neighbours): a photo whose neighbours the classifier places elsewhere is less sure."""
+    if settings.smoothing <= 0:
+        return p
+    idx, w = _graph_weights(graph, settings.propagation_k)
+    return (1 - settings.smoothing) * p + settings.smoothing * np.einsum("nk,nkc->nc", w, p[idx])
 
 
 def with_classifier(prob: np.ndarray, classifier: np.ndarray) -> np.ndarray:
@@ -138,7 +153,7 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
     if n_labels > 0 and (state == LABELLED).any():
         prob = propagate(graph, state, label_of, n_labels, s)
         if classifier is not None:
-            prob = with_classifier(prob, classifier)
+            prob = with_classifier(prob, smooth(graph, classifier, s))
         if not_label is not None and not_label.any():
             prob[:, :n_labels][not_label] = 0.0
             prob /= np.maximum(prob.sum(1, keepdims=True), 1e-12)
@@ -156,7 +171,9 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
                 if not members:
                     break
                 mean_conf = float(conf[members].mean())
-                probable.append(Group(members, mean_conf, "probable label", c, mean_conf))
+                g = Group(members, mean_conf, "probable label", c, mean_conf)
+                g.extra["expected_yield"] = expected_yield(g, conf[members])
+                probable.append(g)
                 cand = cand[trial[cand]]
                 made += 1
         probable.sort(key=lambda g: -g.trust)
@@ -201,22 +218,35 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
             # A new area mostly holds photos no label reaches; suggest only what the labels support.
             if conf >= 0.5:
                 g.suggested_label, g.confidence = best, conf
+        g.extra["expected_yield"] = expected_yield(g, np.full(len(members), trust))
         explore.append(g)
 
     return _order(probable, explore, limit, s.explore_every)
 
 
+def expected_yield(g: Group, member_conf: np.ndarray) -> float:
+    """Photos the annotator is expected to confirm per action on this group: expected right
+    members / (expected wrong members, each taken out, + 1 to accept, + 1 to type a label name
+    when none is suggested)."""
+    right = float(np.sum(member_conf))
+    return right / (len(member_conf) - right + 1.0 + (g.suggested_label is None))
+
+
 def _order(probable: list[Group], explore: list[Group], limit: int, every: int) -> list[Group]:
-    rest = sorted(probable + explore, key=lambda g: -g.trust)
+    rest = sorted(probable + explore, key=lambda g: -g.extra.get("expected_yield", g.trust))
     out: list[Group] = []
     since_explore = 0
+
+    def unexplored(g: Group) -> bool:
+        return g.kind == "new area" and g.suggested_label is None
+
     while rest and len(out) < limit:
         pick = 0
-        if since_explore >= every - 1 and rest[0].kind != "new area":
-            pick = next((i for i, g in enumerate(rest) if g.kind == "new area"), 0)
+        if since_explore >= every - 1 and not unexplored(rest[0]):
+            pick = next((i for i, g in enumerate(rest) if unexplored(g)), 0)
         g = rest.pop(pick)
         out.append(g)
-        since_explore = 0 if g.kind == "new area" else since_explore + 1
+        since_explore = 0 if unexplored(g) else since_explore + 1
     return out
 
 

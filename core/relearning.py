@@ -425,7 +425,7 @@ class Classifier:
 
 
 def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray, names: list[str],
-                   c: float = 1.0, max_iter: int = 200) -> Classifier | None:
+                   c: float = 1.0, max_iter: int = 200, balanced: bool = True) -> Classifier | None:
     """Fit the label classifier to the labelled photos; None when fewer than two labels are in use.
 
     The objective is scikit-learn's L2-penalised multinomial logistic regression,
@@ -441,6 +441,13 @@ def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray
     remap = np.full(max(len(names), int(used.max()) + 1), -1, np.int64)
     remap[used] = np.arange(len(used))
     y = torch.from_numpy(remap[np.asarray(label_of)[rows]])
+    # Balanced class weights, n / (classes * n_c) as scikit-learn's class_weight="balanced": the
+    # confirmed photos are not a random sample (easy classes get confirmed first, by the hundred),
+    # so their label shares say nothing about the photos still unlabelled. Unweighted, the fit
+    # learned those shares as priors and confidently pulled unlabelled photos into the most
+    # confirmed labels (see the figures above).
+    counts = torch.bincount(y, minlength=len(used)).to(torch.float64)
+    sample_w = (len(rows) / (len(used) * counts))[y] if balanced else torch.ones(len(rows), dtype=torch.float64)
     w = torch.zeros((len(used), x.shape[1]), dtype=torch.float64, requires_grad=True)
     b = torch.zeros(len(used), dtype=torch.float64, requires_grad=True)
     opt = torch.optim.LBFGS([w, b], lr=1.0, max_iter=max_iter, history_size=20, tolerance_grad=1e-8,
@@ -449,7 +456,8 @@ def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray
 
     def closure():
         opt.zero_grad()
-        loss = F.cross_entropy(x @ w.T + b, y, reduction="mean") + 0.5 * scale * (w * w).sum()
+        nll = F.cross_entropy(x @ w.T + b, y, reduction="none")
+        loss = (sample_w * nll).mean() + 0.5 * scale * (w * w).sum()
         loss.backward()
         return loss
 
