@@ -99,7 +99,8 @@ class Replay:
         confirmed = np.where(self.state == LABELLED, self.label_of, -1)[self.state != FREE]
         if s.supervised and relearning._can_supervise(confirmed):
             blob, figures = relearning.train_head(self.features, self.state, self.label_of, s)
-        clf = relearning.fit_classifier(self.features, self.state, self.label_of, names, c=s.classifier_c) \
+        clf = relearning.fit_classifier(self.features, self.state, self.label_of, names, c=s.classifier_c,
+                                        not_label=self.not_label) \
             if s.classifier else None
         blob = relearning.attach_classifier(blob, clf)
         if blob is not None and relearning._load(blob) is not None:

@@ -425,7 +425,8 @@ class Classifier:
 
 
 def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray, names: list[str],
-                   c: float = 1.0, max_iter: int = 200, balanced: bool = True) -> Classifier | None:
+                   c: float = 1.0, max_iter: int = 200, balanced: bool = True,
+                   not_label: np.ndarray | None = None) -> Classifier | None:
     """Fit the label classifier to the labelled photos; None when fewer than two labels are in use.
 
     The objective is scikit-learn's L2-penalised multinomial logistic regression,
@@ -454,10 +455,22 @@ def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray
                             tolerance_change=1e-12, line_search_fn="strong_wolfe")
     scale = 1.0 / (c * len(rows))          # the same minimum; keeps the numbers near 1 for L-BFGS
 
+    # Photos the annotator took out of a label's group: "not this label" (a complementary label),
+    # scored as -log(1 - p_label) on unlabelled photos, so the fit learns where it was too sure.
+    neg_rows, neg_cols = (np.nonzero(np.asarray(not_label)[:, :len(remap)] & (np.asarray(state) != LABELLED)[:, None])
+                          if not_label is not None else (np.zeros(0, np.int64), np.zeros(0, np.int64)))
+    keep = remap[neg_cols] >= 0
+    xn = torch.from_numpy(_centre_normalise(features[neg_rows[keep]], mean).astype(np.float64))
+    yn = torch.from_numpy(remap[neg_cols[keep]])
+
     def closure():
         opt.zero_grad()
         nll = F.cross_entropy(x @ w.T + b, y, reduction="none")
-        loss = (sample_w * nll).mean() + 0.5 * scale * (w * w).sum()
+        loss = (sample_w * nll).sum()
+        if len(yn):
+            log_p = torch.log_softmax(xn @ w.T + b, dim=1).gather(1, yn[:, None])[:, 0]
+            loss = loss - torch.log1p(-torch.exp(log_p).clamp(max=1 - 1e-9)).sum()
+        loss = loss / len(rows) + 0.5 * scale * (w * w).sum()
         loss.backward()
         return loss
 
@@ -504,7 +517,7 @@ def relearn_project(project, progress: Progress | None = None, seconds: float | 
         if progress:
             progress(0, 1, "fitting the label classifier")
         t1 = time.perf_counter()
-        clf = fit_classifier(features, state, label_of, names, c=s.classifier_c)
+        clf = fit_classifier(features, state, label_of, names, c=s.classifier_c, not_label=project._not_label)
         figures["classifier_seconds"] = round(time.perf_counter() - t1, 2)
     figures["classifier_labels"] = 0 if clf is None else len(clf.labels)
     blob = attach_classifier(blob, clf)

@@ -140,6 +140,26 @@ def test_balanced_classifier_is_not_misled_by_which_labels_were_confirmed_first(
     assert acc[True][0] > 0.95 and acc[True][1] > acc[False][1] + 0.15 and acc[True][2] > acc[False][2] + 0.1, acc
 
 
+def test_photos_taken_out_of_a_group_teach_the_classifier(fashion):
+    """An annotator reviews the 600 most confident predictions (200 random labels) and takes the
+    wrong ones out; refitted with those "not this label" answers, the classifier ranks the photos
+    nobody reviewed better. Measured (most confident 20 % / 80 % of them): 0.954 / 0.780 without,
+    0.983 / 0.804 with. Margins are rules of thumb set under that."""
+    feats, y = fashion
+    state, label_of = make_state(y, "random200")
+    names = [str(c) for c in range(10)]
+    p = relearning.fit_classifier(feats, state, label_of, names).probabilities(feats, names)
+    free = np.nonzero(state == relearning.FREE)[0]
+    top = free[np.argsort(-p[free].max(1), kind="stable")][:600]
+    wrong = top[p[top].argmax(1) != y[top]]
+    not_label = np.zeros((len(y), 10), bool)
+    not_label[wrong, p[wrong].argmax(1)] = True
+    rest = np.setdiff1d(free, top)
+    (a20, a80), (b20, b80) = (_ranked_accuracy(relearning.fit_classifier(feats, state, label_of, names, not_label=nl)
+                                               .probabilities(feats, names), y, rest) for nl in (None, not_label))
+    assert len(wrong) >= 10 and b20 > a20 + 0.015 and b80 > a80 + 0.01, (len(wrong), a20, b20, a80, b80)
+
+
 def test_labels_newer_than_the_classifier_fall_back_to_propagation(fashion):
     feats, y = fashion
     feats, y = feats[:400], y[:400]
