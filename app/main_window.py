@@ -44,8 +44,10 @@ def relearn_summary(result: dict) -> str:
     text = f"Relearned: version {result['version']}"
     if "seconds" in result:
         text += f", {result['seconds']:.1f} s"
+    if result.get("classifier_labels"):
+        text += f"; label classifier over {result['classifier_labels']} labels"
     before, after = result.get("labelled_agreement_before"), result.get("labelled_agreement_after")
-    if before is not None and after is not None:
+    if result.get("steps") and before is not None and after is not None:
         text += f"; neighbours sharing a photo's label {before:.2f} → {after:.2f} (on the labels it learnt from)"
     return text + "."
 

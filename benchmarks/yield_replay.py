@@ -97,10 +97,11 @@ class Replay:
         figures: dict = {}
         blob = None
         confirmed = np.where(self.state == LABELLED, self.label_of, -1)[self.state != FREE]
-        if s.supervised and relearning._can_supervise(confirmed):
+        if s.head and s.supervised and relearning._can_supervise(confirmed):
             blob, figures = relearning.train_head(self.features, self.state, self.label_of, s)
         clf = relearning.fit_classifier(self.features, self.state, self.label_of, names, c=s.classifier_c,
-                                        not_label=self.not_label) \
+                                        balanced=s.classifier_balanced,
+                                        not_label=self.not_label if s.classifier_rejections else None) \
             if s.classifier else None
         blob = relearning.attach_classifier(blob, clf)
         if blob is not None and relearning._load(blob) is not None:
@@ -168,8 +169,11 @@ def simulate(rep: Replay, truth: np.ndarray, *, sitting: int = 100, relearn: boo
 
 VARIANTS = {
     "none": dict(relearn=False),
-    "relearn": dict(relearn=True),
-    "classifier-only": dict(relearn=True, settings=relearning.Settings(supervised=False)),
+    "relearn": dict(relearn=True),                                          # the default: label classifier
+    "relearn+head": dict(relearn=True, settings=relearning.Settings(head=True)),   # and the projection head
+    "unbalanced": dict(relearn=True, settings=relearning.Settings(classifier_balanced=False)),
+    "no-rejections": dict(relearn=True, settings=relearning.Settings(classifier_rejections=False)),
+    "no-smoothing": dict(relearn=True, propose=proposals.Settings(smoothing=0.0)),
 }
 
 
@@ -178,10 +182,12 @@ def main(argv=None) -> int:
     ap.add_argument("--n", type=int, default=10000)
     ap.add_argument("--variants", default="none,relearn", help=f"comma-separated, from {sorted(VARIANTS)}")
     ap.add_argument("--sitting", type=int, default=100)
+    ap.add_argument("--split", default="t10k", choices=["t10k", "train"],
+                    help="Fashion-MNIST split (train: its first --n photos, a second data set to check settings on)")
     ap.add_argument("--out", default=str(ROOT / "out" / "yield"))
     args = ap.parse_args(argv)
     print("command: python -m benchmarks.yield_replay " + " ".join(sys.argv[1:] if argv is None else argv))
-    feats, labels = fashion_features(args.n)
+    feats, labels = fashion_features(args.n, split=args.split)
     truth = labels.astype(np.int64)
     # Label indices follow the sorted class names, as Project numbers labels.
     order = sorted(range(len(CLASS_NAMES)), key=lambda c: CLASS_NAMES[c])
@@ -191,7 +197,7 @@ def main(argv=None) -> int:
     for v in args.variants.split(","):
         spec = VARIANTS[v]
         t0 = time.perf_counter()
-        rep = Replay(feats, names, spec.get("settings"))
+        rep = Replay(feats, names, spec.get("settings"), spec.get("propose"))
         run = simulate(rep, truth, sitting=args.sitting, relearn=spec["relearn"], name=f"kinfold, {v}")
         runs.append(run)
         print(json.dumps(run.summary() | dict(seconds=round(time.perf_counter() - t0, 1))), flush=True)
@@ -199,7 +205,7 @@ def main(argv=None) -> int:
     runs.append(one_at_a_time(args.n))
     for r in runs[-2:]:
         print(json.dumps(r.summary()))
-    tag = f"replay-fashion-{args.n}"
+    tag = f"replay-fashion-{args.split}-{args.n}"
     write_outputs(runs, Path(args.out), tag)
     with open(Path(args.out) / f"{tag}-sittings.json", "w") as f:
         json.dump({r.name: r.sittings for r in runs if r.sittings}, f, indent=1)

@@ -530,12 +530,18 @@ class Project:
 
     # -- relearning ---------------------------------------------------------------------------
     def relearn(self, progress: Progress | None = None, seconds: float | None = None,
-                cancel: Cancel | None = None) -> dict:
-        """Adapt the embedding to the confirmed labels and the neighbourhood structure; stores a new
-        version and makes it active. Never touches the decisions. Returns what it measured."""
+                cancel: Cancel | None = None, adapt_embedding: bool = False) -> dict:
+        """Relearn from the decisions so far: refit the label classifier on the confirmed labels and
+        the photos taken out of groups and, with `adapt_embedding`, also train the projection head
+        that adapts the embedding. Stores a new version and makes it active. Never touches the
+        decisions. Returns what it measured."""
+        from dataclasses import replace
+
         from core import relearning
 
-        result = relearning.relearn_project(self, progress=progress, seconds=seconds, cancel=cancel)
+        settings = replace(relearning.Settings(), head=adapt_embedding)
+        result = relearning.relearn_project(self, progress=progress, seconds=seconds, cancel=cancel,
+                                            settings=settings)
         self._graph = None
         return result
 

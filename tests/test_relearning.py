@@ -215,17 +215,23 @@ def test_relearn_never_touches_decisions_and_restore_brings_back_proposals(fashi
     plain = _snapshot(p.propose(limit=10))
 
     assert p.relearn(cancel=lambda: True)["version"] is None   # cancelled: nothing stored
-    figures = p.relearn(seconds=30)
+    figures = p.relearn(seconds=30)                   # the default: the label classifier only
     v = figures["version"]
-    assert isinstance(v, int) and figures["steps"] > 0 and figures["seconds"] > 0
+    assert isinstance(v, int) and figures["classifier_labels"] == len(by_class) and figures["steps"] == 0
     assert p.store.labels() == labels_before and p.store.decision_count() == decisions_before
     assert [r["active"] for r in p.relearn_versions()] == [True]
+    relearned = _snapshot(p.propose(limit=10))
+    assert relearned != plain                         # the classifier changes the proposals
+    w = p.relearn(seconds=30, adapt_embedding=True)["version"]   # with the projection head too
+    assert p.relearn_versions()[-1]["figures"]["steps"] > 0
     adapted = _snapshot(p.propose(limit=10))
-    assert adapted != plain                           # the relearned geometry changes the proposals
+    assert adapted != relearned                       # the adapted geometry changes them again
 
     p.restore(None)
     assert _snapshot(p.propose(limit=10)) == plain
     p.restore(v)
-    assert _snapshot(p.propose(limit=10)) == adapted
+    assert _snapshot(p.propose(limit=10)) == relearned
     assert p.status().relearned_version == v
+    p.restore(w)
+    assert _snapshot(p.propose(limit=10)) == adapted
     assert set(CLASS_NAMES) >= set(p.status().by_label)
