@@ -441,10 +441,15 @@ class Classifier:
         return out
 
 
+class _Cancelled(Exception):
+    pass
+
+
 def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray, names: list[str],
                    c: float = 1.0, max_iter: int = 200, balanced: bool = True,
-                   not_label: np.ndarray | None = None) -> Classifier | None:
-    """Fit the label classifier to the labelled photos; None when fewer than two labels are in use.
+                   not_label: np.ndarray | None = None, cancel: Cancel | None = None) -> Classifier | None:
+    """Fit the label classifier to the labelled photos; None when fewer than two labels are in use
+    or when `cancel` returned True (checked at every L-BFGS evaluation).
 
     The objective is scikit-learn's L2-penalised multinomial logistic regression,
     0.5 |W|^2 + c * sum of log-losses (bias not penalised), minimised with L-BFGS in float64 so
@@ -481,6 +486,8 @@ def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray
     yn = torch.from_numpy(remap[neg_cols[keep]])
 
     def closure():
+        if cancel is not None and cancel():
+            raise _Cancelled
         opt.zero_grad()
         nll = F.cross_entropy(x @ w.T + b, y, reduction="none")
         loss = (sample_w * nll).sum()
@@ -492,7 +499,10 @@ def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray
         return loss
 
     with _threads(Settings.threads):
-        opt.step(closure)
+        try:
+            opt.step(closure)
+        except _Cancelled:
+            return None
     return Classifier(w.detach().numpy().astype(np.float32), b.detach().numpy().astype(np.float32),
                       mean.astype(np.float32), tuple(names[int(i)] for i in used))
 
@@ -535,7 +545,9 @@ def relearn_project(project, progress: Progress | None = None, seconds: float | 
             progress(0, 1, "fitting the label classifier")
         t1 = time.perf_counter()
         clf = fit_classifier(features, state, label_of, names, c=s.classifier_c, balanced=s.classifier_balanced,
-                             not_label=project._not_label if s.classifier_rejections else None)
+                             not_label=project._not_label if s.classifier_rejections else None, cancel=cancel)
+        if cancel is not None and cancel():
+            return dict(version=None, cancelled=True, reason="cancelled; the active embedding is unchanged")
         figures["classifier_seconds"] = round(time.perf_counter() - t1, 2)
     figures["classifier_labels"] = 0 if clf is None else len(clf.labels)
     blob = attach_classifier(blob, clf)

@@ -215,6 +215,9 @@ def test_relearn_never_touches_decisions_and_restore_brings_back_proposals(fashi
     plain = _snapshot(p.propose(limit=10))
 
     assert p.relearn(cancel=lambda: True)["version"] is None   # cancelled: nothing stored
+    calls = iter(range(10_000))
+    assert p.relearn(cancel=lambda: next(calls) >= 3)["version"] is None   # cancelled inside the classifier fit
+    assert p.relearn_versions() == []
     figures = p.relearn(seconds=30)                   # the default: the label classifier only
     v = figures["version"]
     assert isinstance(v, int) and figures["classifier_labels"] == len(by_class) and figures["steps"] == 0
