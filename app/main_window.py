@@ -143,7 +143,7 @@ class MainWindow(QMainWindow):
             "aside": "Mark the taken-out photos — or, if none, the whole group — as belonging to no class",
             "undo": "Reverse the last decision (repeat to go further back)",
             "preview": "Show the photo full size with its nearest photos (or double-click it)",
-            "relearn": "Adapt the embedding to the labels so far, then propose again",
+            "relearn": "Relearn from the decisions so far, then propose again",
         }
         actions = {}
         for key, text, keys, section, slot in spec:

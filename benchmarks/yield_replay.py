@@ -4,8 +4,9 @@
 10,000 with relearning that takes over an hour. This replay runs the same simulated annotator (the
 rules in `benchmarks.yield_sim.simulate`) straight against `core.proposals` and `core.relearning`
 on the cached EfficientNet-Lite0 features of `benchmarks.fashion`, so variants can be compared in
-minutes. With no relearning it reproduces `yield_sim`'s figures exactly (checked: 4.911 / 3.009 on
-Fashion-MNIST 10,000 in both).
+minutes. Those features are computed from the decoded arrays, not from a scan of the PNG folder, and
+differ from a scan's in the last bits; the runs are chaotic (one different group early changes
+everything after), so compare variants within this tool and quote `yield_sim` for the product.
 
     python -m benchmarks.yield_replay --n 10000                       # no relearning, relearning, k-means
     python -m benchmarks.yield_replay --n 10000 --variants relearn    # one variant

@@ -187,7 +187,7 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
                 probable.append(g)
                 cand = cand[trial[cand]]
                 made += 1
-        probable.sort(key=lambda g: -g.trust)
+        probable.sort(key=_rank)
         probable = probable[:limit]
         # Burst-mates of one label's candidates can be another label's; keep the groups disjoint.
         seen = np.zeros(n, bool)
@@ -243,8 +243,12 @@ def expected_yield(g: Group, member_conf: np.ndarray) -> float:
     return right / (len(member_conf) - right + 1.0 + (g.suggested_label is None))
 
 
+def _rank(g: Group) -> float:
+    return -g.extra["expected_yield"]
+
+
 def _order(probable: list[Group], explore: list[Group], limit: int, every: int) -> list[Group]:
-    rest = sorted(probable + explore, key=lambda g: -g.extra.get("expected_yield", g.trust))
+    rest = sorted(probable + explore, key=_rank)
     out: list[Group] = []
     since_explore = 0
 

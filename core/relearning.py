@@ -16,9 +16,10 @@ costs seconds, not a rescan):
   the propagated figure.
 * **the projection head** (off by default, `Settings.head`; `Project.relearn(adapt_embedding=True)`,
   `kinfold relearn --adapt-embedding`) — the adapted embedding, described below. It raises
-  10-neighbour purity, but proposals in its geometry cost more actions: with the classifier on,
-  yield@80 on Fashion-MNIST 10,000 fell from 7.04 to 6.04 (benchmarks/yield_replay.py, variant
-  relearn+head), so it is kept for users who want the adapted geometry, not used by default.
+  10-neighbour purity, but proposals in its geometry cost more actions: on Fashion-MNIST 10,000
+  (benchmarks/yield_replay.py, variant relearn+head) yield@80 was 7.31 with it against 7.75
+  without (yield@100 4.03 against 3.87), and 6.04 against 7.04 before the "not this label" term,
+  so it is kept for users who want the adapted geometry, not used by default.
 
 Yield figures of each part are printed by `python -m benchmarks.yield_replay --variants ...`.
 
