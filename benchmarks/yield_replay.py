@@ -20,7 +20,7 @@ import argparse
 import json
 import sys
 import time
-from dataclasses import replace
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -29,143 +29,129 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.fashion import CLASS_NAMES, fashion_features  # noqa: E402
-from benchmarks.yield_sim import Run, kmeans_baseline, majority, one_at_a_time, write_outputs  # noqa: E402
+from benchmarks.yield_sim import kmeans_baseline, one_at_a_time, simulate, write_outputs  # noqa: E402
 from core import neighbours, proposals, relearning  # noqa: E402
 from core.proposals import FREE, LABELLED  # noqa: E402
 
 
-class Replay:
-    """The state a Project keeps, as arrays: labels, rejections, split parts waiting first."""
+@dataclass
+class _Group:
+    """What the simulator reads of a proposal (the fields of core.project.Proposal it uses)."""
+    id: int
+    members: list[int]
+    suggested_label: str | None
+    kind: str
 
-    def __init__(self, features: np.ndarray, names: list[str], relearn_settings=None, propose_settings=None):
+    @property
+    def splittable(self) -> bool:
+        return len(self.members) >= proposals.MIN_SPLIT
+
+
+@dataclass
+class _Status:
+    labelled: int
+    by_label: dict
+
+
+class Replay:
+    """A stand-in for core.project.Project over arrays: the verbs benchmarks.yield_sim.simulate
+    calls (photos, status, propose, accept, split, relearn, graph), with the state a Project keeps
+    (labels, "not this label" answers, split parts waiting first) and no store. Photos are row
+    numbers; labels are names, numbered as Project numbers them (sorted, in use only)."""
+
+    def __init__(self, features: np.ndarray, relearn_settings=None, propose_settings=None):
         self.features = features
         self.n = len(features)
-        self.names = sorted(set(names))                       # Project sorts label names too
         self.state = np.zeros(self.n, np.int8)
-        self.label_of = np.full(self.n, -1, np.int64)
-        self.not_label = np.zeros((self.n, len(self.names)), bool)
-        self.pinned: list[proposals.Group] = []
-        self.graph = neighbours.build_graph(features)
-        self.classifier: np.ndarray | None = None
-        self.version: bytes | None = None
-        self.relearn_settings = relearn_settings
+        self.label_name: list[str | None] = [None] * self.n
+        self.rejected: list[set[str]] = [set() for _ in range(self.n)]
+        self.pinned: list[_Group] = []
+        self.open: dict[int, _Group] = {}
+        self.next_id = 0
+        self._graph = neighbours.build_graph(features)
+        self.classifier: relearning.Classifier | None = None
+        self.relearn_settings = relearn_settings or relearning.Settings()
         self.propose_settings = propose_settings
 
-    def propose(self, limit: int = 3) -> list[proposals.Group]:
+    # -- the verbs of Project that the simulator calls -------------------------------------------
+    def photos(self) -> list[int]:
+        return list(range(self.n))
+
+    def status(self) -> _Status:
+        names = [x for x in self.label_name if x is not None]
+        return _Status(len(names), {k: names.count(k) for k in set(names)})
+
+    def graph(self) -> neighbours.Graph:
+        return self._graph
+
+    def _state_arrays(self):
+        names = sorted({x for x in self.label_name if x is not None})
+        pos = {x: i for i, x in enumerate(names)}
+        label_of = np.array([pos[x] if x is not None else -1 for x in self.label_name], np.int64)
+        self._not_label = np.zeros((self.n, len(names)), bool)
+        for i, rej in enumerate(self.rejected):
+            for x in rej & pos.keys():
+                self._not_label[i, pos[x]] = True
+        return self.state.copy(), label_of, names
+
+    def _group(self, members, kind, suggested) -> _Group:
+        self.next_id += 1
+        return _Group(self.next_id, members, suggested, kind)
+
+    def propose(self, limit: int = 20) -> list[_Group]:
+        state, label_of, names = self._state_arrays()
         out, taken = [], np.zeros(self.n, bool)
         for g in self.pinned:
-            m = [i for i in g.members if self.state[i] == FREE and not taken[i]]
+            m = [i for i in g.members if state[i] == FREE and not taken[i]]
             if m:
                 taken[m] = True
-                out.append(replace(g, members=m))
-        self.pinned = out
-        used = sorted({int(c) for c in self.label_of[self.state == LABELLED]})
-        # Project numbers only the labels in use; remap so group formation sees the same indices.
-        remap = np.full(len(self.names), -1, np.int64)
-        remap[used] = np.arange(len(used))
-        lab = np.where(self.state == LABELLED, remap[np.maximum(self.label_of, 0)], -1)
-        clf = None if self.classifier is None else self.classifier[:, used]
+                g.members = m
+                out.append(g)
+        self.pinned = out[:]
         if limit > len(out):
-            groups = proposals.form_groups(self.graph, self.state, lab, len(used), limit - len(out), self.propose_settings,
-                                           ~taken, self.not_label[:, used], clf)
-            for g in groups:
-                if g.suggested_label is not None:
-                    g.suggested_label = used[g.suggested_label]
-            out = out + groups
+            clf = None if self.classifier is None else self.classifier.probabilities(self.features, names)
+            groups = proposals.form_groups(self._graph, state, label_of, len(names), limit - len(out),
+                                           self.propose_settings, ~taken, self._not_label, clf)
+            out += [self._group(g.members, g.kind, None if g.suggested_label is None else names[g.suggested_label])
+                    for g in groups]
+        self.open = {g.id: g for g in out}
         return out[:limit]
 
-    def accept(self, g: proposals.Group, label: int, drop: list[int]) -> None:
-        keep = [i for i in g.members if i not in set(drop)]
-        self.state[keep] = LABELLED
-        self.label_of[keep] = label
-        self.not_label[drop, label] = True
-        self.pinned = [p for p in self.pinned if p is not g]
+    def accept(self, group_id: int, label: str, drop=()) -> None:
+        g = self.open.pop(group_id)
+        drop = set(drop)
+        for i in g.members:
+            if i in drop:
+                self.rejected[i].add(label)
+            else:
+                self.state[i], self.label_name[i] = LABELLED, label
+        self.pinned = [p for p in self.pinned if p.id != group_id]
 
-    def split(self, g: proposals.Group) -> None:
-        part = proposals.split_members(self.graph.x[g.members])
+    def split(self, group_id: int) -> None:
+        g = self.open.pop(group_id)
+        part = proposals.split_members(self._graph.x[g.members])
         parts = [[m for m, p in zip(g.members, part) if p == k] for k in (0, 1)]
         if g.members[0] in parts[1]:
             parts.reverse()
         # The store keeps pinned groups in the order they were made: new parts go last.
-        self.pinned = [p for p in self.pinned if p is not g] + [
-            proposals.Group(pm, g.trust, "split part", g.suggested_label, g.confidence) for pm in parts if pm]
+        self.pinned = [p for p in self.pinned if p.id != group_id] + [
+            self._group(pm, "split part", g.suggested_label) for pm in parts if pm]
 
-    def relearn(self) -> dict:
-        """What Project.relearn does, on arrays: a new version (head and classifier), then the graph
-        and the classifier probabilities of that version."""
-        s = self.relearn_settings or relearning.Settings()
-        names = self.names
+    def relearn(self, seconds: float | None = None) -> dict:
+        """What core.relearning.relearn_project does, without a store: the label classifier and,
+        with Settings.head, the projection head and its graph."""
+        s = self.relearn_settings
+        state, label_of, names = self._state_arrays()
         figures: dict = {}
-        blob = None
-        confirmed = np.where(self.state == LABELLED, self.label_of, -1)[self.state != FREE]
+        confirmed = np.where(state == LABELLED, label_of, -1)[state != FREE]
         if s.head and s.supervised and relearning._can_supervise(confirmed):
-            blob, figures = relearning.train_head(self.features, self.state, self.label_of, s)
-        clf = relearning.fit_classifier(self.features, self.state, self.label_of, names, c=s.classifier_c,
-                                        balanced=s.classifier_balanced,
-                                        not_label=self.not_label if s.classifier_rejections else None) \
-            if s.classifier else None
-        blob = relearning.attach_classifier(blob, clf)
-        if blob is not None and relearning._load(blob) is not None:
-            self.graph = neighbours.build_graph(relearning.apply(blob, self.features))
-        self.classifier = None if clf is None else clf.probabilities(self.features, names)
+            blob, figures = relearning.train_head(self.features, state, label_of, s, seconds=seconds)
+            self._graph = neighbours.build_graph(relearning.apply(blob, self.features))
+        if s.classifier:
+            self.classifier = relearning.fit_classifier(
+                self.features, state, label_of, names, c=s.classifier_c, balanced=s.classifier_balanced,
+                not_label=self._not_label if s.classifier_rejections else None)
         return figures
-
-    def purity10(self, truth: np.ndarray) -> float:
-        idx = self.graph.idx[:, :10]
-        return float((truth[np.maximum(idx, 0)] == truth[:, None]).mean())
-
-
-def simulate(rep: Replay, truth: np.ndarray, *, sitting: int = 100, relearn: bool = False,
-             allow_split: bool = True, name: str = "replay", max_share: float = 1.0) -> Run:
-    """The annotator of benchmarks.yield_sim.simulate, on a Replay. truth: class index per photo."""
-    run = Run(name, rep.n)
-    run.log = []      # (labelled before, kind, size, members not of the majority class, split?)
-    used: set[int] = set()
-    actions = labelled = 0
-    next_relearn = sitting
-    while labelled < rep.n and labelled < max_share * rep.n:
-        t0 = time.perf_counter()
-        groups = rep.propose(limit=3)
-        run.propose_seconds.append(time.perf_counter() - t0)
-        if not groups:
-            break
-        g = groups[0]
-        classes = [int(truth[i]) for i in g.members]
-        m = majority(classes)
-        minority = sum(c != m for c in classes)
-        split = allow_split and len(g.members) >= proposals.MIN_SPLIT and minority / len(classes) >= 0.3
-        run.log.append((labelled, g.kind, len(g.members), minority, split))
-        if split:
-            rep.split(g)
-            actions += 1
-            run.splits += 1
-        else:
-            drop = [i for i, c in zip(g.members, classes) if c != m]
-            actions += len(drop) + 1
-            if m not in used and g.suggested_label != m:
-                actions += 1
-            if g.suggested_label is not None:
-                run.suggested_total += 1
-                run.suggested_right += g.suggested_label == m
-            used.add(m)
-            rep.accept(g, m, drop)
-            labelled += len(g.members) - len(drop)
-            run.groups += 1
-        run.record(actions, labelled)
-        if actions >= next_relearn:
-            row = dict(actions=actions, labelled=labelled, purity10_before=round(rep.purity10(truth), 4))
-            if relearn:
-                t0 = time.perf_counter()
-                rep.relearn()
-                run.relearn_seconds.append(time.perf_counter() - t0)
-                row["purity10_after"] = round(rep.purity10(truth), 4)
-            run.sittings.append(row)
-            next_relearn = actions + sitting
-    for _ in range(rep.n - labelled):
-        actions += 1
-        labelled += 1
-        run.record(actions, labelled)
-    return run
 
 
 VARIANTS = {
@@ -189,20 +175,16 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     print("command: python -m benchmarks.yield_replay " + " ".join(sys.argv[1:] if argv is None else argv))
     feats, labels = fashion_features(args.n, split=args.split)
-    truth = labels.astype(np.int64)
-    # Label indices follow the sorted class names, as Project numbers labels.
-    order = sorted(range(len(CLASS_NAMES)), key=lambda c: CLASS_NAMES[c])
-    truth = np.argsort(order)[truth]
-    names = sorted(CLASS_NAMES)
+    truth = {i: CLASS_NAMES[int(c)] for i, c in enumerate(labels)}
     runs = []
     for v in args.variants.split(","):
         spec = VARIANTS[v]
         t0 = time.perf_counter()
-        rep = Replay(feats, names, spec.get("settings"), spec.get("propose"))
+        rep = Replay(feats, spec.get("settings"), spec.get("propose"))
         run = simulate(rep, truth, sitting=args.sitting, relearn=spec["relearn"], name=f"kinfold, {v}")
         runs.append(run)
         print(json.dumps(run.summary() | dict(seconds=round(time.perf_counter() - t0, 1))), flush=True)
-    runs.append(kmeans_baseline(feats, [names[c] for c in truth]))
+    runs.append(kmeans_baseline(feats, [truth[i] for i in range(len(feats))]))
     runs.append(one_at_a_time(args.n))
     for r in runs[-2:]:
         print(json.dumps(r.summary()))

@@ -47,16 +47,23 @@ class Run:
     def record(self, actions: int, labelled: int) -> None:
         self.curve.append((actions, labelled))
 
-    def yield_at(self, share: float) -> float:
+    def _first_at(self, share: float) -> tuple[int, int] | None:
         need = share * self.n
-        for a, l in self.curve:
-            if l >= need - 1e-9 and a > 0:
-                return l / a
-        return float("nan")
+        return next(((a, l) for a, l in self.curve if l >= need - 1e-9 and a > 0), None)
+
+    def yield_at(self, share: float) -> float:
+        hit = self._first_at(share)
+        return hit[1] / hit[0] if hit else float("nan")
+
+    def actions_at(self, share: float) -> int | None:
+        """Actions spent when `share` of the photos first carry a label (where the work goes)."""
+        hit = self._first_at(share)
+        return hit[0] if hit else None
 
     def summary(self) -> dict:
         out = dict(run=self.name, photos=self.n, actions=self.curve[-1][0],
                    yield80=round(self.yield_at(0.8), 3), yield100=round(self.yield_at(1.0), 3),
+                   actions_at_20_40_60_80_100=[self.actions_at(q) for q in (0.2, 0.4, 0.6, 0.8, 1.0)],
                    groups=self.groups, splits=self.splits)
         if self.suggested_total:
             out["suggested_label_accuracy"] = round(self.suggested_right / self.suggested_total, 3)
