@@ -189,7 +189,8 @@ def build_parser() -> argparse.ArgumentParser:
     s = verb("relearn", cmd_relearn, "relearn the label classifier from the decisions so far")
     s.add_argument("--seconds", type=float, default=None, help="time budget")
     s.add_argument("--adapt-embedding", action="store_true",
-                   help="also train the projection head that adapts the embedding (slower; lowered yield in our benchmark)")
+                   help="also train the projection head that adapts the embedding "
+                        "(slower; it lowered yield in our benchmark)")
     s = sub.add_parser("open", help="open the desktop window")
     s.add_argument("folder", nargs="?")
     s.set_defaults(func=cmd_open)

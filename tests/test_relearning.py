@@ -102,6 +102,7 @@ def test_label_classifier_matches_scikit_learn_and_beats_propagation(fashion):
     names = [str(c) for c in range(10)]
     clf = relearning.fit_classifier(feats, state, label_of, names)
     p = clf.probabilities(feats, names)
+    np.testing.assert_array_equal(relearning.fit_classifier(feats, state, label_of, names).weight, clf.weight)
     # Reference: scikit-learn's L2-penalised multinomial logistic regression, C = 1, balanced class
     # weights, on the same inputs; and the unweighted fit against the unweighted reference.
     rows = state == relearning.LABELLED
