@@ -469,7 +469,8 @@ def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray
     # confirmed photos are not a random sample (easy classes get confirmed first, by the hundred),
     # so their label shares say nothing about the photos still unlabelled. Unweighted, the fit
     # learned those shares as priors and confidently pulled unlabelled photos into the most
-    # confirmed labels (see the figures above).
+    # confirmed labels (tests/test_relearning.py: on the most confident half of the unlabelled
+    # photos, 0.650 of the labels right unweighted against 0.928 balanced).
     counts = torch.bincount(y, minlength=len(used)).to(torch.float64)
     sample_w = (len(rows) / (len(used) * counts))[y] if balanced else torch.ones(len(rows), dtype=torch.float64)
     w = torch.zeros((len(used), x.shape[1]), dtype=torch.float64, requires_grad=True)
