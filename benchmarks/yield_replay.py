@@ -31,20 +31,8 @@ sys.path.insert(0, str(ROOT))
 from benchmarks.fashion import CLASS_NAMES, fashion_features  # noqa: E402
 from benchmarks.yield_sim import kmeans_baseline, one_at_a_time, simulate, write_outputs  # noqa: E402
 from core import neighbours, proposals, relearning  # noqa: E402
+from core.project import Proposal  # noqa: E402
 from core.proposals import FREE, LABELLED  # noqa: E402
-
-
-@dataclass
-class _Group:
-    """What the simulator reads of a proposal (the fields of core.project.Proposal it uses)."""
-    id: int
-    members: list[int]
-    suggested_label: str | None
-    kind: str
-
-    @property
-    def splittable(self) -> bool:
-        return len(self.members) >= proposals.MIN_SPLIT
 
 
 @dataclass
@@ -65,8 +53,8 @@ class Replay:
         self.state = np.zeros(self.n, np.int8)
         self.label_name: list[str | None] = [None] * self.n
         self.rejected: list[set[str]] = [set() for _ in range(self.n)]
-        self.pinned: list[_Group] = []
-        self.open: dict[int, _Group] = {}
+        self.pinned: list[Proposal] = []
+        self.open: dict[int, Proposal] = {}
         self.next_id = 0
         self._graph = neighbours.build_graph(features)
         self.classifier: relearning.Classifier | None = None
@@ -94,11 +82,11 @@ class Replay:
                 self._not_label[i, pos[x]] = True
         return self.state.copy(), label_of, names
 
-    def _group(self, members, kind, suggested) -> _Group:
+    def _group(self, members, trust, suggested, confidence, kind) -> Proposal:
         self.next_id += 1
-        return _Group(self.next_id, members, suggested, kind)
+        return Proposal(self.next_id, members, trust, suggested, confidence, kind)
 
-    def propose(self, limit: int = 20) -> list[_Group]:
+    def propose(self, limit: int = 20) -> list[Proposal]:
         state, label_of, names = self._state_arrays()
         out, taken = [], np.zeros(self.n, bool)
         for g in self.pinned:
@@ -112,8 +100,8 @@ class Replay:
             clf = None if self.classifier is None else self.classifier.probabilities(self.features, names)
             groups = proposals.form_groups(self._graph, state, label_of, len(names), limit - len(out),
                                            self.propose_settings, ~taken, self._not_label, clf)
-            out += [self._group(g.members, g.kind, None if g.suggested_label is None else names[g.suggested_label])
-                    for g in groups]
+            out += [self._group(g.members, g.trust, None if g.suggested_label is None else names[g.suggested_label],
+                                g.confidence, g.kind) for g in groups]
         self.open = {g.id: g for g in out}
         return out[:limit]
 
@@ -135,7 +123,7 @@ class Replay:
             parts.reverse()
         # The store keeps pinned groups in the order they were made: new parts go last.
         self.pinned = [p for p in self.pinned if p.id != group_id] + [
-            self._group(pm, "split part", g.suggested_label) for pm in parts if pm]
+            self._group(pm, g.trust, g.suggested_label, g.confidence, "split part") for pm in parts if pm]
 
     def relearn(self, seconds: float | None = None) -> dict:
         """What core.relearning.relearn_project does, without a store: the label classifier and,
