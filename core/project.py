@@ -239,9 +239,19 @@ class Project:
                           cancelled=cancelled, seconds=time.perf_counter() - t0)
 
     # -- geometry ----------------------------------------------------------------------------
+    def _geometry_version(self) -> int | None:
+        """The active relearned version when it adapts the embedding; None when proposals work in the
+        backbone's geometry (no version, or a version with the label classifier only)."""
+        version = self.store.active_relearn_version()
+        if version is None:
+            return None
+        from core import relearning
+
+        return version if relearning.has_head(self.store.relearn_state(version)) else None
+
     def features(self) -> np.ndarray:
         """The embedding proposals work in: the backbone's, or the relearned one when active."""
-        version = self.store.active_relearn_version()
+        version = self._geometry_version()
         if version is None:
             return self._features
         from core import relearning
@@ -270,7 +280,7 @@ class Project:
 
     def _load_or_build_graph(self) -> neighbours.Graph:
         key = hashlib.sha1()
-        key.update(f"{self.extractor_id}|{self.store.active_relearn_version()}|".encode())
+        key.update(f"{self.extractor_id}|{self._geometry_version()}|".encode())
         for r in self._rows:
             key.update(r.fingerprint.encode())
         cache = self.store.directory / f"graph-{key.hexdigest()[:16]}.npz"

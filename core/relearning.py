@@ -16,10 +16,11 @@ costs seconds, not a rescan):
   the propagated figure.
 * **the projection head** (off by default, `Settings.head`; `Project.relearn(adapt_embedding=True)`,
   `kinfold relearn --adapt-embedding`) — the adapted embedding, described below. It raises
-  10-neighbour purity, but proposals in its geometry cost more actions: on Fashion-MNIST 10,000
-  (benchmarks/yield_replay.py, variant relearn+head) yield@80 was 7.31 with it against 7.75
-  without (yield@100 4.03 against 3.87), and 6.04 against 7.04 before the "not this label" term,
-  so it is kept for users who want the adapted geometry, not used by default.
+  10-neighbour purity, but proposals in its geometry cost more actions by 80 %: on Fashion-MNIST
+  10,000 (benchmarks/yield_replay.py, variant relearn+head) yield@80 was 7.46 with it against
+  7.72 without (yield@100 4.07 against 3.90), and lower in each earlier measurement (7.31 against
+  7.75; 6.04 against 7.04 before the "not this label" term), while each relearn took 33-61 s
+  instead of 3-22 s (2 cores shared with other jobs). It is kept for users who want the adapted geometry, not used by default.
 
 Yield figures of each part are printed by `python -m benchmarks.yield_replay --variants ...`.
 
@@ -195,6 +196,11 @@ def _load(state: bytes) -> tuple[Head, np.ndarray, float] | None:
     head = Head(len(mean), int(h["dim"]), int(h["hidden"]))
     head.load_state_dict(h["state"])
     return head.eval(), mean, float(h["keep_original"])
+
+
+def has_head(state: bytes) -> bool:
+    """Whether a stored version adapts the embedding (else proposals keep the backbone's geometry)."""
+    return _read(state)["head"] is not None
 
 
 def load_classifier(state: bytes) -> Classifier | None:

@@ -226,10 +226,12 @@ def test_relearn_never_touches_decisions_and_restore_brings_back_proposals(fashi
     assert [r["active"] for r in p.relearn_versions()] == [True]
     relearned = _snapshot(p.propose(limit=10))
     assert relearned != plain                         # the classifier changes the proposals
+    assert p._geometry_version() is None              # ... but not the geometry: the cached graph serves
     w = p.relearn(seconds=30, adapt_embedding=True)["version"]   # with the projection head too
     assert p.relearn_versions()[-1]["figures"]["steps"] > 0
     adapted = _snapshot(p.propose(limit=10))
     assert adapted != relearned                       # the adapted geometry changes them again
+    assert p._geometry_version() == w
 
     p.restore(None)
     assert _snapshot(p.propose(limit=10)) == plain
