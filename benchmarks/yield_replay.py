@@ -138,7 +138,8 @@ class Replay:
         if s.classifier:
             self.classifier = relearning.fit_classifier(
                 self.features, state, label_of, names, c=s.classifier_c, balanced=s.classifier_balanced,
-                not_label=self._not_label if s.classifier_rejections else None)
+                not_label=self._not_label if s.classifier_rejections else None,
+                rejection_weight=s.classifier_rejection_weight)
         return figures
 
 
@@ -148,6 +149,7 @@ VARIANTS = {
     "relearn+head": dict(relearn=True, settings=relearning.Settings(head=True)),   # and the projection head
     "unbalanced": dict(relearn=True, settings=relearning.Settings(classifier_balanced=False)),
     "no-rejections": dict(relearn=True, settings=relearning.Settings(classifier_rejections=False)),
+    "rejections-weight-1": dict(relearn=True, settings=relearning.Settings(classifier_rejection_weight=1.0)),
     "no-smoothing": dict(relearn=True, propose=proposals.Settings(smoothing=0.0)),
 }
 
