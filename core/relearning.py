@@ -10,7 +10,8 @@ costs seconds, not a rescan):
     by the hundred first), and an unweighted fit learned their shares as priors, confidently
     pulling unlabelled photos into the most confirmed labels;
   - *"not this label" answers*: every photo the annotator took out of a label's group adds
-    -log(1 - p_label) to the loss, so the fit learns exactly where it was too sure.
+    -log(1 - p_label) to the loss, weighted 3 against a labelled photo's 1, so the fit learns
+    exactly where it was too sure.
   `proposals` smooths its probabilities over the kNN graph and uses them, scaled by the
   propagation's known mass, as the probable-label confidence; labels confirmed after the fit keep
   the propagated figure.
