@@ -545,13 +545,10 @@ class Project:
         the photos taken out of groups and, with `adapt_embedding`, also train the projection head
         that adapts the embedding. Stores a new version and makes it active. Never touches the
         decisions. Returns what it measured."""
-        from dataclasses import replace
-
         from core import relearning
 
-        settings = replace(relearning.Settings(), head=adapt_embedding)
         result = relearning.relearn_project(self, progress=progress, seconds=seconds, cancel=cancel,
-                                            settings=settings)
+                                            settings=relearning.Settings(head=adapt_embedding))
         self._graph = None
         return result
 
