@@ -561,15 +561,24 @@ class Project:
         return self.store.relearn_versions()
 
     # -- export ------------------------------------------------------------------------------
-    def export_csv(self, path) -> int:
-        return export.export_csv(path, self.labelled_photos())
+    # Nothing is written inside the photo folder or the store; an existing file that is not a
+    # Kinfold export is replaced only with overwrite=True (core/export.py has the rules).
+    def export(self, csv=None, coco=None, folders=None, *, split=None, seed: int = 0, mode: str = "link",
+               overwrite: bool = False) -> dict:
+        """Write the asked formats all or nothing: ``{"csv": rows, "coco": {...}, "folders": counts}``."""
+        return export.export_all(self.labelled_photos(), csv=csv, coco=coco, folders=folders,
+                                 photo_folder=self.folder, store=self.store.directory, split=split, seed=seed,
+                                 mode=mode, overwrite=overwrite)
 
-    def export_coco(self, path) -> dict:
-        return export.export_coco(path, self.labelled_photos())
+    def export_csv(self, path, *, overwrite: bool = False) -> int:
+        return self.export(csv=path, overwrite=overwrite)["csv"]
 
-    def export_folders(self, directory, split=None, *, seed: int = 0, mode: str = "link") -> dict:
-        return export.export_folders(directory, self.labelled_photos(), self.folder, split=split, seed=seed,
-                                     mode=mode)
+    def export_coco(self, path, *, overwrite: bool = False) -> dict:
+        return self.export(coco=path, overwrite=overwrite)["coco"]
+
+    def export_folders(self, directory, split=None, *, seed: int = 0, mode: str = "link",
+                       overwrite: bool = False) -> dict:
+        return self.export(folders=directory, split=split, seed=seed, mode=mode, overwrite=overwrite)["folders"]
 
 
 def _default_annotator() -> str:
