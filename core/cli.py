@@ -23,6 +23,11 @@ from core.store import StoreError
 
 DEBUG_ENV = "KINFOLD_DEBUG"
 _MAX_ID = 2 ** 63 - 1  # SQLite integers
+# SQLite primary result codes (https://sqlite.org/rescode.html) that need their own advice.
+_SQLITE_PERM, _SQLITE_BUSY, _SQLITE_LOCKED, _SQLITE_READONLY, _SQLITE_FULL, _SQLITE_CANTOPEN = 3, 5, 6, 8, 13, 14
+_SQLITE_CORRUPT, _SQLITE_NOTADB = 11, 26
+_SQLITE_ADVICE = {_SQLITE_PERM, _SQLITE_BUSY, _SQLITE_LOCKED, _SQLITE_READONLY, _SQLITE_FULL, _SQLITE_CANTOPEN,
+                  _SQLITE_CORRUPT, _SQLITE_NOTADB}
 
 
 class _Bar:
@@ -263,11 +268,25 @@ def _reason(exc: BaseException, args) -> str:
     """One line for the user: what went wrong and what to do."""
     if isinstance(exc, (ProjectError, StoreError, ExportError)):
         return _one_line(exc)
-    if isinstance(exc, sqlite3.DatabaseError):
-        return (f"the project store {_store_path(args)} is damaged ({_one_line(exc)}); restore it from a "
-                "backup, or move it aside to start the project again")
     if isinstance(exc, sqlite3.Error):
-        return f"the project store {_store_path(args)} cannot be used ({_one_line(exc)})"
+        store = _store_path(args)
+        # A failed ROLLBACK can hide the error that caused it: use the first specific code.
+        chain, e = [], exc
+        while isinstance(e, sqlite3.Error) and len(chain) < 10:
+            chain.append((getattr(e, "sqlite_errorcode", None) or 0) & 0xFF)  # primary result code
+            e = e.__cause__ or e.__context__
+        code = next((c for c in chain if c in _SQLITE_ADVICE), chain[0])
+        if code == _SQLITE_FULL:
+            return f"the disk holding the project store {store} is full; free some space and run the command again"
+        if code in (_SQLITE_BUSY, _SQLITE_LOCKED):
+            return f"the project store {store} is busy (another Kinfold is writing); try again in a moment"
+        if code in (_SQLITE_READONLY, _SQLITE_CANTOPEN, _SQLITE_PERM):
+            return (f"cannot write the project store {store} ({_one_line(exc)}); check its permissions, or "
+                    "keep the store elsewhere with --store")
+        if isinstance(exc, sqlite3.DatabaseError):
+            return (f"the project store {store} is damaged ({_one_line(exc)}); restore it from a backup, or "
+                    "move it aside to start the project again")
+        return f"the project store {store} cannot be used ({_one_line(exc)})"
     if isinstance(exc, OSError):
         where = f" ({exc.filename})" if exc.filename else ""
         if exc.errno in (errno.ENOSPC, getattr(errno, "EDQUOT", None)):

@@ -626,6 +626,12 @@ def _absolute(path) -> Path:
 
 def _check_destinations(dests: dict[str, Path], protected: list[tuple[Path, str]],
                         overwrite: bool) -> None:
+    items = list(dests.items())
+    for i, (k1, d1) in enumerate(items):
+        for k2, d2 in items[i + 1:]:
+            if d1 == d2 or d1 in d2.parents or d2 in d1.parents:
+                raise ExportError(f"Cannot export {k1} to {d1} and {k2} to {d2}: give each its "
+                                  "own destination, neither inside the other.")
     for kind, dest in dests.items():
         if not dest.name:
             raise ExportError(f"Cannot export to {dest}: give a file or folder name.")
@@ -646,12 +652,6 @@ def _check_destinations(dests: dict[str, Path], protected: list[tuple[Path, str]
             if kind == "folders" and dest in root.parents:
                 raise ExportError(f"Cannot export to {dest}: {what} {root} is inside it and would "
                                   "be replaced; choose another folder.")
-    items = list(dests.items())
-    for i, (k1, d1) in enumerate(items):
-        for k2, d2 in items[i + 1:]:
-            if d1 == d2 or d1 in d2.parents or d2 in d1.parents:
-                raise ExportError(f"Cannot export {k1} to {d1} and {k2} to {d2}: give each its "
-                                  "own destination, neither inside the other.")
     for kind, dest in dests.items():
         if kind == "folders":
             if dest.is_symlink() or (dest.exists() and not dest.is_dir()):
