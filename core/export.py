@@ -346,8 +346,8 @@ def _previous_export_files(directory: Path) -> set[str] | None:
                 for name in marker["folders"].values():
                     rel = f"{part}/{name}" if part else str(name)
                     if (directory / rel).is_dir():
-                        ours |= {f"{rel}/{e.name}" for e in os.scandir(directory / rel)
-                                 if not e.is_dir(follow_symlinks=False)}
+                        with os.scandir(directory / rel) as it:
+                            ours |= {f"{rel}/{e.name}" for e in it if not e.is_dir(follow_symlinks=False)}
             return ours
     except (OSError, ValueError, AttributeError, KeyError, TypeError):
         pass
@@ -669,8 +669,11 @@ def _check_destinations(dests: dict[str, Path], protected: list[tuple[Path, str]
 
 def _folder_keeps(dest: Path, plan, overwrite: bool) -> dict[str, str]:
     """What of an existing class-folder destination the new export keeps (see module rules)."""
-    if not dest.is_dir() or not any(os.scandir(dest)):
+    if not dest.is_dir():
         return {}
+    with os.scandir(dest) as it:
+        if not any(True for _ in it):
+            return {}
     ours = _previous_export_files(dest)
     if ours is None and not overwrite:
         raise ExportError(f"Cannot export to {dest}: the folder is not empty and is not a previous "

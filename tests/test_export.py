@@ -702,3 +702,26 @@ def test_exports_honour_the_umask(tmp_path, source, umask):
         assert oct(f.stat().st_mode & 0o777) == oct(0o666 & ~umask), f
     for d in folders:
         assert oct(d.stat().st_mode & 0o777) == oct(0o777 & ~umask), d
+
+
+def test_exports_written_before_the_file_list_are_still_recognised(tmp_path, source):
+    root, photos = source
+    out = tmp_path / "set"
+    export_folders(out, photos[:3], root)
+    marker = json.loads((out / export.MARKER_NAME).read_text("utf-8"))
+    del marker["files"]
+    marker["kinfold_export"] = 1                  # the marker as the first exporter wrote it
+    (out / export.MARKER_NAME).write_text(json.dumps(marker), "utf-8")
+    (out / "README.md").write_text("mine")
+    export_folders(out, photos[3:6], root)
+    assert (out / "README.md").read_text() == "mine"
+    assert {p.label for p in photos[3:6]} == {"a_b"}  # the same folder name as "a/b" had alone
+    assert entries(out / "a_b") == sorted(Path(p.path).name for p in photos[3:6])  # old ones gone
+
+    coco = tmp_path / "old.json"
+    export_coco(coco, photos[:2])
+    doc = json.loads(coco.read_text())
+    del doc["info"]["kinfold_export"]              # a COCO export from before the key
+    coco.write_text(json.dumps(doc))
+    assert export.is_kinfold_file(coco)
+    assert export_coco(coco, photos[:1])["images"] == 1
