@@ -52,7 +52,7 @@ log = logging.getLogger(__name__)
 
 CSV_HEADER = ("path", "label", "how", "annotator", "time")
 MARKER_NAME = ".kinfold-export.json"
-MARKER_VERSION = 2           # 2: the marker lists the files Kinfold wrote ("files")
+MARKER_VERSION = 2           # 2: the marker lists the files and folders Kinfold wrote
 SPLIT_NAMES = ("train", "val", "test")
 _NAME_BYTES = 255            # the file-name limit of ext4, APFS, NTFS (UTF-16 units <= UTF-8 bytes)
 _MAX_FOLDER_BYTES = 200      # class folder names, hash suffix included: leaves room on every disk
@@ -332,23 +332,26 @@ def is_kinfold_file(path) -> bool:
 
 
 def _previous_export_files(directory: Path) -> set[str] | None:
-    """The files (relative POSIX paths) a previous Kinfold folder export wrote into
-    ``directory``, from its marker; None if the folder is not one."""
+    """What a previous Kinfold folder export wrote into ``directory``, from its marker: relative
+    POSIX paths of its files, and of its folders with a trailing ``/``; None if not an export."""
     try:
         marker = json.loads((directory / MARKER_NAME).read_text("utf-8"))
         version = marker.get("kinfold_export")
         if version == MARKER_VERSION:
-            return {str(f) for f in marker["files"]} | {MARKER_NAME}
+            return ({str(f) for f in marker["files"]} | {f"{d}/" for d in marker.get("dirs", [])}
+                    | {MARKER_NAME})
         if version == 1:
             # Written before the marker listed its files: the class folders' files were ours.
             ours = {MARKER_NAME}
             for part in list(marker.get("split") or {}) or [None]:
+                ours.add(f"{part}/" if part else "")
                 for name in marker["folders"].values():
                     rel = f"{part}/{name}" if part else str(name)
+                    ours.add(f"{rel}/")
                     if (directory / rel).is_dir():
                         with os.scandir(directory / rel) as it:
                             ours |= {f"{rel}/{e.name}" for e in it if not e.is_dir(follow_symlinks=False)}
-            return ours
+            return ours - {""}
     except (OSError, ValueError, AttributeError, KeyError, TypeError):
         pass
     return None
@@ -539,7 +542,8 @@ def _kept_entries(directory: Path, ours: set[str]) -> dict[str, str]:
     """What a destination folder holds that Kinfold did not write: ``{relative path: kind}``,
     kind ``dir``, ``link``, ``file`` or ``other``. Folders that only held Kinfold's files are
     not listed (they come back only if something kept is inside)."""
-    our_dirs = {str(a) for f in ours for a in PurePosixPath(f).parents if str(a) != "."}
+    our_dirs = ({str(a) for f in ours for a in PurePosixPath(f).parents if str(a) != "."}
+                | {d.rstrip("/") for d in ours if d.endswith("/")})
     kept: dict[str, str] = {}
 
     def fail(e: OSError):
@@ -611,7 +615,7 @@ def _write_folders(tmp: Path, plan, source_root: Path, mode: str, split, seed: i
     marker = {"kinfold_export": MARKER_VERSION, "created": _iso_utc(None),
               "mode": "link" if link else "copy",
               "split": None if split is None else _split_fractions(split), "seed": seed,
-              "folders": folders, "counts": counts, "files": sorted(files)}
+              "folders": folders, "counts": counts, "files": sorted(files), "dirs": sorted(dirs)}
     (tmp / MARKER_NAME).write_text(json.dumps(marker, ensure_ascii=False, indent=1), "utf-8")
     return marker["mode"]
 

@@ -725,3 +725,15 @@ def test_exports_written_before_the_file_list_are_still_recognised(tmp_path, sou
     coco.write_text(json.dumps(doc))
     assert export.is_kinfold_file(coco)
     assert export_coco(coco, photos[:1])["images"] == 1
+
+
+def test_reexport_removes_the_folders_kinfold_made(tmp_path, source):
+    root, photos = source
+    out = tmp_path / "set"
+    # 3 photos of one label and 3 fractions: val and test stay empty, yet they are Kinfold's.
+    export_folders(out, photos[:3], root, split=(0.8, 0.1, 0.1))
+    assert entries(out) == [export.MARKER_NAME, "test", "train", "val"]
+    (out / "val" / "mine.txt").write_text("kept")
+    export_folders(out, photos[:3], root)
+    assert entries(out) == [export.MARKER_NAME, "a_b", "val"]
+    assert entries(out / "val") == ["mine.txt"]
