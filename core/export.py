@@ -686,16 +686,19 @@ def _folder_keeps(dest: Path, plan, overwrite: bool) -> dict[str, str]:
                           "their name).")
     kept = _kept_entries(dest, ours or set())
     _, files, dirs, _ = plan
-    new = {MARKER_NAME: "file", **{f: "file" for f in files}, **{d: "dir" for d in dirs}}
-    clashes = [rel for rel, kind in kept.items() if rel in new and not (kind == new[rel] == "dir")]
+    # Compared as a case-insensitive disk would, so the rule is the same on every disk.
+    new = {_fold(MARKER_NAME): "file", **{_fold(f): "file" for f in files},
+           **{_fold(d): "dir" for d in dirs}}
+    clashes = [rel for rel, kind in kept.items()
+               if _fold(rel) in new and not (kind == new[_fold(rel)] == "dir")]
     if clashes and not overwrite:
         more = f" (and {len(clashes) - 3} more)" if len(clashes) > 3 else ""
         raise ExportError(f"Cannot export to {dest}: {', '.join(sorted(clashes)[:3])}{more} "
                           "were not written by Kinfold, and labelled photos would take their "
                           "names; move them away, or replace them (--overwrite, overwrite=True).")
-    for rel in clashes:  # overwrite: the export wins, and nothing kept stays inside a lost one
-        kept = {k: v for k, v in kept.items() if k != rel and not k.startswith(rel + "/")}
-    return kept
+    lost = set(clashes)  # overwrite: the export wins, and nothing kept stays inside a lost one
+    return {k: v for k, v in kept.items()
+            if k not in lost and not any(str(a) in lost for a in PurePosixPath(k).parents)}
 
 
 # ---------------------------------------------------------------------------- all or nothing

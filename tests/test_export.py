@@ -521,6 +521,12 @@ def test_reexport_refuses_when_a_user_file_takes_a_photos_name(tmp_path, source)
     assert _tree(out) == before
     export_folders(out, photos[:4], root, overwrite=True)  # the user said so: the photo wins
     assert target.is_symlink() and target.resolve() == (root / photos[3].path).resolve()
+    # A name that differs only in case is the same file on macOS and Windows: refused everywhere.
+    upper = target.with_name(Path(photos[4].path).name.upper())
+    upper.write_text("mine too")
+    with pytest.raises(ExportError, match="not written by Kinfold"):
+        export_folders(out, photos[:5], root)
+    assert upper.read_text() == "mine too"
 
 
 def test_export_into_a_foreign_folder_only_with_overwrite_and_keeps_its_files(tmp_path, source):
