@@ -1,6 +1,6 @@
 """Exporting labelled photos: CSV (RFC 4180), COCO JSON, and a class-folder tree.
 
-Rules every export follows (README "Exports" says the same for users):
+Rules every export follows (README, "The command line", says the same for users):
 
 - All or nothing: every requested format is first written to a hidden temporary beside its
   destination, and only when all are written are they renamed into place; a failure puts back
