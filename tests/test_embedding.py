@@ -126,8 +126,9 @@ def test_embed_files_orders_rows_and_reports_broken_photos(tmp_path, photo_folde
     seen = []
     result = embed_files(paths, extractor, batch_size=2, progress=lambda d, t, m: seen.append((d, t)))
     assert result.ok == [0, 2, 3, 4, 5]
-    assert [i for i, _ in result.failed] == [1, 6]
-    assert all(reason for _, reason in result.failed) and not result.cancelled
+    assert [i for i, _ in result.failed] == [1]        # not an image: final
+    assert [i for i, _ in result.retry] == [6]         # gone meanwhile: tried again next time
+    assert all(reason for _, reason in result.failed + result.retry) and not result.cancelled
     assert result.vectors.shape == (5, extractor.dim) and result.vectors.dtype == np.float32
     assert np.allclose(np.linalg.norm(result.vectors, axis=1), 1.0, atol=1e-5)
     assert seen[-1] == (7, 7) and [d for d, _ in seen] == sorted(d for d, _ in seen)
