@@ -94,7 +94,9 @@ def _is_text(name: str) -> bool:
         return False
 
 
-def _inside(real_root: str, path: str) -> bool:
+def is_inside(real_root: str, path: str) -> bool:
+    """Whether `path`, its symbolic links followed, lies inside the folder whose real path is `real_root`
+    (for export: a link retargeted outside after the scan must not be copied)."""
     real = os.path.realpath(path)
     return real != real_root and os.path.commonpath([real_root, real]) == real_root
 
@@ -162,7 +164,7 @@ def _link(e: os.DirEntry, rel: str, real_root: str, out: _Walk) -> None:
     if stat.S_ISDIR(st.st_mode):
         out.skipped[rel] = (0, 0, "a symbolic link to a folder: not followed (copy or move the photos "
                                   "into the folder instead)")
-    elif not _inside(real_root, e.path):
+    elif not is_inside(real_root, e.path):
         out.skipped[rel] = (0, 0, "a symbolic link to a file outside the folder: not read (only files "
                                   "inside the folder are catalogued and exported)")
     elif not stat.S_ISREG(st.st_mode):

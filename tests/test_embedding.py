@@ -137,6 +137,22 @@ def test_embed_files_orders_rows_and_reports_broken_photos(tmp_path, photo_folde
     assert ((direct * result.vectors).sum(axis=1) > 0.999).all()
 
 
+def test_network_failure_on_a_batch_is_a_retry_not_an_abort(photo_folder, extractor, monkeypatch):
+    real = extractor.embed
+    calls = []
+
+    def fails_first(batch):
+        calls.append(len(batch))
+        if len(calls) == 1:
+            raise RuntimeError("DefaultCPUAllocator: can't allocate memory")
+        return real(batch)
+
+    monkeypatch.setattr(extractor, "embed", fails_first)
+    result = embed_files(photo_folder, extractor, batch_size=2)
+    assert [i for i, _ in result.retry] == [0, 1] and "allocate memory" in result.retry[0][1]
+    assert result.ok == [2, 3, 4] and result.vectors.shape[0] == 3 and not result.failed
+
+
 def test_same_photo_twice_gives_same_vector_and_other_photos_differ(tmp_path, extractor):
     # scikit-image's cat() and chelsea() are the same photograph.
     paths = []
