@@ -107,16 +107,21 @@ class _Walk:
     skipped: dict[str, tuple[int, int, str]]               # remembered-kind skips found by the walk
     retry: dict[str, str]                                  # folders or files that could not be looked at
     unreadable_dirs: list[str]                             # relative paths of folders that failed to list
+    cancelled: bool = False
 
 
-def walk(root: Path) -> _Walk:
+def walk(root: Path, cancel: Cancel | None = None) -> _Walk:
     """Every file under root, sorted, with the walk's own skips (see the module's rule). Hidden files
-    and folders, the project store `.kinfold/` among them, are left out."""
+    and folders, the project store `.kinfold/` among them, are left out. `cancel` is asked at
+    every folder."""
     root_s = os.fspath(root)
     real_root = os.path.realpath(root_s)
     out = _Walk([], {}, {}, [])
     stack = [(root_s, "")]
     while stack:
+        if cancel is not None and cancel():
+            out.cancelled = True
+            break
         here, prefix = stack.pop()
         try:
             with os.scandir(here) as it:
@@ -181,11 +186,14 @@ def scan_folder(root: Path, previous: dict[str, PhotoRow], previous_skipped: dic
     root = Path(root)
     if not root.is_dir():
         raise NotADirectoryError(f"{root} is not a folder")
-    found = walk(root)
+    found = walk(root, cancel)
+    if found.cancelled:  # the folder was not seen whole: everything stays as it was
+        return CatalogueResult(sorted(previous.values(), key=lambda p: p.path), dict(previous_skipped),
+                               cancelled=True)
     photos: list[PhotoRow] = []
     skipped = dict(found.skipped)
     result = CatalogueResult(photos, skipped, dict(found.retry))
-    to_read: list[tuple[str, str]] = []
+    to_read: list[tuple[str, str, os.stat_result]] = []
     for rel, path, st in found.files:
         if os.path.splitext(rel)[1].lower() not in IMAGE_SUFFIXES:
             suffix = os.path.splitext(rel)[1] or "none"
@@ -199,29 +207,29 @@ def scan_folder(root: Path, previous: dict[str, PhotoRow], previous_skipped: dic
         if old_skip is not None and old_skip[:2] == (st.st_size, st.st_mtime_ns):
             skipped[rel] = old_skip
             continue
-        to_read.append((rel, path))
+        to_read.append((rel, path, st))
 
     stop = threading.Event()
 
     def read(item):
-        rel, path = item
+        rel, path, walked = item
         try:
             with open_regular(path) as fh:
                 st = os.fstat(fh.fileno())
                 width, height = probe(fh)
                 fh.seek(0)
                 row = PhotoRow(rel, fingerprint(fh, stop), st.st_size, st.st_mtime_ns, width, height)
-            return row, None, False, st
+            return row, None, False
         except _Stopped:
             return None
         except PhotoError as exc:
-            return None, str(exc), exc.retry, _lstat(path)
+            return None, str(exc), exc.retry
         except OSError as exc:   # reading the bytes for the fingerprint
-            return None, f"cannot read the file: {exc.strerror or exc}", True, None
+            return None, f"cannot read the file: {exc.strerror or exc}", True
         except MemoryError:
-            return None, "not enough memory to read it", True, None
+            return None, "not enough memory to read it", True
         except Exception as exc:  # one odd file must never stop the scan; it is tried again next time
-            return None, f"could not be read ({type(exc).__name__}: {exc})", True, None
+            return None, f"could not be read ({type(exc).__name__}: {exc})", True
 
     total = len(to_read)
     pool = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="kinfold-catalogue")
@@ -232,19 +240,20 @@ def scan_folder(root: Path, previous: dict[str, PhotoRow], previous_skipped: dic
             while submitted < total and len(pending) < 4 * threads:
                 pending.append((to_read[submitted], pool.submit(read, to_read[submitted])))
                 submitted += 1
-            (rel, _), future = pending.popleft()
+            (rel, _, walked), future = pending.popleft()
             outcome = result_or_cancel(future, cancel)
             if outcome is None:
                 result.cancelled = True
                 break
-            row, reason, again, st = outcome
+            row, reason, again = outcome
             if row is not None:
                 photos.append(row)
                 (result.changed if rel in previous else result.new).append(rel)
             elif again:
                 result.retry[rel] = reason
             else:
-                skipped[rel] = (st.st_size, st.st_mtime_ns, reason) if st else (0, 0, reason)
+                # Keyed by what the walk saw, which the next scan compares against.
+                skipped[rel] = (walked.st_size, walked.st_mtime_ns, reason)
             done += 1
             if progress:
                 progress(done, total, "reading files")
@@ -260,7 +269,7 @@ def scan_folder(root: Path, previous: dict[str, PhotoRow], previous_skipped: dic
     seen = {p.path for p in photos} | set(skipped)
     keep = set(result.retry)
     if result.cancelled:
-        keep |= {rel for rel, _ in to_read[done:]}
+        keep |= {item[0] for item in to_read[done:]}
     dirs = tuple(d + "/" for d in found.unreadable_dirs)
     for p, r in previous.items():
         if p not in seen and (p in keep or p.startswith(dirs)):
@@ -272,10 +281,3 @@ def scan_folder(root: Path, previous: dict[str, PhotoRow], previous_skipped: dic
     result.removed = sorted(p for p in previous if p not in present)
     photos.sort(key=lambda p: p.path)
     return result
-
-
-def _lstat(path: str):
-    try:
-        return os.lstat(path)
-    except OSError:
-        return None

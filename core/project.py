@@ -215,11 +215,14 @@ class Project:
         # Skips remembered before reasons were checked for being final (and named no path) are
         # looked at once more.
         remembered = self.store.skipped() if self.store.get_setting("skipped_format") == _SKIPPED_FORMAT else {}
-        cat = catalogue.scan_folder(self.folder, previous, remembered, progress=progress, cancel=cancel)
+        try:
+            cat = catalogue.scan_folder(self.folder, previous, remembered, progress=progress, cancel=cancel)
+        except OSError as exc:  # the folder itself cannot be listed (gone, no permission, I/O error)
+            raise ProjectError(f"cannot read the folder {self.folder}: {exc.strerror or exc}") from exc
         failed: dict[str, str] = {}
         retry = dict(cat.retry)
         embedded = 0
-        cancelled = cat.cancelled
+        cancelled = cat.cancelled or bool(cancel and cancel())
         todo: dict[str, PhotoRow] = {}
         paths_of: dict[str, list[str]] = {}
         if not cancelled:  # a cancelled scan does not wait for the network to load

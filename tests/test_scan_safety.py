@@ -183,6 +183,15 @@ def test_cancel_during_fingerprinting_returns_promptly(tmp_path):
         assert not any(path.startswith("huge") for path in [*p.store.skipped(), *(r.path for r in p.store.photos())])
 
 
+def test_cancel_at_once_loses_nothing(photo_project_folder):
+    with Project.open(photo_project_folder) as p:
+        p.label(["a/chelsea_0.jpg"], "cat")
+        skipped = p.store.skipped()
+        rep = p.scan(cancel=lambda: True)
+        assert rep.cancelled and rep.photos == 30 and rep.removed == 0
+        assert p.store.skipped() == skipped and p.photo_info("a/chelsea_0.jpg")["label"] == "cat"
+
+
 def test_ctrl_c_stops_a_cli_scan_and_releases_the_folder(tmp_path):
     folder = tmp_path / "photos"
     folder.mkdir()
