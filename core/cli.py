@@ -94,7 +94,7 @@ def cmd_scan(args):
               f"{rep.embedded} embedded now) in {rep.seconds:.1f} s")
         for path, reason in rep.skipped:
             print(f"skipped {path}: {reason}")
-    if interrupt.asked.is_set():
+    if rep.cancelled:  # only Ctrl+C cancels a scan here
         print(("\n" if bar.enabled else "") + "kinfold: scan interrupted; what it found and embedded so far "
               "is kept, run scan again to finish", file=sys.stderr)
         return 130

@@ -54,7 +54,7 @@ def not_regular(mode: int) -> str:
 def system_reason(exc: OSError) -> str:
     """A one-line reason for an operating-system error, without the file name."""
     if isinstance(exc, FileNotFoundError):
-        return "file not found (moved or deleted while the scan ran?)"
+        return "file not found (moved or deleted meanwhile)"
     return f"cannot read the file: {exc.strerror or exc}"
 
 

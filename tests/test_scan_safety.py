@@ -124,6 +124,29 @@ def test_read_error_while_fingerprinting_keeps_the_photo_and_is_retried(photo_pr
         assert victim not in dict(rep.skipped) and rep.photos == 30
 
 
+def test_folder_that_cannot_be_listed_keeps_its_photos(photo_project_folder, monkeypatch):
+    with Project.open(photo_project_folder) as p:
+        p.label(["b/coffee_1.jpg"], "coffee")
+    real = os.scandir
+    failing = str(photo_project_folder / "b")
+
+    def scandir(path="."):
+        if os.fspath(path) == failing:  # as a failing disk or a network share that dropped out
+            raise OSError(errno.EIO, os.strerror(errno.EIO))
+        return real(path)
+
+    monkeypatch.setattr(catalogue.os, "scandir", scandir)
+    with Project.open(photo_project_folder) as p:
+        rep = p.scan()
+        assert "cannot open the folder: Input/output error" in dict(rep.skipped)["b"]
+        assert rep.removed == 0 and rep.photos == 30
+        assert p.photo_info("b/coffee_1.jpg")["label"] == "coffee"
+        assert "cut short" in p.store.skipped()["b/broken.jpg"][2]   # its remembered skips stay too
+        monkeypatch.undo()
+        rep = p.scan()
+        assert "b" not in dict(rep.skipped) and rep.photos == 30
+
+
 def test_skips_remembered_by_an_older_kinfold_are_looked_at_again(photo_project_folder):
     """Stores written before this rule hold passing failures as final skips, with absolute paths."""
     late = photo_project_folder / "late.jpg"
