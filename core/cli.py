@@ -13,8 +13,10 @@ import errno
 import json
 import math
 import os
+import signal
 import sqlite3
 import sys
+import threading
 import time
 
 from core.export import ExportError
@@ -74,16 +76,43 @@ def _open(args, lock: bool = True) -> Project:
     return Project.open(args.folder, store=args.store, annotator=getattr(args, "annotator", None), lock=lock)
 
 
+class _InterruptToCancel:
+    """Ctrl+C (SIGINT) during a scan asks it to stop, as Cancel does in the window: the scan returns
+    within a fraction of a second with its work kept. A second Ctrl+C interrupts at once."""
+
+    def __init__(self):
+        self.asked = threading.Event()
+        self._previous = None
+
+    def __enter__(self):
+        if threading.current_thread() is threading.main_thread():
+            self._previous = signal.signal(signal.SIGINT, self._handle)
+        return self
+
+    def _handle(self, signum, frame):
+        self.asked.set()
+        signal.signal(signal.SIGINT, signal.default_int_handler)
+
+    def __exit__(self, *exc):
+        if self._previous is not None:
+            signal.signal(signal.SIGINT, self._previous)
+
+
 def cmd_scan(args):
-    with _open(args) as p:
-        rep = p.scan(progress=_Bar(not args.json))
-        if args.json:
-            _print(rep, True)
-        else:
-            print(f"{rep.photos} photos ready ({rep.new} new, {rep.changed} changed, {rep.removed} gone, "
-                  f"{rep.embedded} embedded now) in {rep.seconds:.1f} s")
-            for path, reason in rep.skipped:
-                print(f"skipped {path}: {reason}")
+    bar = _Bar(not args.json)
+    with _InterruptToCancel() as interrupt, _open(args) as p:
+        rep = p.scan(progress=bar, cancel=interrupt.asked.is_set)
+    if args.json:
+        _print(rep, True)
+    else:
+        print(f"{rep.photos} photos ready ({rep.new} new, {rep.changed} changed, {rep.removed} gone, "
+              f"{rep.embedded} embedded now) in {rep.seconds:.1f} s")
+        for path, reason in rep.skipped:
+            print(f"skipped {path}: {reason}")
+    if rep.cancelled:  # only Ctrl+C cancels a scan here
+        print(("\n" if bar.enabled else "") + "kinfold: scan interrupted; what it found and embedded so far "
+              "is kept, run scan again to finish", file=sys.stderr)
+        return 130
 
 
 def cmd_propose(args):
