@@ -112,6 +112,10 @@ def run(folder: Path, truth: dict[str, str], actions_wanted: int, sitting: int, 
     def key(k, mods=Qt.KeyboardModifier.NoModifier):
         QTest.keyClick(w.windowHandle(), k, mods)
 
+    def next_group_ready(before: int):
+        """The window showed a new group and takes the next decision (or has nothing left to show)."""
+        return lambda: shown[0] > before and (w.current() is None or w.actions["accept"].isEnabled())
+
     def script():
         """The annotator, as a generator: it yields a condition to wait for (checked every ~1 ms)."""
         marks["open"] = time.perf_counter()
@@ -130,7 +134,7 @@ def run(folder: Path, truth: dict[str, str], actions_wanted: int, sitting: int, 
             if g.splittable and minority / len(classes) >= 0.3:
                 t0 = time.perf_counter()
                 key(Qt.Key.Key_D, Qt.KeyboardModifier.ControlModifier)
-                yield lambda: shown[0] > before
+                yield next_group_ready(before)
                 log.append(dict(kind="split", start=t0, end=time.perf_counter()))
                 actions += 1
                 counts["split"] += 1
@@ -168,17 +172,18 @@ def run(folder: Path, truth: dict[str, str], actions_wanted: int, sitting: int, 
                         actions += 1            # typing a new label name
                 t0 = time.perf_counter()
                 key(Qt.Key.Key_Return)
-                yield lambda: shown[0] > before
+                yield next_group_ready(before)
                 log.append(dict(kind="accept", start=t0, end=time.perf_counter()))
                 used.add(m)
                 actions += 1
                 counts["accept"] += 1
                 counts["labelled"] += len(g.members) - len(drop)
             if actions >= next_relearn and w.actions["relearn"].isVisible():
+                yield lambda: w.actions["relearn"].isEnabled()
                 before = shown[0]
                 t0 = time.perf_counter()
                 key(Qt.Key.Key_R, Qt.KeyboardModifier.ControlModifier | Qt.KeyboardModifier.ShiftModifier)
-                yield lambda: shown[0] > before
+                yield next_group_ready(before)
                 log.append(dict(kind="relearn", start=t0, end=time.perf_counter()))
                 next_relearn = actions + sitting
         marks["end"] = time.perf_counter()
