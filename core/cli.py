@@ -186,9 +186,16 @@ def cmd_relearn(args):
 
 
 def cmd_open(args):
-    from app.main import main as app_main  # Qt is imported only for the window
+    # The engine never imports the window: the window replaces this process (same pid, so whoever
+    # started `kinfold open` can still stop it), and Qt loads only there.
+    import importlib.util
 
-    return app_main([args.folder] if args.folder else [])
+    if importlib.util.find_spec("PySide6") is None:
+        raise ProjectError("the window needs PySide6: pip install PySide6-Essentials (see README, Set up)")
+    argv = [sys.executable, "-m", "app.main"] + ([args.folder] if args.folder else [])
+    sys.stdout.flush()
+    sys.stderr.flush()
+    os.execv(sys.executable, argv)
 
 
 class _Parser(argparse.ArgumentParser):
