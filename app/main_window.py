@@ -345,6 +345,8 @@ class MainWindow(QMainWindow):
         self.group_page.label.setText(text)
 
     def accept(self) -> None:
+        if not self._confirm_unseen():
+            return
         g = self.current()
         label = self.group_page.label.text().strip()
         if not label:
@@ -359,6 +361,10 @@ class MainWindow(QMainWindow):
                                 (f"; {len(drop)} taken out went back to the pool." if drop else "."))
             self.group_page.grid.setFocus()
             self.refresh()
+
+    def _confirm_unseen(self) -> bool:
+        """False while photos never on screen would be labelled and the user has not confirmed (once)."""
+        return self.group_page.confirm_unseen()
 
     def toggle_member(self) -> None:
         idx = self.group_page.grid.currentIndex()
