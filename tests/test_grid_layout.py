@@ -1,0 +1,272 @@
+"""What is accepted is what was seen: the group grid at every group size and window size, checked against
+Qt's own layout of the cards (QListView.visualRect / indexAt, the scrollbar Qt shows), never against the
+sizing formula; keys delivered to the focused widget, clicks to the viewport at a card's drawn centre."""
+import os
+
+os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")  # before any Qt import
+
+import shutil
+from pathlib import Path
+
+import pytest
+from PySide6.QtCore import QEvent, QPointF, QSettings, Qt
+from PySide6.QtGui import QMouseEvent
+from PySide6.QtTest import QTest
+from PySide6.QtWidgets import QApplication
+
+from app.main_window import MainWindow
+from app.photo_grid import MAX_SIDE, MIN_SIDE
+
+ROOT = Path(__file__).resolve().parent.parent
+WINDOW_SIZES = [(1024, 700), (1152, 768), (1280, 800), (1366, 768), (1440, 900), (1600, 900), (1920, 1080)]
+LEFT, NONE = Qt.MouseButton.LeftButton, Qt.KeyboardModifier.NoModifier
+
+
+@pytest.fixture(scope="module")
+def photos(tmp_path_factory):
+    """96 distinct photo files (the demo folder's, regenerated with its generator when absent)."""
+    folder = ROOT / "sample_images"
+    if not (folder.is_dir() and len(list(folder.rglob("*.jpg"))) >= 96):
+        from core.demo import generate_demo
+
+        folder = tmp_path_factory.mktemp("demo") / "photos"
+        generate_demo(folder, folder.parent / "truth.csv", seed=7)
+    paths = sorted(p.relative_to(folder).as_posix() for p in folder.rglob("*.jpg"))[:96]
+    assert len(paths) == 96
+    return folder, paths
+
+
+@pytest.fixture
+def bare(qtbot, tmp_path, photos):
+    """The window on its group page with photos but no folder open: layout only, no engine."""
+    folder, paths = photos
+    w = MainWindow(QSettings(str(tmp_path / "settings.ini"), QSettings.Format.IniFormat))
+    qtbot.addWidget(w)
+    w.thumbs.set_folder(folder)
+    w.stack.setCurrentWidget(w.work)
+    w.show()
+    w.activateWindow()
+    qtbot.waitExposed(w)
+    return w, paths
+
+
+def focused_key(k):
+    """A key as a window system delivers it: to whichever widget has the focus."""
+    QTest.keyClick(QApplication.focusWidget(), k)
+
+
+def rects(grid, n):
+    return [grid.visualRect(grid.model().index(r)) for r in range(n)]
+
+
+def drawn_order(grid, n):
+    """Cards in reading order of where Qt drew them: rows top to bottom, left to right in a row."""
+    return sorted(range(n), key=lambda r: (grid.visualRect(grid.model().index(r)).y(),
+                                           grid.visualRect(grid.model().index(r)).x()))
+
+
+def test_every_member_is_reachable_at_every_size(qtbot, bare):
+    """Group sizes 1-96 at window sizes 1024x700 to 1920x1080: every card either lies whole inside
+    the viewport (and then no scrollbar is shown), or the grid shows a scrollbar whose range reaches
+    the last card; cards are never below the readable size; the size is the largest that fits."""
+    w, paths = bare
+    grid, model = w.group_page.grid, w.group_model
+    sb = grid.verticalScrollBar()
+    scrolled = 0
+    for size in WINDOW_SIZES:
+        w.resize(*size)
+        qtbot.wait(20)
+        for n in range(1, 97):
+            model.set_photos(paths[:n])
+            QApplication.processEvents()
+            vp = grid.viewport().rect()
+            cards = rects(grid, n)
+            where = f"{n} photos at {size[0]}x{size[1]} (side {model.side})"
+            assert model.side >= MIN_SIDE, where
+            # The sizing rule agrees with Qt's layout (else refit's check against it stepped down), so
+            # the size the next group's thumbnails are decoded at in advance is the size shown.
+            assert model.side == grid.side_for(n), where
+            assert all(0 <= r.left() and r.right() < vp.width() for r in cards), where  # no column cut off
+            if all(vp.contains(r) for r in cards):
+                assert not sb.isVisible(), where                       # no scrollbar with nothing to scroll
+                if model.side < MAX_SIDE:  # one size step larger, Qt's layout would need scrolling
+                    model.set_side(model.side + 8)
+                    grid.doItemsLayout()
+                    assert (not all(vp.contains(r) for r in rects(grid, n))
+                            or grid.contentsSize().height() > grid.maximumViewportSize().height()), where
+                    grid.refit()
+            else:
+                scrolled += 1
+                assert model.side == MIN_SIDE, where                   # shrink first, scroll last
+                assert sb.isVisible() and sb.maximum() > 0, where      # never a cut-off row without a scrollbar
+                assert max(r.bottom() for r in cards) < vp.height() + sb.maximum(), where
+                assert all(r.height() <= vp.height() for r in cards), where
+    assert scrolled > 0  # the large groups at the small sizes did scroll
+
+
+@pytest.mark.parametrize("size", [(1024, 700), (1366, 768), (1920, 1080)])
+def test_keys_follow_the_drawn_layout(qtbot, bare, size):
+    """From the first card, Right walks every member in the order Qt drew them; Down lands on the card
+    drawn straight below; End reaches the last card and scrolls it whole into view; Home goes back;
+    PageDown moves down the drawn rows."""
+    w, paths = bare
+    grid, model = w.group_page.grid, w.group_model
+    w.resize(*size)
+    for n in range(1, 97):
+        model.set_photos(paths[:n])
+        QApplication.processEvents()
+        grid.setFocus()
+        assert QApplication.focusWidget() is grid
+        where = f"{n} photos at {size[0]}x{size[1]}"
+        order = drawn_order(grid, n)
+        grid.setCurrentIndex(model.index(0))
+        walk = [0]
+        for _ in range(n - 1):
+            focused_key(Qt.Key.Key_Right)
+            walk.append(grid.currentIndex().row())
+        assert walk == order, where
+
+        grid.setCurrentIndex(model.index(0))
+        grid.scrollToTop()
+        at = 0
+        while True:
+            focused_key(Qt.Key.Key_Down)
+            now = grid.currentIndex().row()
+            below = [r for r in range(n) if grid.visualRect(model.index(r)).x() == grid.visualRect(model.index(at)).x()
+                     and grid.visualRect(model.index(r)).y() > grid.visualRect(model.index(at)).y()]
+            if not below:
+                assert now == at, where
+                break
+            nearest = min(below, key=lambda r: grid.visualRect(model.index(r)).y())
+            assert now == nearest, where
+            assert grid.viewport().rect().contains(grid.visualRect(model.index(now))), where  # scrolled into view
+            at = now
+
+        focused_key(Qt.Key.Key_End)
+        assert grid.currentIndex().row() == order[-1], where
+        assert grid.viewport().rect().contains(grid.visualRect(model.index(order[-1]))), where
+        focused_key(Qt.Key.Key_Home)
+        assert grid.currentIndex().row() == 0, where
+        y0 = grid.visualRect(model.index(0)).y()
+        focused_key(Qt.Key.Key_PageDown)
+        row = grid.currentIndex().row()
+        assert grid.visualRect(model.index(row)).y() >= y0, where
+        assert grid.viewport().rect().contains(grid.visualRect(model.index(row))), where
+
+
+# -- with a folder open: the engine checks what an accept labelled ---------------------------------
+
+def _open(qtbot, tmp_path, scanned_demo, size):
+    folder = tmp_path / "photos"
+    shutil.copytree(scanned_demo, folder, symlinks=True)
+    w = MainWindow(QSettings(str(tmp_path / "settings.ini"), QSettings.Format.IniFormat))
+    qtbot.addWidget(w)
+    w.resize(*size)
+    w.show()
+    w.activateWindow()
+    qtbot.waitExposed(w)
+    with qtbot.waitSignal(w.groups_shown, timeout=180_000):
+        assert w.open_folder(str(folder))
+    return w
+
+
+def _all_seen(qtbot, grid):
+    qtbot.waitUntil(lambda: not grid.unseen_paths(), timeout=20_000)
+
+
+def click(grid, row):
+    QTest.mouseClick(grid.viewport(), LEFT, NONE, grid.visualRect(grid.model().index(row)).center())
+
+
+def double_click(grid, row):
+    """A double-click as the X server delivers it to Qt (seen with xdotool under Xvfb): press,
+    release, then a double-click event in place of the second press, then its release."""
+    at = grid.visualRect(grid.model().index(row)).center()
+    QTest.mouseClick(grid.viewport(), LEFT, NONE, at)
+    ev = QMouseEvent(QEvent.Type.MouseButtonDblClick, QPointF(at), QPointF(grid.viewport().mapToGlobal(at)),
+                     LEFT, LEFT, NONE)
+    QApplication.sendEvent(grid.viewport(), ev)
+    QTest.mouseRelease(grid.viewport(), LEFT, NONE, at)
+
+
+def test_click_takes_out_and_the_header_counts_what_accept_labels(qtbot, tmp_path, scanned_demo):
+    w = _open(qtbot, tmp_path, scanned_demo, (1280, 800))
+    page, grid, model, p = w.group_page, w.group_page.grid, w.group_model, w.project
+    g = w.current()
+    n = len(g.members)
+    assert n >= 4
+    assert f"Accept will label all {n} photos" in page.header.text()
+    assert "Click to take it out" in model.index(0).data(Qt.ItemDataRole.ToolTipRole)
+    assert "/" in model.index(0).data(Qt.ItemDataRole.DisplayRole) or "/" not in g.members[0]  # subfolder shown
+
+    click(grid, 1)
+    click(grid, 3)
+    assert model.taken_out() == [g.members[1], g.members[3]]
+    assert f"Accept will label {n - 2} of {n} photos (2 taken out)" in page.header.text()
+    click(grid, 3)  # put back
+    assert model.taken_out() == [g.members[1]]
+    assert f"Accept will label {n - 1} of {n} photos (1 taken out)" in page.header.text()
+
+    double_click(grid, 2)  # a double-click previews and takes nothing out
+    assert model.taken_out() == [g.members[1]]
+    assert w.last_preview.isVisible() and w.last_preview.path == g.members[2]
+    w.last_preview.close()
+    w.activateWindow()
+    qtbot.waitUntil(lambda: QApplication.activeWindow() is w)
+
+    _all_seen(qtbot, grid)
+    page.label.setText("bolt")
+    grid.setFocus()
+    before = p.status().labelled
+    focused_key(Qt.Key.Key_Return)
+    # Outside the window: the engine's own count of labelled photos grew by the header's figure.
+    assert p.status().labelled - before == n - 1
+    assert p.photo_info(g.members[1])["state"] == "unlabelled"
+
+
+def test_accept_asks_before_labelling_photos_never_on_screen(qtbot, tmp_path, scanned_demo):
+    w = _open(qtbot, tmp_path, scanned_demo, (1024, 700))
+    page, grid, model, p = w.group_page, w.group_page.grid, w.group_model, w.project
+    g = w.current()
+    qtbot.waitUntil(lambda: len(grid.seen) > 0, timeout=20_000)
+    unseen = grid.unseen_paths()
+    if not unseen:
+        pytest.skip("the demo's first group fits the smallest window whole")
+    # The unseen ones are exactly the cards Qt has not placed whole inside the viewport.
+    vp = grid.viewport().rect()
+    outside = [g.members[r] for r in range(len(g.members)) if not vp.contains(grid.visualRect(model.index(r)))]
+    assert set(unseen) >= set(outside) and outside
+
+    page.label.setText("spring")
+    grid.setFocus()
+    decisions = len(p.store.decisions())
+    focused_key(Qt.Key.Key_Return)
+    assert len(p.store.decisions()) == decisions          # nothing labelled yet: asked first
+    assert page.question.isVisible() and f"{len(unseen)} photo" in page.question_text.text()
+
+    focused_key(Qt.Key.Key_Escape)                          # Esc goes back to the first unseen photo
+    assert not page.question.isVisible()
+    first = g.members.index(unseen[0])
+    assert grid.currentIndex().row() == first
+    qtbot.waitUntil(lambda: vp.contains(grid.visualRect(model.index(first))), timeout=5_000)
+
+    focused_key(Qt.Key.Key_Return)                          # still some unseen: asked again, once
+    left = grid.unseen_paths()
+    if left:
+        assert page.question.isVisible()
+        focused_key(Qt.Key.Key_Return)                      # Return confirms
+    assert len(p.store.decisions()) == decisions + 1
+    last = p.store.decisions()[-1]
+    assert last["kind"] == "accept" and sorted(last["photos"]) == sorted(g.members)
+
+
+def test_accept_does_not_ask_when_everything_was_seen(qtbot, tmp_path, scanned_demo):
+    w = _open(qtbot, tmp_path, scanned_demo, (1920, 1080))
+    page, grid, p = w.group_page, w.group_page.grid, w.project
+    g = w.current()
+    _all_seen(qtbot, grid)
+    page.label.setText("washer")
+    grid.setFocus()
+    focused_key(Qt.Key.Key_Return)
+    assert not page.question.isVisible()
+    assert p.store.decisions()[-1]["kind"] == "accept" and sorted(p.store.decisions()[-1]["photos"]) == sorted(g.members)
