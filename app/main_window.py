@@ -15,7 +15,7 @@ from app.export_dialog import ExportDialog
 from app.help_overlay import GRID_KEYS, HelpOverlay
 from app.history import labelled_curve
 from app.jobs import Job
-from app.pages import GroupPage, ReviewPage, ScanPage, StartPage, action_button
+from app.pages import GroupPage, ReviewPage, ScanPage, StartPage, action_button, scan_summary
 from app.photo_grid import PhotoModel
 from app.preview import PreviewDialog
 from app.side_panel import SidePanel
@@ -292,10 +292,7 @@ class MainWindow(QMainWindow):
     def _scanned(self, report) -> None:
         self.last_scan = report
         self.side.show_skipped(report.skipped)
-        note = (f"Scan stopped early: {report.photos} photos ready; open the folder again to go on."
-                if report.cancelled else
-                f"{report.photos} photos ready ({report.embedded} embedded now, {len(report.skipped)} skipped).")
-        self.group_page.say(note)
+        self.group_page.say(scan_summary(report))
         self.scan_page.title.setText("Finding groups")
         self._propose_in_background(self.scan_page.progress)
 
