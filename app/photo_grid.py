@@ -332,8 +332,7 @@ class PhotoGrid(QListView):
 
     def keyPressEvent(self, event):
         if event.key() == Qt.Key.Key_Escape:
-            self.escaped.emit()
-            return
+            self.escaped.emit()  # and on to the page (the review page goes back on Esc)
         text = event.text()
         mods = event.modifiers() & ~Qt.KeyboardModifier.ShiftModifier & ~Qt.KeyboardModifier.KeypadModifier
         if text and text.isprintable() and not text.isspace() and text != "?" and mods == Qt.KeyboardModifier.NoModifier:

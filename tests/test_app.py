@@ -74,6 +74,12 @@ def key(qtbot, widget, k, mods=Qt.KeyboardModifier.NoModifier):
     qtbot.wait(10)
 
 
+def seen_all(qtbot, w):
+    """Wait until every card of the group has been drawn whole with its picture; before that an
+    accept asks first (tests/test_grid_layout.py checks the asking)."""
+    qtbot.waitUntil(lambda: not w.group_page.grid.unseen_paths(), timeout=20_000)
+
+
 def type_label(qtbot, w, text):
     """Type on the grid: the first letter jumps to the label field, the rest goes there."""
     grid, field = w.group_page.grid, w.group_page.label
@@ -97,6 +103,7 @@ def test_label_a_folder_by_keyboard(qtbot, window, folder, tmp_path):
 
     # 1. Accept the first group by keyboard under a new label.
     type_label(qtbot, w, "hex nut")
+    seen_all(qtbot, w)
     key(qtbot, w.group_page.label, Qt.Key.Key_Return)
     st = p.status()
     assert st.labelled == len(first.members) and st.by_label == {"hex nut": len(first.members)}
@@ -120,6 +127,7 @@ def test_label_a_folder_by_keyboard(qtbot, window, folder, tmp_path):
         type_label(qtbot, w, "washer")
     label2 = w.group_page.label.text()
     grid.setFocus()
+    seen_all(qtbot, w)
     key(qtbot, grid, Qt.Key.Key_Return)
     assert p.status().labelled == st.labelled + len(second.members) - 1
     last = p.store.decisions()[-1]
