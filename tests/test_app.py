@@ -327,11 +327,14 @@ def test_gui_stays_responsive_during_a_real_scan(qtbot, window, demo_source, tmp
     fresh = tmp_path / "fresh"
     shutil.copytree(demo_source, fresh, ignore=_ignore_store)
     gaps, last = [], [time.perf_counter()]
+    shown = window.scan_page.progress
+    samples = []  # what the scan page showed: (step line, step, bar value, bar maximum, text)
 
     def beat():
         now = time.perf_counter()
         gaps.append(now - last[0])
         last[0] = now
+        samples.append((shown.overall.text(), shown.step, shown.bar.value(), shown.bar.maximum(), shown.text.text()))
 
     timer = QTimer()
     timer.setInterval(10)
@@ -351,6 +354,25 @@ def test_gui_stays_responsive_during_a_real_scan(qtbot, window, demo_source, tmp
     # machine, 324 ms once with a benchmark running beside it). The test guards the design: a scan on
     # the GUI thread would stall it for the whole scan (seconds), far beyond this bound.
     assert longest < 1000 < seconds * 1000 / 2
+
+    # The scan page names its step whenever its bar starts again, and its figures are true.
+    steps = [step for _, step, _, _, _ in samples]
+    assert steps == sorted(steps) and {0, 1} <= set(steps)         # reading, then embedding, in order
+    for (line0, step0, value0, _, _), (line1, step1, value1, _, _) in zip(samples, samples[1:]):
+        if value1 < value0:
+            assert step1 > step0 and line1 != line0                 # the bar fell back only with a new step named
+    # Outside reference: the files whose type Pillow registers as an image format.
+    photo_files = sum(1 for f in fresh.rglob("*") if f.suffix.lower() in Image.registered_extensions())
+    read = [m for _, step, _, m, _ in samples if step == 0]
+    embedding = [(v, m, t) for _, step, v, m, t in samples if step == 1]
+    assert read and max(read) == photo_files                        # step 1 counts the photo files read
+    assert max(m for _, m, _ in embedding) == photo_files           # a fresh folder: every one is embedded
+    assert any("photos embedded" in t for v, m, t in embedding if 0 < v < m)
+    assert shown.overall.text() == "Step 3 of 3"                    # finding groups once the scan ended
+    assert f"{report.embedded} embedded" in shown.step_lines[1].text()
+    note = window.group_page.message.text()
+    assert note.startswith(f"{report.photos} photos ready ({report.embedded} embedded now")
+    assert report.photos == window.project.status().photos
 
 
 @pytest.mark.skipif(not _relearning_offered(), reason="core.relearning does not offer relearn_project yet")
