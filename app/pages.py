@@ -240,8 +240,8 @@ def scan_summary(report) -> str:
     ready = count(report.photos, "photo")
     if report.cancelled:
         return f"Scan stopped early: {ready} ready; open the folder again to go on."
-    left_out = f", {count(len(report.skipped), 'file')} left out (listed in the side panel)" if report.skipped else ""
-    return f"{ready} ready ({report.embedded} embedded now{left_out})."
+    left_out = f"; {count(len(report.skipped), 'file')} left out, listed in the side panel" if report.skipped else ""
+    return f"{ready} ready ({report.embedded} embedded now){left_out}."
 
 
 class ScanPage(QWidget):

@@ -25,6 +25,19 @@ def box_height(side: int) -> int:
     return round(side * BOX_RATIO)
 
 
+def elide_path(fm: QFontMetrics, path: str, width: int) -> str:
+    """A relative path cut to `width` px: the subfolders shortened in the middle before the file name is."""
+    if fm.horizontalAdvance(path) <= width or "/" not in path:
+        return fm.elidedText(path, Qt.TextElideMode.ElideMiddle, width)
+    folder, name = path.rsplit("/", 1)
+    room = width - fm.horizontalAdvance("/" + name)
+    if room >= fm.horizontalAdvance("draw…ay"):  # enough to recognise the folder by
+        return fm.elidedText(folder, Qt.TextElideMode.ElideMiddle, room) + "/" + name
+    if fm.horizontalAdvance("…/" + name) <= width:
+        return "…/" + name
+    return fm.elidedText(name, Qt.TextElideMode.ElideMiddle, width)
+
+
 class PhotoModel(QAbstractListModel):
     """The photos of a grid by relative path, with the set taken out. `out_changed` says when a photo
     was taken out or put back; `hint` is the line of the tooltip saying what the mouse does."""
@@ -156,9 +169,8 @@ class PhotoCard(QStyledItemDelegate):
         font.setStrikeOut(out)
         painter.setFont(font)
         painter.setPen(QColor(theme.MUTED if out else theme.INK))
-        name = str(index.data(Qt.ItemDataRole.DisplayRole))
         painter.drawText(text_rect, Qt.AlignmentFlag.AlignHCenter,
-                         fm.elidedText(name, Qt.TextElideMode.ElideMiddle, text_rect.width()))
+                         elide_path(fm, str(index.data(Qt.ItemDataRole.DisplayRole)), text_rect.width()))
         if self.notes:
             font.setStrikeOut(False)
             painter.setFont(font)
