@@ -270,7 +270,6 @@ class PhotoGrid(QListView):
         self.setWrapping(True)
         self.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
         self.setVerticalScrollMode(QAbstractItemView.ScrollMode.ScrollPerPixel)
-        self.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)  # rows wrap instead
         self.fit = fit
         self.seen: set[int] = set()  # rows drawn whole, with their picture, since the photos were set
         self.doubleClicked.connect(lambda idx: self.opened.emit(idx.data(PATH_ROLE)))
