@@ -75,8 +75,12 @@ def key(qtbot, widget, k, mods=Qt.KeyboardModifier.NoModifier):
 
 
 def seen_all(qtbot, w):
-    """Wait until every card of the group has been drawn whole with its picture; before that an
-    accept asks first (tests/test_grid_layout.py checks the asking)."""
+    """Scroll through the group until every card has been drawn whole with its picture; before that
+    an accept asks first (tests/test_grid_layout.py checks the asking)."""
+    bar = w.group_page.grid.verticalScrollBar()
+    for value in range(0, bar.maximum() + bar.pageStep(), max(bar.pageStep(), 1)):
+        bar.setValue(value)  # look through the whole group, as a mouse user drags the scrollbar
+        qtbot.wait(50)
     qtbot.waitUntil(lambda: not w.group_page.grid.unseen_paths(), timeout=20_000)
 
 

@@ -171,6 +171,11 @@ def _open(qtbot, tmp_path, scanned_demo, size):
 
 
 def _all_seen(qtbot, grid):
+    """Look at the whole group as a mouse user does: drag the scrollbar down a page at a time."""
+    bar = grid.verticalScrollBar()
+    for value in range(0, bar.maximum() + bar.pageStep(), max(bar.pageStep(), 1)):
+        bar.setValue(value)
+        qtbot.wait(50)
     qtbot.waitUntil(lambda: not grid.unseen_paths(), timeout=20_000)
 
 
