@@ -166,10 +166,15 @@ class ScanProgress(JobProgress):
     def _summary(self, k: int) -> str:
         done, total, message = self._last if self.step == k else (0, 0, "")
         if k == self.READ:
-            return f"{count(total, 'file')} read" if total else "no new or changed files"
+            if not total:
+                return "no new or changed files"
+            return f"{count(total, 'file')} read" if done >= total else f"{done} of {count(total, 'file')} read"
         if k == self.EMBED:
+            if not total:
+                return "every photo was already embedded"
+            # The split between embedded and unreadable is known only from the engine's closing words.
             return self._embed_result(done, total, message) or (
-                f"{done} of {count(total, 'photo')} embedded" if total else "every photo was already embedded")
+                f"{done} of {count(total, 'photo')} through (unreadable ones are listed when the scan ends)")
         return "done"
 
     def _draw_steps(self) -> None:

@@ -414,3 +414,30 @@ def test_cancelling_a_scan_keeps_what_was_embedded(qtbot, window, demo_source, t
     assert report.photos == report.embedded                     # a fresh folder: ready means embedded now
     assert w.project.status().photos == report.photos
     assert "stopped early" in w.group_page.message.text()
+
+
+def test_scan_steps_stay_true_over_chunked_embedding(qtbot):
+    """The engine embeds in chunks of 1,024 and each chunk's closing words count that chunk only
+    (core/project.py, core/embedding.py); the scan page must not pass them off as the whole scan's."""
+    from app.pages import ScanProgress
+
+    shown = ScanProgress()
+    qtbot.addWidget(shown)
+
+    class Named:
+        name = "scan"
+        progress = type("S", (), {"connect": lambda self, f: None})()
+
+    shown.attach(Named())
+    for done in range(1, 2501, 500):
+        shown.show_progress(done, 2500, "reading files")
+    assert shown.overall.text() == "Step 1 of 3" and shown.bar.maximum() == 2500
+    # Chunk 1 of 3 (the messages core.project.scan passes on: overall counts, chunk-local words).
+    shown.show_progress(1000, 3000, "embedded 1000 of 1024 photos")
+    assert shown.overall.text() == "Step 2 of 3" and "2500 files read" in shown.step_lines[0].text()
+    shown.show_progress(1024, 3000, "done: 1020 embedded, 4 could not be read")
+    assert shown.text.text().startswith("1024 of 3000 photos embedded")  # not "1020 embedded"
+    shown.show_progress(3000, 3000, "done: 950 embedded, 2 could not be read")  # the last chunk's words
+    assert "950 embedded" not in shown.text.text() and shown.text.text().startswith("3000 of 3000 photos embedded")
+    shown._enter(shown.GROUPS)
+    assert "3000 of 3000 photos through" in shown.step_lines[1].text()
