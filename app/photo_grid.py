@@ -51,7 +51,6 @@ class PhotoModel(QAbstractListModel):
         self.paths: list[str] = []
         self.notes: list[str] = []
         self.out: set[str] = set()
-        self.has_folders = False
         self.side = 160
         self._rows: dict[str, list[int]] = {}
         thumbs.ready.connect(self._thumb_ready)
@@ -61,7 +60,6 @@ class PhotoModel(QAbstractListModel):
         self.paths = list(paths)
         self.notes = list(notes) if notes is not None else [""] * len(self.paths)
         self.out = set()
-        self.has_folders = any("/" in p for p in self.paths)
         self._rows = {}
         for i, p in enumerate(self.paths):
             self._rows.setdefault(p, []).append(i)
@@ -114,24 +112,19 @@ class PhotoModel(QAbstractListModel):
 
 
 class PhotoCard(QStyledItemDelegate):
-    """One card: thumbnail in a 4:3 box, then the file name and, when the grid holds photos from
-    subfolders, the subfolder on its own line (so both stay readable at the smallest card size);
-    a grid with notes shows the path shortened on one line and the note below."""
+    """One card: thumbnail in a square box, file name, optional note line."""
 
     def __init__(self, parent=None, notes: bool = False):
         super().__init__(parent)
         self.notes = notes
 
-    def folder_line(self, model: PhotoModel) -> bool:
-        return not self.notes and model.has_folders
-
-    def _lines(self, model: PhotoModel) -> int:
-        return 2 if self.notes or self.folder_line(model) else 1
+    def _lines(self) -> int:
+        return 2 if self.notes else 1
 
     def sizeHint(self, option, index):
         side = index.model().side
         fm = QFontMetrics(option.font)
-        return QSize(side + 2 * PAD, box_height(side) + 2 * PAD + self._lines(index.model()) * (fm.height() + 2))
+        return QSize(side + 2 * PAD, box_height(side) + 2 * PAD + self._lines() * (fm.height() + 2))
 
     def paint(self, painter: QPainter, option, index):
         painter.save()
@@ -176,19 +169,14 @@ class PhotoCard(QStyledItemDelegate):
         font.setStrikeOut(out)
         painter.setFont(font)
         painter.setPen(QColor(theme.MUTED if out else theme.INK))
-        path = str(index.data(Qt.ItemDataRole.DisplayRole))
-        folder, _, name = path.rpartition("/")
-        two = self.folder_line(index.model())
-        first = name if two else elide_path(fm, path, text_rect.width())
         painter.drawText(text_rect, Qt.AlignmentFlag.AlignHCenter,
-                         fm.elidedText(first, Qt.TextElideMode.ElideMiddle, text_rect.width()))
-        second = (folder + "/" if folder else "") if two else str(index.data(NOTE_ROLE) or "") if self.notes else ""
-        if second:
+                         elide_path(fm, str(index.data(Qt.ItemDataRole.DisplayRole)), text_rect.width()))
+        if self.notes:
             font.setStrikeOut(False)
             painter.setFont(font)
             painter.setPen(QColor(theme.MUTED))
             painter.drawText(text_rect.translated(0, fm.height() + 2), Qt.AlignmentFlag.AlignHCenter,
-                             fm.elidedText(second, Qt.TextElideMode.ElideMiddle, text_rect.width()))
+                             str(index.data(NOTE_ROLE) or ""))
         if current:  # the keyboard position: a thick outline, visible without colour vision
             painter.setBrush(Qt.BrushStyle.NoBrush)
             painter.setPen(QPen(QColor(theme.INK), 3))
@@ -306,7 +294,7 @@ class PhotoGrid(QListView):
 
     def _caption_height(self) -> int:
         self.ensurePolished()  # the style sheet's font, as the cards will be drawn with it
-        return self.card._lines(self.photo_model()) * (QFontMetrics(self.font()).height() + 2)
+        return self.card._lines() * (QFontMetrics(self.font()).height() + 2)
 
     def side_for(self, count: int) -> int:
         width, height = self.layout_area()
