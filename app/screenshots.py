@@ -4,7 +4,9 @@
     python -m app.screenshots --out DIR --folder PHOTOS
 
 Runs without a screen (Qt's offscreen platform unless QT_QPA_PLATFORM says otherwise; xvfb-run works too).
-The demo folder is copied to a temporary place and scanned there, so the originals are not touched.
+The demo folder is copied to a temporary home folder and scanned there, so the originals are not
+touched, and the window starts from empty settings there: no path of the machine that rendered the
+pictures (recently opened folders, the status bar, the export report) appears in them.
 """
 from __future__ import annotations
 
@@ -61,15 +63,24 @@ def render(out: Path, source: Path) -> list[Path]:
 
     from app.main_window import MainWindow
 
-    app = QApplication.instance() or QApplication(sys.argv[:1])
+    out = out.resolve()
+    source = source.resolve()
     out.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix="kinfold-shots-"))
+    home = tmp / "home"
+    (home / ".config").mkdir(parents=True)
+    saved_env = {k: os.environ.get(k) for k in ("HOME", "XDG_CONFIG_HOME")}
+    saved_cwd = os.getcwd()
+    # A clean home and settings folder, and the home as working folder: the export below writes to a
+    # relative destination, so its report names no machine path either.
+    os.environ.update(HOME=str(home), XDG_CONFIG_HOME=str(home / ".config"))
+    os.chdir(home)
+    app = QApplication.instance() or QApplication(sys.argv[:1])
     written = []
     try:
-        folder = tmp / "spare-parts"
+        folder = home / "spare-parts"
         shutil.copytree(source, folder, ignore=lambda _d, names: [n for n in names if n == ".kinfold"])
-        settings = QSettings(str(tmp / "settings.ini"), QSettings.Format.IniFormat)
-        settings.setValue("recent", [str(folder), str(source.resolve())])
+        settings = QSettings(str(home / ".config" / "kinfold.ini"), QSettings.Format.IniFormat)
         w = MainWindow(settings)
         w.resize(*SIZE)
         w.show()
@@ -79,6 +90,7 @@ def render(out: Path, source: Path) -> list[Path]:
         written.append(out / "1-start.png")
 
         w.open_folder(str(folder))
+        w.statusBar().clearMessage()  # it names the folder by its full path, here a temporary one
         bar = w.scan_page.progress.bar
         text = w.scan_page.progress.text
         _wait(app, lambda: ("embedded" in text.text() and bar.value() > bar.maximum() * 0.4) or bool(w.groups), 300)
@@ -128,7 +140,7 @@ def render(out: Path, source: Path) -> list[Path]:
 
         w.export()
         exp = w.last_export
-        exp.destination.setText(str(tmp / "spare-parts-labels"))
+        exp.destination.setText("spare-parts-labels")
         exp.split.setChecked(True)
         exp.run.click()
         _wait(app, lambda: exp.written is not None or "⚠" in exp.report.text(), 60)
@@ -138,6 +150,12 @@ def render(out: Path, source: Path) -> list[Path]:
         exp.reject()
         w.close()
     finally:
+        os.chdir(saved_cwd)
+        for k, v in saved_env.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
         shutil.rmtree(tmp, ignore_errors=True)
     return written
 

@@ -1,18 +1,35 @@
 """The `kinfold` command: the verbs of `core.project.Project` from a shell.
 
 Every command takes the photo folder first; `--store DIR` keeps the project store elsewhere.
-Exit status 0 on success, 1 with a one-line reason on stderr for bad input, 2 for bad usage.
+Exit status 0 on success, 1 with a one-line reason on stderr for bad input, 2 for bad usage (also one
+line). No traceback reaches the user: an unexpected error is one line too, and KINFOLD_DEBUG=1 shows
+the traceback.
 """
 from __future__ import annotations
 
 import argparse
 import dataclasses
+import errno
 import json
+import math
+import os
+import signal
+import sqlite3
 import sys
+import threading
 import time
 
-from core.project import Project, ProjectError
+from core.export import ExportError
+from core.project import STORE_DIR, Project, ProjectError
 from core.store import StoreError
+
+DEBUG_ENV = "KINFOLD_DEBUG"
+_MAX_ID = 2 ** 63 - 1  # SQLite integers
+# SQLite primary result codes (https://sqlite.org/rescode.html) that need their own advice.
+_SQLITE_PERM, _SQLITE_BUSY, _SQLITE_LOCKED, _SQLITE_READONLY, _SQLITE_FULL, _SQLITE_CANTOPEN = 3, 5, 6, 8, 13, 14
+_SQLITE_CORRUPT, _SQLITE_NOTADB = 11, 26
+_SQLITE_ADVICE = {_SQLITE_PERM, _SQLITE_BUSY, _SQLITE_LOCKED, _SQLITE_READONLY, _SQLITE_FULL, _SQLITE_CANTOPEN,
+                  _SQLITE_CORRUPT, _SQLITE_NOTADB}
 
 
 class _Bar:
@@ -59,16 +76,43 @@ def _open(args, lock: bool = True) -> Project:
     return Project.open(args.folder, store=args.store, annotator=getattr(args, "annotator", None), lock=lock)
 
 
+class _InterruptToCancel:
+    """Ctrl+C (SIGINT) during a scan asks it to stop, as Cancel does in the window: the scan returns
+    within a fraction of a second with its work kept. A second Ctrl+C interrupts at once."""
+
+    def __init__(self):
+        self.asked = threading.Event()
+        self._previous = None
+
+    def __enter__(self):
+        if threading.current_thread() is threading.main_thread():
+            self._previous = signal.signal(signal.SIGINT, self._handle)
+        return self
+
+    def _handle(self, signum, frame):
+        self.asked.set()
+        signal.signal(signal.SIGINT, signal.default_int_handler)
+
+    def __exit__(self, *exc):
+        if self._previous is not None:
+            signal.signal(signal.SIGINT, self._previous)
+
+
 def cmd_scan(args):
-    with _open(args) as p:
-        rep = p.scan(progress=_Bar(not args.json))
-        if args.json:
-            _print(rep, True)
-        else:
-            print(f"{rep.photos} photos ready ({rep.new} new, {rep.changed} changed, {rep.removed} gone, "
-                  f"{rep.embedded} embedded now) in {rep.seconds:.1f} s")
-            for path, reason in rep.skipped:
-                print(f"skipped {path}: {reason}")
+    bar = _Bar(not args.json)
+    with _InterruptToCancel() as interrupt, _open(args) as p:
+        rep = p.scan(progress=bar, cancel=interrupt.asked.is_set)
+    if args.json:
+        _print(rep, True)
+    else:
+        print(f"{rep.photos} photos ready ({rep.new} new, {rep.changed} changed, {rep.removed} gone, "
+              f"{rep.embedded} embedded now) in {rep.seconds:.1f} s")
+        for path, reason in rep.skipped:
+            print(f"skipped {path}: {reason}")
+    if rep.cancelled:  # only Ctrl+C cancels a scan here
+        print(("\n" if bar.enabled else "") + "kinfold: scan interrupted; what it found and embedded so far "
+              "is kept, run scan again to finish", file=sys.stderr)
+        return 130
 
 
 def cmd_propose(args):
@@ -122,19 +166,17 @@ def cmd_status(args):
 
 
 def cmd_export(args):
-    if not (args.csv or args.coco or args.folders):
-        raise ProjectError("say what to export: --csv FILE, --coco FILE and/or --folders DIR")
-    split = tuple(float(s) for s in args.split.split(",")) if args.split else None
     with _open(args) as p:
-        written = {}
-        if args.csv:
-            written["csv"] = {"path": args.csv, "rows": p.export_csv(args.csv)}
-        if args.coco:
-            written["coco"] = {"path": args.coco, **p.export_coco(args.coco)}
-        if args.folders:
-            written["folders"] = {"path": args.folders,
-                                  **p.export_folders(args.folders, split=split, mode=args.mode)}
-        _print(written, args.json)
+        written = p.export(csv=args.csv, coco=args.coco, folders=args.folders, split=args.split,
+                           mode=args.mode, overwrite=args.overwrite)
+        out = {}
+        if "csv" in written:
+            out["csv"] = {"path": args.csv, "rows": written["csv"]}
+        if "coco" in written:
+            out["coco"] = {"path": args.coco, **written["coco"]}
+        if "folders" in written:
+            out["folders"] = {"path": args.folders, **written["folders"]}
+        _print(out, args.json)
 
 
 def cmd_relearn(args):
@@ -149,8 +191,50 @@ def cmd_open(args):
     return app_main([args.folder] if args.folder else [])
 
 
+class _Parser(argparse.ArgumentParser):
+    """Usage errors as one line (argparse prints the whole usage block), exit status 2."""
+
+    def error(self, message):
+        self.exit(2, f"{self.prog}: {_one_line(message)}; see '{self.prog} --help'\n")
+
+
+def _whole(lo: int, hi: int, what: str):
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{what} must be a whole number, not {text!r}") from None
+        if not lo <= value <= hi:
+            raise argparse.ArgumentTypeError(f"{what} must be between {lo} and {hi}, not {text}")
+        return value
+    return parse
+
+
+_group_id = _whole(0, _MAX_ID, "a group id (shown by 'kinfold propose')")
+
+
+def _split(text: str) -> tuple[float, ...]:
+    """`--split 0.8,0.1,0.1`: 1 to 3 finite, non-negative fractions that add up to 1."""
+    hint = "give 1 to 3 fractions for train,val,test that add up to 1, e.g. --split 0.8,0.1,0.1"
+    try:
+        values = tuple(float(v) for v in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a list of numbers; {hint}") from None
+    if not 1 <= len(values) <= 3:
+        problem = f"{len(values)} fractions"
+    elif not all(math.isfinite(v) for v in values):
+        problem = "not every fraction is a finite number"
+    elif any(v < 0 for v in values):
+        problem = "a fraction is negative"
+    elif abs(sum(values) - 1) > 1e-6:
+        problem = f"the fractions add up to {sum(values):g}"
+    else:
+        return values
+    raise argparse.ArgumentTypeError(f"{text!r}: {problem}; {hint}")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    ap = argparse.ArgumentParser(prog="kinfold", description="Label a folder of photos a group at a time.")
+    ap = _Parser(prog="kinfold", description="Label a folder of photos a group at a time.")
     sub = ap.add_subparsers(dest="command", required=True)
 
     def verb(name, func, help_, folder=True):
@@ -160,32 +244,35 @@ def build_parser() -> argparse.ArgumentParser:
             s.add_argument("--store", help="keep the project store here instead of FOLDER/.kinfold")
             s.add_argument("--annotator", help="name recorded with each decision (default: your login)")
             s.add_argument("--json", action="store_true", help="machine-readable output")
-        s.set_defaults(func=func)
+        s.set_defaults(func=func, parser=s)
         return s
 
     verb("scan", cmd_scan, "find and embed new or changed photos")
     s = verb("propose", cmd_propose, "list the next groups to confirm")
-    s.add_argument("--limit", type=int, default=10)
-    s.add_argument("--show", type=int, default=6, help="members listed per group")
+    s.add_argument("--limit", type=_whole(1, 100_000, "--limit"), default=10)
+    s.add_argument("--show", type=_whole(0, 100_000, "--show"), default=6, help="members listed per group")
     s = verb("accept", cmd_accept, "label a proposed group")
-    s.add_argument("group", type=int)
+    s.add_argument("group", type=_group_id)
     s.add_argument("label")
     s.add_argument("--drop", nargs="*", default=[], help="members to leave out (they go back to the pool)")
     s = verb("label", cmd_label, "label photos directly")
     s.add_argument("label")
     s.add_argument("paths", nargs="+")
     s = verb("split", cmd_split, "break a group into two coherent parts")
-    s.add_argument("group", type=int)
+    s.add_argument("group", type=_group_id)
     s = verb("set-aside", cmd_set_aside, "mark photos as belonging to no class")
     s.add_argument("paths", nargs="+")
     verb("undo", cmd_undo, "reverse the last label decision")
     verb("status", cmd_status, "counts by state and label")
     s = verb("export", cmd_export, "write the labelled photos out")
-    s.add_argument("--csv")
-    s.add_argument("--coco")
-    s.add_argument("--folders")
-    s.add_argument("--split", help="train,val,test fractions for --folders, e.g. 0.8,0.1,0.1")
+    s.add_argument("--csv", metavar="FILE")
+    s.add_argument("--coco", metavar="FILE")
+    s.add_argument("--folders", metavar="DIR")
+    s.add_argument("--split", type=_split, help="train,val,test fractions for --folders, e.g. 0.8,0.1,0.1")
     s.add_argument("--mode", choices=["link", "copy"], default="link")
+    s.add_argument("--overwrite", action="store_true",
+                   help="replace a file that is not a Kinfold export, or write into a non-empty folder that is "
+                        "not one (its files are kept unless a photo takes their name)")
     s = verb("relearn", cmd_relearn, "relearn the label classifier from the decisions so far")
     s.add_argument("--seconds", type=float, default=None, help="time budget")
     s.add_argument("--adapt-embedding", action="store_true",
@@ -197,17 +284,75 @@ def build_parser() -> argparse.ArgumentParser:
     return ap
 
 
+def _one_line(text) -> str:
+    return " ".join(str(text).splitlines()) or "no details"
+
+
+def _store_path(args) -> str:
+    folder = getattr(args, "folder", None) or "."
+    return getattr(args, "store", None) or os.path.join(folder, STORE_DIR)
+
+
+def _reason(exc: BaseException, args) -> str:
+    """One line for the user: what went wrong and what to do."""
+    if isinstance(exc, (ProjectError, StoreError, ExportError)):
+        return _one_line(exc)
+    if isinstance(exc, sqlite3.Error):
+        store = _store_path(args)
+        # A failed ROLLBACK can hide the error that caused it: use the first specific code.
+        chain, e = [], exc
+        while isinstance(e, sqlite3.Error) and len(chain) < 10:
+            chain.append((getattr(e, "sqlite_errorcode", None) or 0) & 0xFF)  # primary result code
+            e = e.__cause__ or e.__context__
+        code = next((c for c in chain if c in _SQLITE_ADVICE), chain[0])
+        if code == _SQLITE_FULL:
+            return f"the disk holding the project store {store} is full; free some space and run the command again"
+        if code in (_SQLITE_BUSY, _SQLITE_LOCKED):
+            return f"the project store {store} is busy (another Kinfold is writing); try again in a moment"
+        if code in (_SQLITE_READONLY, _SQLITE_CANTOPEN, _SQLITE_PERM):
+            return (f"cannot write the project store {store} ({_one_line(exc)}); check its permissions, or "
+                    "keep the store elsewhere with --store")
+        if isinstance(exc, sqlite3.DatabaseError):
+            return (f"the project store {store} is damaged ({_one_line(exc)}); restore it from a backup, or "
+                    "move it aside to start the project again")
+        return f"the project store {store} cannot be used ({_one_line(exc)})"
+    if isinstance(exc, OSError):
+        where = f" ({exc.filename})" if exc.filename else ""
+        if exc.errno in (errno.ENOSPC, getattr(errno, "EDQUOT", None)):
+            return f"the disk is full{where}; free some space and run the command again"
+        if exc.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+            return f"{exc.strerror or 'not allowed'}{where}; check the permissions or use --store elsewhere"
+        return f"{exc.strerror or _one_line(exc)}{where}"
+    if isinstance(exc, ValueError):
+        return _one_line(exc)
+    return (f"unexpected error: {type(exc).__name__}: {_one_line(exc)} (rerun with {DEBUG_ENV}=1 to see the "
+            "details, and report them)")
+
+
 def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
+    if args.func is cmd_export:
+        if not (args.csv or args.coco or args.folders):
+            args.parser.error("say what to export: --csv FILE, --coco FILE and/or --folders DIR")
+        if args.split is not None and not args.folders:
+            args.parser.error("--split divides the class folders: add --folders DIR")
     try:
         rc = args.func(args)
+        sys.stdout.flush()  # a closed pipe shows here, inside the handler
         return int(rc or 0)
-    except (ProjectError, StoreError, FileNotFoundError, NotADirectoryError, PermissionError, ValueError) as exc:
-        print(f"kinfold: {exc}", file=sys.stderr)
+    except BrokenPipeError:
+        # The reader went away (`kinfold status F | head -1`): stop quietly. Python would report
+        # the failed flush at exit too, so stdout is pointed at /dev/null first.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 1
     except KeyboardInterrupt:
         print("kinfold: interrupted; decisions made so far are saved", file=sys.stderr)
         return 130
+    except Exception as exc:
+        if os.environ.get(DEBUG_ENV):
+            raise
+        print(f"kinfold: {_reason(exc, args)}", file=sys.stderr)
+        return 1
 
 
 if __name__ == "__main__":

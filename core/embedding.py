@@ -14,7 +14,7 @@ from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Iterable, Protocol, Sequence
+from typing import Callable, Iterable, NamedTuple, Protocol, Sequence
 
 import numpy as np
 import torch
@@ -22,6 +22,7 @@ from PIL import Image
 from torch import nn
 
 from core import efficientnet_lite
+from core.catalogue import result_or_cancel
 from core.images import PhotoError, load_rgb
 
 PRECISIONS = ("auto", "bf16", "fp32")
@@ -212,7 +213,10 @@ def get_extractor(name: str = DEFAULT_EXTRACTOR, precision: str = "auto") -> Ext
 class EmbedResult:
     vectors: np.ndarray  # (m, dim) float32, rows L2-normalised
     ok: list[int] = field(default_factory=list)  # index into paths for each row of vectors
-    failed: list[tuple[int, str]] = field(default_factory=list)  # (index into paths, reason)
+    # (index into paths, reason): not a readable photo as the file stands (damaged, wrong format...)
+    failed: list[tuple[int, str]] = field(default_factory=list)
+    # (index into paths, reason): a failure that may pass (I/O error, no memory, the network failed)
+    retry: list[tuple[int, str]] = field(default_factory=list)
     cancelled: bool = False
     flipped_vectors: np.ndarray | None = None  # second view, same rows as vectors
 
@@ -243,16 +247,23 @@ def second_view(img: Image.Image) -> Image.Image:
     return img.crop(box).transpose(Image.Transpose.FLIP_LEFT_RIGHT)
 
 
+class _Failed(NamedTuple):
+    reason: str
+    retry: bool
+
+
 def _prepare(path: Path, extractor: Extractor, flipped: bool):
-    """Runs in a worker thread: decoded tensors, or the reason the photo failed."""
+    """Runs in a worker thread: decoded tensors, or (reason, worth retrying) when the photo failed."""
     try:
         img = load_rgb(path, min_side=extractor.decode_side)
         x = extractor.preprocess(img)
         return x, (extractor.preprocess(second_view(img)) if flipped else None)
     except PhotoError as exc:
-        return str(exc)
-    except Exception as exc:  # a broken photo must never stop the whole run
-        return f"cannot prepare photo {path}: {type(exc).__name__}: {exc}"
+        return _Failed(str(exc), exc.retry)
+    except MemoryError:
+        return _Failed("not enough memory to prepare it", True)
+    except Exception as exc:  # a broken photo must never stop the whole run; not judged, so retried
+        return _Failed(f"could not be prepared ({type(exc).__name__}: {exc})", True)
 
 
 def embed_files(
@@ -264,8 +275,9 @@ def embed_files(
     cancel: Cancel | None = None,
     flipped_view: bool = False,
 ) -> EmbedResult:
-    """Embed ``paths`` in order. Broken photos go to ``failed``; on cancel the photos
-    embedded so far are returned with ``cancelled=True``. Safe to call from any thread."""
+    """Embed ``paths`` in order. Photos that cannot be read go to ``failed`` (not a readable photo)
+    or ``retry`` (a failure that may pass, including the network failing on a batch); on cancel the
+    photos embedded so far are returned with ``cancelled=True``. Safe to call from any thread."""
     total = len(paths)
     workers = max(1, workers or os.cpu_count() or 1)
     window = 2 * batch_size + workers  # photos decoded ahead: the next batch overlaps inference
@@ -273,19 +285,26 @@ def embed_files(
     flipped_chunks: list[np.ndarray] = []
     ok: list[int] = []
     failed: list[tuple[int, str]] = []
+    retry: list[tuple[int, str]] = []
     cancelled = False
     batch_idx: list[int] = []
     batch: list[torch.Tensor] = []
     batch_flipped: list[torch.Tensor] = []
 
     def run_batch() -> None:
-        chunks.append(extractor.embed(torch.stack(batch)))
-        if flipped_view:
-            flipped_chunks.append(extractor.embed(torch.stack(batch_flipped)))
-        ok.extend(batch_idx)
+        try:
+            vectors = extractor.embed(torch.stack(batch))
+            flipped = extractor.embed(torch.stack(batch_flipped)) if flipped_view else None
+        except Exception as exc:  # MemoryError, a runtime error: these photos are tried again next time
+            retry.extend((i, f"the network failed on it ({type(exc).__name__}: {exc})") for i in batch_idx)
+        else:
+            chunks.append(vectors)
+            if flipped is not None:
+                flipped_chunks.append(flipped)
+            ok.extend(batch_idx)
         batch_idx.clear(), batch.clear(), batch_flipped.clear()
         if progress:
-            progress(len(ok) + len(failed), total, f"embedded {len(ok)} of {total} photos")
+            progress(len(ok) + len(failed) + len(retry), total, f"embedded {len(ok)} of {total} photos")
 
     pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="kinfold-decode")
     try:
@@ -299,9 +318,13 @@ def embed_files(
                 pending.append((submitted, pool.submit(_prepare, Path(paths[submitted]), extractor, flipped_view)))
                 submitted += 1
             index, future = pending.popleft()
-            prepared = future.result()
-            if isinstance(prepared, str):
-                failed.append((index, prepared))
+            prepared = result_or_cancel(future, cancel)
+            if prepared is None:
+                cancelled = True
+                break
+            if isinstance(prepared, _Failed):
+                reason, again = prepared
+                (retry if again else failed).append((index, reason))
             else:
                 batch_idx.append(index)
                 batch.append(prepared[0])
@@ -310,9 +333,9 @@ def embed_files(
             if len(batch) == batch_size or (not pending and submitted == total and batch):
                 run_batch()
         if progress:
-            done = len(ok) + len(failed)
+            done = len(ok) + len(failed) + len(retry)
             state = "cancelled" if cancelled else "done"
-            progress(done, total, f"{state}: {len(ok)} embedded, {len(failed)} could not be read")
+            progress(done, total, f"{state}: {len(ok)} embedded, {len(failed) + len(retry)} could not be read")
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
 
@@ -323,6 +346,7 @@ def embed_files(
         vectors=stacked(chunks),
         ok=ok,
         failed=failed,
+        retry=retry,
         cancelled=cancelled,
         flipped_vectors=stacked(flipped_chunks) if flipped_view else None,
     )

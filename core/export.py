@@ -1,8 +1,23 @@
 """Exporting labelled photos: CSV (RFC 4180), COCO JSON, and a class-folder tree.
 
-Every exporter writes into a temporary file or folder beside its destination and moves it
-into place with ``os.replace`` only when everything has been written, so a failure leaves
-neither a half-written export nor a damaged previous one.
+Rules every export follows (README, "The command line", says the same for users):
+
+- All or nothing: every requested format is first written to a hidden temporary beside its
+  destination, and only when all are written are they renamed into place; a failure puts back
+  whatever was there before.
+- Nothing replaced silently: a destination inside the photo folder or the project store is
+  refused; an existing file is replaced only if it is a previous Kinfold export (recognised by
+  the CSV header or the ``kinfold_export`` key of the COCO ``info`` block) or empty, unless
+  ``overwrite=True``.
+- Class folders keep what the user added: a previous folder export lists the files Kinfold wrote
+  in its marker ``.kinfold-export.json``; a new export replaces exactly those and keeps every
+  other file and folder (as hard links, or copies where links fail). A kept file that a new
+  photo would take the name of is refused unless ``overwrite=True``.
+- Temporaries are named ``.<name>.kinfold-tmp-<host>-<pid>-<random>`` (and ``-old-`` for a
+  previous export moved aside while the new one is put in place). Each export first removes the
+  stale ones beside its destinations: those whose writing process is dead (another machine's: a
+  day old); a stale ``-old-`` whose destination is missing is put back instead.
+- Files and folders are created with the process umask.
 
 >>> photos = [LabelledPhoto("drawer/a.jpg", "washer", "group", "ana",
 ...                         "2026-12-01T23:59:00Z", 640, 480)]
@@ -13,27 +28,35 @@ neither a half-written export nor a damaged previous one.
 from __future__ import annotations
 
 import csv
+import errno
 import hashlib
 import json
 import logging
+import math
 import os
 import random
 import re
+import secrets
 import shutil
-import tempfile
+import socket
+import stat
+import time
 import unicodedata
 from collections import Counter, defaultdict
-from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path, PurePosixPath
-from typing import Iterator, Mapping, Sequence
+from typing import Mapping, Sequence
 
 log = logging.getLogger(__name__)
 
 CSV_HEADER = ("path", "label", "how", "annotator", "time")
 MARKER_NAME = ".kinfold-export.json"
+MARKER_VERSION = 2           # 2: the marker lists the files and folders Kinfold wrote
 SPLIT_NAMES = ("train", "val", "test")
+_NAME_BYTES = 255            # the file-name limit of ext4, APFS, NTFS (UTF-16 units <= UTF-8 bytes)
+_MAX_FOLDER_BYTES = 200      # class folder names, hash suffix included: leaves room on every disk
+_FOREIGN_STALE_SECONDS = 86400
 
 
 class ExportError(Exception):
@@ -77,46 +100,267 @@ def _check_photos(photos: Sequence[LabelledPhoto]) -> list[LabelledPhoto]:
     return sorted(photos, key=lambda p: p.path)
 
 
-def _check_parent(path: Path) -> None:
-    if not path.parent.is_dir():
-        raise ExportError(f"Cannot export to {path}: the folder {path.parent} does not exist.")
+def _short_hash(text: str, n: int = 8) -> str:
+    return hashlib.sha1(text.encode("utf-8")).hexdigest()[:n]
 
 
-def _short_hash(text: str) -> str:
-    return hashlib.sha1(text.encode("utf-8")).hexdigest()[:8]
+def _reason(e: OSError) -> str:
+    """An OS error as a reason with what to do about it."""
+    if e.errno == errno.ENOSPC or e.errno == getattr(errno, "EDQUOT", None):
+        return "the disk is full; free some space and export again"
+    if e.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+        return f"{(e.strerror or 'not allowed').lower()}; choose a folder you can write to"
+    if e.errno == errno.ENAMETOOLONG:
+        return "a file name is too long for this disk; choose a shorter destination"
+    return e.strerror or str(e)
 
 
-# ---------------------------------------------------------------------------- atomic file
+# ---------------------------------------------------------------------------- names
 
-@contextmanager
-def _atomic_text_file(path, newline: str | None = None) -> Iterator:
-    """Yield a text file that replaces ``path`` only if the block finishes without error."""
-    path = Path(path)
-    _check_parent(path)
-    if path.is_dir():
-        raise ExportError(f"Cannot export to {path}: it is a folder, not a file.")
+def _cut_bytes(text: str, limit: int) -> str:
+    """``text`` cut to at most ``limit`` bytes of UTF-8, on a character boundary."""
+    return text.encode("utf-8")[:limit].decode("utf-8", "ignore")
+
+
+def _fold(name: str) -> str:
+    """The key under which a case-insensitive disk (NTFS, APFS, HFS+) sees two names as one."""
+    return unicodedata.normalize("NFC", unicodedata.normalize("NFC", name).casefold())
+
+
+_UNSAFE_CHARS = re.compile(r'[<>:"/\\|?*\x00-\x1f\x7f]')
+_WINDOWS_RESERVED = {"CON", "PRN", "AUX", "NUL",
+                     *(f"COM{i}" for i in range(10)), *(f"LPT{i}" for i in range(10))}
+
+
+def _tidy(name: str) -> str:
+    return name.lstrip(". ").rstrip(". ")
+
+
+def safe_folder_name(label: str, limit: int = _MAX_FOLDER_BYTES) -> str:
+    """A readable folder name for a label, valid on Linux, macOS and Windows.
+
+    Path separators, characters Windows refuses and control characters become ``_``; leading
+    dots and spaces and trailing dots and spaces are dropped; Windows device names (``CON``,
+    ``NUL``, ``COM1`` ..., also before a dot) get ``_`` after them; long names are cut to
+    ``limit`` bytes of UTF-8 (200) on a character boundary, well inside the 255-byte limit.
+    """
+    name = _tidy(_UNSAFE_CHARS.sub("_", unicodedata.normalize("NFC", label)))
+    name = _tidy(_cut_bytes(name, limit - 1))  # 1 byte spare for the device-name mark
+    if not name:
+        return "_"
+    stem, dot, rest = name.partition(".")
+    if stem.rstrip(" ").upper() in _WINDOWS_RESERVED:
+        name = f"{stem}_{dot}{rest}"  # "con.txt" is reserved too, so mark the stem
+    return name
+
+
+def folder_names(labels) -> dict[str, str]:
+    """Map each label to its class folder name, distinct even on case-insensitive disks.
+
+    Labels whose safe names clash (``a/b`` and ``a_b``, ``Cat`` and ``cat``, or two long labels
+    that agree in their first 200 bytes) are told apart by a short hash of the label; a label
+    that needs no change keeps its plain name if it sorts first among those that clash. Every
+    name is at most 200 bytes of UTF-8.
+    """
+    groups: dict[str, list[str]] = defaultdict(list)
+    for label in sorted(set(labels)):
+        groups[_fold(safe_folder_name(label))].append(label)
+    names, hashed = {}, []
+    for clashing in groups.values():
+        unchanged = [label for label in clashing if safe_folder_name(label) == label]
+        keeper = clashing[0] if len(clashing) == 1 else (unchanged or [None])[0]
+        for label in clashing:
+            if label == keeper:
+                names[label] = safe_folder_name(label)
+            else:
+                hashed.append(label)
+    taken = {_fold(n) for n in names.values()}
+    for label in hashed:
+        for n in (8, 16, 40):  # a longer hash on the (unlikely) clash with another name
+            suffix = f"-{_short_hash(label, n)}"
+            name = safe_folder_name(label, _MAX_FOLDER_BYTES - len(suffix)) + suffix
+            if _fold(name) not in taken:
+                break
+        else:
+            raise ExportError(f"Cannot export: no distinct folder name for label {label!r}")
+        names[label] = name
+        taken.add(_fold(name))
+    return names
+
+
+def _fit_file_name(name: str, prefix: str = "") -> str:
+    """``prefix + name``, its stem cut so it fits the 255-byte name limit (suffix kept)."""
+    if len((prefix + name).encode("utf-8")) <= _NAME_BYTES:
+        return prefix + name
+    p = PurePosixPath(name)
+    suffix = p.suffix if len(p.suffix.encode("utf-8")) <= 16 else ""
+    stem = name[: len(name) - len(suffix)]
+    room = _NAME_BYTES - len(prefix.encode("utf-8")) - len(suffix.encode("utf-8")) - 9
+    return f"{prefix}{_cut_bytes(stem, room)}-{_short_hash(name)}{suffix}"
+
+
+def _file_names(photos: Sequence[LabelledPhoto]) -> dict[str, str]:
+    """Each photo's file name inside its class folder; clashing names get a path-hash prefix."""
+    base = {p.path: PurePosixPath(p.path).name for p in photos}
+    clash = Counter(_fold(name) for name in base.values())
+    return {path: (_fit_file_name(name) if clash[_fold(name)] == 1
+                   else _fit_file_name(name, f"{_short_hash(path)}_"))
+            for path, name in base.items()}
+
+
+# ---------------------------------------------------------------------------- temporaries
+
+_HOST = _short_hash(socket.gethostname())
+_TEMP_RE = re.compile(r"\.kinfold-(tmp|old|oldcut)-([0-9a-f]{8})-(\d+)-[0-9a-z]{8}$")
+
+
+def _temp_path(dest: Path, kind: str) -> Path:
+    """A fresh hidden name beside ``dest`` that says whose it is: ``.<name>.kinfold-<kind>-...``.
+    ``oldcut`` marks a previous export moved aside whose name had to be cut to fit."""
+    tail = f".kinfold-{kind}-{_HOST}-{os.getpid()}-{secrets.token_hex(4)}"
+    room = _NAME_BYTES - 1 - len(tail) - 3  # 3: "cut" if the kind must say so
+    name = _cut_bytes(dest.name, room)
+    if kind == "old" and name != dest.name:
+        tail = tail.replace("-old-", "-oldcut-", 1)
+    return dest.parent / f".{name}{tail}"
+
+
+def _pid_alive(pid: int) -> bool:
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    except OSError as e:
-        raise ExportError(f"Cannot export to {path}: {e}") from e
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OSError, OverflowError):
+        return True  # someone else's process, or we cannot tell: not ours to remove
+    return True
+
+
+def _remove(path: Path) -> None:
+    if path.is_dir() and not path.is_symlink():
+        shutil.rmtree(path, ignore_errors=True)
+    else:
+        try:
+            path.unlink()
+        except FileNotFoundError:
+            pass
+
+
+def clean_stale_temporaries(folder) -> list[str]:
+    """Remove Kinfold's stale export temporaries in ``folder`` (see the module rules); put back a
+    previous export a killed export had moved aside. Returns the names it removed or restored."""
+    folder, done = Path(folder), []
     try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline=newline) as f:
-            yield f
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except OSError as e:
-        Path(tmp).unlink(missing_ok=True)
-        raise ExportError(f"Cannot export to {path}: {e}; the previous file, if any, "
-                          "is unchanged.") from e
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+        entries = list(os.scandir(folder))
+    except OSError:
+        return done
+    for entry in entries:
+        m = _TEMP_RE.search(entry.name)
+        if not m or not entry.name.startswith("."):
+            continue
+        kind, host, pid = m[1], m[2], int(m[3])
+        try:
+            age = time.time() - entry.stat(follow_symlinks=False).st_mtime
+        except OSError:
+            continue
+        stale = (not _pid_alive(pid)) if host == _HOST else age > _FOREIGN_STALE_SECONDS
+        if not stale:
+            continue
+        path = Path(entry.path)
+        if kind == "tmp":
+            _remove(path)
+        elif kind == "oldcut":
+            log.warning("Left %s in place: an earlier export was interrupted and its full name "
+                        "is not known; rename it back by hand if it is missing.", path)
+            continue
+        else:
+            dest = folder / entry.name[1:m.start()]
+            try:
+                if os.path.lexists(dest):
+                    _remove(path)          # the new export was put in place: this is the old one
+                else:
+                    os.rename(path, dest)  # killed between moving the old one aside and the new in
+            except OSError as e:
+                log.warning("Could not clean up %s: %s", path, e)
+                continue
+        done.append(entry.name)
+    return done
+
+
+def _new_temp_file(dest: Path) -> Path:
+    path = _temp_path(dest, "tmp")
+    os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666))  # mode & ~umask
+    return path
+
+
+def _new_temp_dir(dest: Path) -> Path:
+    path = _temp_path(dest, "tmp")
+    os.mkdir(path, 0o777)  # mode & ~umask
+    return path
+
+
+# ---------------------------------------------------------------------------- recognising our own
+
+_CSV_HEADER_LINE = (",".join(CSV_HEADER) + "\r\n").encode("ascii")
+_COCO_KEYS = {"info", "licenses", "images", "categories", "annotations"}
+
+
+def is_kinfold_file(path) -> bool:
+    """Whether ``path`` is a regular file holding a previous Kinfold CSV or COCO export, or
+    nothing at all (an empty file has nothing to lose)."""
+    try:
+        st = os.stat(path)
+        if not stat.S_ISREG(st.st_mode):
+            return False
+        if st.st_size == 0:
+            return True
+        with open(path, "rb") as f:
+            head = f.read(len(_CSV_HEADER_LINE))
+            if head == _CSV_HEADER_LINE:
+                return True
+            if not head.lstrip().startswith(b"{"):
+                return False
+            f.seek(0)
+            doc = json.load(f)
+    except (OSError, ValueError):
+        return False
+    info = doc.get("info") if isinstance(doc, dict) else None
+    if not isinstance(info, dict):
+        return False
+    # Exports written before the explicit key said only this in their description.
+    legacy = info.get("description") == "Kinfold export" and set(doc) == _COCO_KEYS
+    return info.get("kinfold_export") == 1 or legacy
+
+
+def _previous_export_files(directory: Path) -> set[str] | None:
+    """What a previous Kinfold folder export wrote into ``directory``, from its marker: relative
+    POSIX paths of its files, and of its folders with a trailing ``/``; None if not an export."""
+    try:
+        marker = json.loads((directory / MARKER_NAME).read_text("utf-8"))
+        version = marker.get("kinfold_export")
+        if version == MARKER_VERSION:
+            return ({str(f) for f in marker["files"]} | {f"{d}/" for d in marker.get("dirs", [])}
+                    | {MARKER_NAME})
+        if version == 1:
+            # Written before the marker listed its files: the class folders' files were ours.
+            ours = {MARKER_NAME}
+            for part in list(marker.get("split") or {}) or [None]:
+                ours.add(f"{part}/" if part else "")
+                for name in marker["folders"].values():
+                    rel = f"{part}/{name}" if part else str(name)
+                    ours.add(f"{rel}/")
+                    if (directory / rel).is_dir():
+                        with os.scandir(directory / rel) as it:
+                            ours |= {f"{rel}/{e.name}" for e in it if not e.is_dir(follow_symlinks=False)}
+            return ours - {""}
+    except (OSError, ValueError, AttributeError, KeyError, TypeError):
+        pass
+    return None
 
 
 # ---------------------------------------------------------------------------- CSV
 
 _FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+_FREE_TEXT = ("label", "annotator")  # typed by people; path, how and time are written unchanged
 
 
 def _neutralise(cell: str) -> str:
@@ -126,26 +370,18 @@ def _neutralise(cell: str) -> str:
 
 
 def _csv_row(photo: LabelledPhoto) -> list[str]:
-    return [_neutralise(str(getattr(photo, name))) for name in CSV_HEADER]
+    return [_neutralise(str(getattr(photo, name))) if name in _FREE_TEXT
+            else str(getattr(photo, name)) for name in CSV_HEADER]
 
 
-def export_csv(path, photos: Sequence[LabelledPhoto]) -> int:
-    """Write one row per photo, ``path,label,how,annotator,time``; return the rows written.
-
-    The file follows RFC 4180: UTF-8, CRLF line ends, a header row, and cells holding commas,
-    double quotes or line breaks quoted (quotes doubled). Rows are sorted by path.
-
-    Formula neutralisation: a cell that starts with ``=``, ``+``, ``-``, ``@``, a tab or a
-    carriage return would be run as a formula by a spreadsheet, so it is written with a single
-    quote ``'`` in front (``=SUM(A1)`` becomes ``'=SUM(A1)``). Programs reading the CSV see that
-    quote as part of the value.
-    """
-    photos = _check_photos(photos)
-    with _atomic_text_file(path, newline="") as f:
+def _write_csv(tmp: Path, photos: list[LabelledPhoto]) -> int:
+    with open(tmp, "w", encoding="utf-8", newline="") as f:
         writer = csv.writer(f, lineterminator="\r\n", quoting=csv.QUOTE_MINIMAL)
         writer.writerow(CSV_HEADER)
         for photo in photos:
             writer.writerow(_csv_row(photo))
+        f.flush()
+        os.fsync(f.fileno())
     return len(photos)
 
 
@@ -179,6 +415,7 @@ def coco_document(photos: Sequence[LabelledPhoto], *, description: str = "Kinfol
             "contributor": ", ".join(sorted({p.annotator for p in photos if p.annotator})),
             "url": "",
             "date_created": created,
+            "kinfold_export": 1,  # how a later export knows it may replace this file
         },
         "licenses": [{"id": 1, "name": "unknown", "url": ""}],
         "images": [
@@ -196,17 +433,11 @@ def coco_document(photos: Sequence[LabelledPhoto], *, description: str = "Kinfol
     }
 
 
-def export_coco(path, photos: Sequence[LabelledPhoto], *, description: str = "Kinfold export",
-                date_created=None) -> dict:
-    """Write a COCO JSON file (images sorted by path, categories by name, ids from 1).
-
-    Each photo gets one image-level annotation (``id``, ``image_id``, ``category_id``) and no
-    ``bbox``: the label belongs to the whole photo. ``date_created`` is a datetime or ISO 8601
-    string (default: now, UTC). Returns ``{"images": n, "annotations": n, "categories": k}``.
-    """
-    document = coco_document(photos, description=description, date_created=date_created)
-    with _atomic_text_file(path) as f:
+def _write_coco(tmp: Path, document: dict) -> dict:
+    with open(tmp, "w", encoding="utf-8") as f:
         json.dump(document, f, ensure_ascii=False, indent=1)
+        f.flush()
+        os.fsync(f.fileno())
     return {key: len(document[key]) for key in ("images", "annotations", "categories")}
 
 
@@ -222,8 +453,10 @@ def _split_fractions(fractions) -> dict[str, float]:
         named = dict(zip(SPLIT_NAMES, fractions))
     try:
         named = {k: float(v) for k, v in named.items()}
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):
         raise ExportError(f"Split fractions must be numbers: {fractions}") from None
+    if not all(math.isfinite(v) for v in named.values()):
+        raise ExportError(f"Split fractions must be finite numbers: {fractions}")
     if not named or any(v < 0 for v in named.values()) or abs(sum(named.values()) - 1) > 1e-6:
         raise ExportError(f"Split fractions must be non-negative and add up to 1: {named}")
     bad = [k for k in named if safe_folder_name(k) != k]
@@ -278,82 +511,79 @@ def stratified_split(photos: Sequence[LabelledPhoto], fractions=(0.8, 0.1, 0.1),
 
 # ---------------------------------------------------------------------------- class folders
 
-_UNSAFE_CHARS = re.compile(r'[<>:"/\\|?*\x00-\x1f\x7f]')
-_WINDOWS_RESERVED = {"CON", "PRN", "AUX", "NUL",
-                     *(f"COM{i}" for i in range(10)), *(f"LPT{i}" for i in range(10))}
-_MAX_NAME = 100  # characters; keeps well inside the common 255-byte file-name limit
+def _folder_plan(photos: list[LabelledPhoto], split, seed: int):
+    """What a folder export writes: its label folders, ``{file: photo path}`` and sub-folders
+    (relative POSIX paths), and the photo counts."""
+    parts = stratified_split(photos, split, seed) if split is not None else {None: photos}
+    folders = folder_names(p.label for p in photos)
+    files: dict[str, str] = {}
+    dirs: set[str] = set()
+    counts: dict = {}
+    for part, members in parts.items():
+        by_label: dict[str, list[LabelledPhoto]] = defaultdict(list)
+        for p in members:
+            by_label[p.label].append(p)
+        if part is not None:
+            dirs.add(part)
+        for label, label_photos in sorted(by_label.items()):
+            rel_dir = f"{part}/{folders[label]}" if part is not None else folders[label]
+            dirs.add(rel_dir)
+            for path, name in _file_names(label_photos).items():
+                files[f"{rel_dir}/{name}"] = path
+        label_counts = {label: len(ps) for label, ps in sorted(by_label.items())}
+        if part is None:
+            counts = label_counts
+        else:
+            counts[part] = label_counts
+    return folders, files, dirs, counts
 
 
-def safe_folder_name(label: str) -> str:
-    """A readable folder name for a label, valid on Linux, macOS and Windows.
+def _kept_entries(directory: Path, ours: set[str]) -> dict[str, str]:
+    """What a destination folder holds that Kinfold did not write: ``{relative path: kind}``,
+    kind ``dir``, ``link``, ``file`` or ``other``. Folders that only held Kinfold's files are
+    not listed (they come back only if something kept is inside)."""
+    our_dirs = ({str(a) for f in ours for a in PurePosixPath(f).parents if str(a) != "."}
+                | {d.rstrip("/") for d in ours if d.endswith("/")})
+    kept: dict[str, str] = {}
 
-    Path separators, characters Windows refuses and control characters become ``_``; leading
-    dots and spaces and trailing dots and spaces are dropped; Windows device names (``CON``,
-    ``NUL``, ``COM1`` ..., also before a dot) get ``_`` after them; long names are cut to 100
-    characters.
-    """
-    name = _UNSAFE_CHARS.sub("_", unicodedata.normalize("NFC", label))
-    name = name.lstrip(". ").rstrip(". ")[:_MAX_NAME].rstrip(". ")
-    if not name:
-        return "_"
-    stem, dot, rest = name.partition(".")
-    if stem.rstrip(" ").upper() in _WINDOWS_RESERVED:
-        name = f"{stem}_{dot}{rest}"  # "con.txt" is reserved too, so mark the stem
-    return name
+    def fail(e: OSError):
+        raise e
 
-
-def folder_names(labels) -> dict[str, str]:
-    """Map each label to its class folder name, distinct even on case-insensitive disks.
-
-    Labels whose safe names clash (``a/b`` and ``a_b``, or ``Cat`` and ``cat``) are told apart
-    by a short hash of the label; a label that needs no change keeps its plain name if it
-    sorts first among those that clash.
-    """
-    groups: dict[str, list[str]] = defaultdict(list)
-    for label in sorted(set(labels)):
-        groups[safe_folder_name(label).casefold()].append(label)
-    names = {}
-    for clashing in groups.values():
-        unchanged = [label for label in clashing if safe_folder_name(label) == label]
-        keeper = clashing[0] if len(clashing) == 1 else (unchanged or [None])[0]
-        for label in clashing:
-            base = safe_folder_name(label)
-            hashed = f"{base[:_MAX_NAME - 9]}-{_short_hash(label)}"
-            names[label] = base if label == keeper else hashed
-    return names
+    for root, dirnames, filenames in os.walk(directory, onerror=fail):
+        rel_root = PurePosixPath(Path(root).relative_to(directory).as_posix())
+        for name in dirnames + filenames:
+            rel, path = (rel_root / name).as_posix(), os.path.join(root, name)
+            if rel in ours:
+                continue
+            st = os.lstat(path)
+            if stat.S_ISLNK(st.st_mode):
+                kept[rel] = "link"
+            elif stat.S_ISDIR(st.st_mode):
+                if rel not in our_dirs:
+                    kept[rel] = "dir"
+            else:
+                kept[rel] = "file" if stat.S_ISREG(st.st_mode) else "other"
+    return kept
 
 
-def _file_names(photos: Sequence[LabelledPhoto]) -> dict[str, str]:
-    """Each photo's file name inside its class folder; clashing names get a path-hash prefix."""
-    clash = Counter(PurePosixPath(p.path).name.casefold() for p in photos)
-    return {p.path: (PurePosixPath(p.path).name if clash[PurePosixPath(p.path).name.casefold()] == 1
-                     else f"{_short_hash(p.path)}_{PurePosixPath(p.path).name}")
-            for p in photos}
-
-
-def _is_previous_export(directory: Path) -> bool:
-    try:
-        return json.loads((directory / MARKER_NAME).read_text("utf-8")).get("kinfold_export") == 1
-    except (OSError, ValueError, AttributeError):
-        return False
-
-
-def _check_destination(directory: Path, source_root: Path) -> None:
-    if not directory.parent.is_dir():
-        raise ExportError(f"Cannot export to {directory}: the folder {directory.parent} "
-                          "does not exist.")
-    if directory.exists() and not directory.is_dir():
-        raise ExportError(f"Cannot export to {directory}: it is a file, not a folder.")
-    dest, src = directory.resolve(), source_root.resolve()
-    if dest == src or src in dest.parents:
-        raise ExportError(f"Cannot export to {directory}: it is inside the photo folder "
-                          f"{source_root}, so the exported files would be scanned as new photos.")
-    if dest in src.parents:
-        raise ExportError(f"Cannot export to {directory}: the photo folder {source_root} is "
-                          "inside it and would be replaced.")
-    if directory.is_dir() and any(directory.iterdir()) and not _is_previous_export(directory):
-        raise ExportError(f"Cannot export to {directory}: the folder is not empty and is not a "
-                          "previous Kinfold export. Choose an empty or new folder.")
+def _place_kept(directory: Path, tmp: Path, kept: dict[str, str]) -> None:
+    """Put the kept entries into the new tree: hard links (copies where links fail), so the
+    previous tree can be removed whole once the new one is in place."""
+    for rel, kind in sorted(kept.items()):
+        src, dst = directory / rel, tmp / rel
+        dst.parent.mkdir(parents=True, exist_ok=True)
+        if kind == "dir":
+            dst.mkdir(exist_ok=True)
+        elif kind == "link":
+            os.symlink(os.readlink(src), dst)
+        else:
+            try:
+                os.link(src, dst, follow_symlinks=False)
+            except OSError:
+                if kind != "file":
+                    raise ExportError(f"Cannot export to {directory}: {rel} is neither a file nor "
+                                      "a folder and cannot be kept; move it out first.") from None
+                shutil.copy2(src, dst)
 
 
 def _place(source: Path, target: Path, link: bool) -> bool:
@@ -371,91 +601,303 @@ def _place(source: Path, target: Path, link: bool) -> bool:
     return False
 
 
-def _swap_in(tmp: Path, directory: Path) -> None:
-    """Move the finished tree to ``directory``; a previous export there is replaced whole."""
-    if not directory.exists():
-        os.replace(tmp, directory)
-        return
-    old = Path(tempfile.mkdtemp(prefix=f".{directory.name}.old-", dir=directory.parent))
-    os.replace(directory, old / "tree")
+def _write_folders(tmp: Path, plan, source_root: Path, mode: str, split, seed: int) -> str:
+    folders, files, dirs, counts = plan
+    for rel in sorted(dirs):
+        (tmp / rel).mkdir(parents=True, exist_ok=True)
+    link = mode == "link"
+    for rel, path in files.items():
+        try:
+            link = _place((source_root / path).resolve(), tmp / rel, link)
+        except OSError as e:
+            raise ExportError(f"Cannot export: could not copy {path}: {_reason(e)}; "
+                              "nothing was changed.") from e
+    marker = {"kinfold_export": MARKER_VERSION, "created": _iso_utc(None),
+              "mode": "link" if link else "copy",
+              "split": None if split is None else _split_fractions(split), "seed": seed,
+              "folders": folders, "counts": counts, "files": sorted(files), "dirs": sorted(dirs)}
+    (tmp / MARKER_NAME).write_text(json.dumps(marker, ensure_ascii=False, indent=1), "utf-8")
+    return marker["mode"]
+
+
+# ---------------------------------------------------------------------------- destinations
+
+def _absolute(path) -> Path:
+    """An absolute path whose folders are resolved; a link at the last step stays a link."""
+    p = Path(os.path.abspath(os.path.expanduser(os.fspath(path))))
+    return p.parent.resolve() / p.name if p.name else p
+
+
+def _check_destinations(dests: dict[str, Path], protected: list[tuple[Path, str]],
+                        overwrite: bool) -> None:
+    items = list(dests.items())
+    for i, (k1, d1) in enumerate(items):
+        for k2, d2 in items[i + 1:]:
+            if d1 == d2 or d1 in d2.parents or d2 in d1.parents:
+                raise ExportError(f"Cannot export {k1} to {d1} and {k2} to {d2}: give each its "
+                                  "own destination, neither inside the other.")
+    for kind, dest in dests.items():
+        if not dest.name:
+            raise ExportError(f"Cannot export to {dest}: give a file or folder name.")
+        parent = dest.parent
+        if not parent.is_dir():
+            blocker = next((a for a in parent.parents if a.exists() and not a.is_dir()), None)
+            if parent.exists() or blocker is not None:
+                raise ExportError(f"Cannot export to {dest}: {blocker or parent} is a file, not a "
+                                  "folder; choose a destination inside a folder.")
+            raise ExportError(f"Cannot export to {dest}: the folder {parent} does not exist; "
+                              "create it first or choose another destination.")
+        real = dest.resolve()
+        for root, what in protected:
+            root = root.resolve()
+            if any(d == root or root in d.parents for d in (dest, real)):
+                raise ExportError(f"Cannot export to {dest}: it is inside {what} {root}; "
+                                  "choose a destination outside it.")
+            if kind == "folders" and dest in root.parents:
+                raise ExportError(f"Cannot export to {dest}: {what} {root} is inside it and would "
+                                  "be replaced; choose another folder.")
+    for kind, dest in dests.items():
+        if kind == "folders":
+            if dest.is_symlink() or (dest.exists() and not dest.is_dir()):
+                raise ExportError(f"Cannot export class folders to {dest}: it is a "
+                                  f"{'link' if dest.is_symlink() else 'file'}, not a folder; "
+                                  "choose a folder.")
+        elif dest.is_dir():
+            raise ExportError(f"Cannot export to {dest}: it is a folder, not a file; give a "
+                              "file name.")
+        elif os.path.lexists(dest) and not overwrite and not is_kinfold_file(dest):
+            raise ExportError(f"Cannot export to {dest}: the file exists and is not a Kinfold "
+                              "export; choose another name, or overwrite it (--overwrite, "
+                              "overwrite=True).")
+
+
+def _folder_keeps(dest: Path, plan, overwrite: bool) -> dict[str, str]:
+    """What of an existing class-folder destination the new export keeps (see module rules)."""
+    if not dest.is_dir():
+        return {}
+    with os.scandir(dest) as it:
+        if not any(True for _ in it):
+            return {}
+    ours = _previous_export_files(dest)
+    if ours is None and not overwrite:
+        raise ExportError(f"Cannot export to {dest}: the folder is not empty and is not a previous "
+                          "Kinfold export; choose an empty or new folder, or write into it "
+                          "(--overwrite, overwrite=True: its files are kept unless a photo takes "
+                          "their name).")
+    kept = _kept_entries(dest, ours or set())
+    _, files, dirs, _ = plan
+    # Compared as a case-insensitive disk would, so the rule is the same on every disk.
+    new = {_fold(MARKER_NAME): "file", **{_fold(f): "file" for f in files},
+           **{_fold(d): "dir" for d in dirs}}
+    clashes = [rel for rel, kind in kept.items()
+               if _fold(rel) in new and not (kind == new[_fold(rel)] == "dir")]
+    if clashes and not overwrite:
+        more = f" (and {len(clashes) - 3} more)" if len(clashes) > 3 else ""
+        raise ExportError(f"Cannot export to {dest}: {', '.join(sorted(clashes)[:3])}{more} "
+                          "were not written by Kinfold, and labelled photos would take their "
+                          "names; move them away, or replace them (--overwrite, overwrite=True).")
+    lost = set(clashes)  # overwrite: the export wins, and nothing kept stays inside a lost one
+    return {k: v for k, v in kept.items()
+            if k not in lost and not any(str(a) in lost for a in PurePosixPath(k).parents)}
+
+
+# ---------------------------------------------------------------------------- all or nothing
+
+@dataclass
+class _Target:
+    dest: Path
+    tmp: Path
+    is_dir: bool
+    old: Path | None = None      # the previous export, moved aside (or hard-linked) until done
+    placed: bool = False
+
+
+def _commit(targets: list[_Target]) -> None:
+    """Put every finished temporary in place; on any failure put every destination back."""
+    t = None
     try:
-        os.replace(tmp, directory)
-    except BaseException:
-        os.replace(old / "tree", directory)
-        old.rmdir()
+        for t in targets:
+            if os.path.lexists(t.dest):
+                old = _temp_path(t.dest, "old")
+                if t.is_dir or os.path.islink(t.dest):
+                    os.rename(t.dest, old)
+                else:
+                    try:  # a hard link keeps the file in place until os.replace swaps it
+                        os.link(t.dest, old, follow_symlinks=False)
+                    except OSError:
+                        os.rename(t.dest, old)
+                t.old = old
+            os.replace(t.tmp, t.dest)
+            t.placed = True
+    except BaseException as e:
+        for other in reversed(targets):
+            _roll_back(other)
+        if isinstance(e, OSError):
+            raise ExportError(f"Cannot export to {t.dest}: {_reason(e)}; nothing was "
+                              "changed.") from e
         raise
-    shutil.rmtree(old, ignore_errors=True)
+    for t in targets:
+        if t.old is not None:
+            _remove(t.old)
+    for parent in {t.dest.parent for t in targets}:
+        try:  # make the renames durable
+            fd = os.open(parent, os.O_RDONLY)
+            try:
+                os.fsync(fd)
+            finally:
+                os.close(fd)
+        except OSError:
+            pass
+
+
+def _roll_back(t: _Target) -> None:
+    try:
+        if t.placed:
+            if t.old is None:
+                _remove(t.dest)
+            elif t.is_dir:
+                junk = _temp_path(t.dest, "tmp")
+                os.rename(t.dest, junk)
+                os.rename(t.old, t.dest)
+                _remove(junk)
+            else:
+                os.replace(t.old, t.dest)
+        else:
+            _remove(t.tmp)
+            if t.old is not None:
+                if os.path.lexists(t.dest):
+                    _remove(t.old)       # a hard link: the file never left
+                else:
+                    os.rename(t.old, t.dest)
+    except OSError as e:
+        log.error("Could not put back %s (%s); the previous version is at %s", t.dest, e, t.old)
+
+
+def export_all(photos: Sequence[LabelledPhoto], *, csv=None, coco=None, folders=None,
+               photo_folder=None, store=None, split=None, seed: int = 0, mode: str = "link",
+               overwrite: bool = False, description: str = "Kinfold export",
+               date_created=None) -> dict:
+    """Write every requested format, all or nothing (see the module rules).
+
+    ``csv`` and ``coco`` are file paths, ``folders`` a folder (``photo_folder`` is then needed:
+    the photos are linked or copied from it); ``split``, ``seed`` and ``mode`` as in
+    :func:`export_folders`. ``photo_folder`` and ``store`` are protected: nothing is written
+    inside them. Returns, for the formats asked, ``{"csv": rows, "coco": {"images": n,
+    "annotations": n, "categories": k}, "folders": counts}``.
+    """
+    photos = _check_photos(photos)
+    asked = {}
+    for kind, value in (("csv", csv), ("coco", coco), ("folders", folders)):
+        if value is not None:
+            if not os.fspath(value).strip():
+                raise ExportError(f"Cannot export {kind}: the destination is empty; give a path.")
+            asked[kind] = _absolute(value)
+    if not asked:
+        raise ExportError("Say what to export: a CSV file, a COCO file and/or class folders.")
+    if split is not None and "folders" not in asked:
+        raise ExportError("A split applies to class folders only; ask for class folders too.")
+    if mode not in ("link", "copy"):
+        raise ExportError(f"mode must be 'link' or 'copy', not {mode!r}")
+    protected = [(Path(p), what) for p, what in ((photo_folder, "the photo folder"),
+                                                 (store, "the project store")) if p is not None]
+    _check_destinations(asked, protected, overwrite)
+
+    document = coco_document(photos, description=description, date_created=date_created) \
+        if "coco" in asked else None
+    plan, kept = None, {}
+    if "folders" in asked:
+        if photo_folder is None or not Path(photo_folder).is_dir():
+            raise ExportError(f"Cannot export: the photo folder {photo_folder} does not exist.")
+        source_root = Path(photo_folder)
+        missing = [p.path for p in photos if not (source_root / p.path).is_file()]
+        if missing:
+            more = f" (and {len(missing) - 5} more)" if len(missing) > 5 else ""
+            raise ExportError(f"Cannot export: {len(missing)} photo(s) missing from {source_root}: "
+                              + ", ".join(missing[:5]) + more)
+        plan = _folder_plan(photos, split, seed)
+        try:
+            kept = _folder_keeps(asked["folders"], plan, overwrite)
+        except OSError as e:
+            raise ExportError(f"Cannot export to {asked['folders']}: {_reason(e)}") from e
+
+    for parent in {d.parent for d in asked.values()}:
+        clean_stale_temporaries(parent)
+    written: dict = {}
+    targets: list[_Target] = []
+    current = None
+    try:
+        for kind, dest in asked.items():
+            current = dest
+            if kind == "folders":
+                targets.append(_Target(dest, _new_temp_dir(dest), True))
+                _write_folders(targets[-1].tmp, plan, source_root, mode, split, seed)
+                _place_kept(dest, targets[-1].tmp, kept)
+                written[kind] = plan[3]
+            else:
+                targets.append(_Target(dest, _new_temp_file(dest), False))
+                written[kind] = (_write_csv(targets[-1].tmp, photos) if kind == "csv"
+                                 else _write_coco(targets[-1].tmp, document))
+        current = None
+        _commit(targets)
+    except OSError as e:
+        for t in targets:
+            _roll_back(t)
+        where = f" to {current}" if current else ""
+        raise ExportError(f"Cannot export{where}: {_reason(e)}; nothing was changed.") from e
+    except BaseException:
+        for t in targets:
+            _roll_back(t)
+        raise
+    return written
+
+
+def export_csv(path, photos: Sequence[LabelledPhoto], *, overwrite: bool = False,
+               photo_folder=None, store=None) -> int:
+    """Write one row per photo, ``path,label,how,annotator,time``; return the rows written.
+
+    The file follows RFC 4180: UTF-8, CRLF line ends, a header row, and cells holding commas,
+    double quotes or line breaks quoted (quotes doubled). Rows are sorted by path.
+
+    Formula neutralisation, in the free-text columns only (``label``, ``annotator``): a cell
+    that starts with ``=``, ``+``, ``-``, ``@``, a tab or a carriage return would be run as a
+    formula by a spreadsheet, so it is written with a single quote ``'`` in front (``=SUM(A1)``
+    becomes ``'=SUM(A1)``); programs reading the CSV see that quote as part of the value. The
+    ``path`` column is written unchanged, so every path names its file.
+    """
+    return export_all(photos, csv=path, overwrite=overwrite, photo_folder=photo_folder,
+                      store=store)["csv"]
+
+
+def export_coco(path, photos: Sequence[LabelledPhoto], *, description: str = "Kinfold export",
+                date_created=None, overwrite: bool = False, photo_folder=None, store=None) -> dict:
+    """Write a COCO JSON file (images sorted by path, categories by name, ids from 1).
+
+    Each photo gets one image-level annotation (``id``, ``image_id``, ``category_id``) and no
+    ``bbox``: the label belongs to the whole photo. ``date_created`` is a datetime or ISO 8601
+    string (default: now, UTC). ``info.kinfold_export`` marks the file as Kinfold's. Returns
+    ``{"images": n, "annotations": n, "categories": k}``.
+    """
+    return export_all(photos, coco=path, description=description, date_created=date_created,
+                      overwrite=overwrite, photo_folder=photo_folder, store=store)["coco"]
 
 
 def export_folders(directory, photos: Sequence[LabelledPhoto], source_root, *, split=None,
-                   seed: int = 0, mode: str = "link") -> dict:
+                   seed: int = 0, mode: str = "link", overwrite: bool = False,
+                   store=None) -> dict:
     """Write ``directory/<label>/<file>``, or ``directory/<split>/<label>/<file>`` with a split.
 
     ``mode="link"`` makes symbolic links to the photos' absolute paths (copying instead
-    wherever links fail);
-    ``mode="copy"`` copies them. ``split`` is None, 1 to 3 fractions for train/val/test, or a
-    ``{name: fraction}`` mapping; see :func:`stratified_split`. Label folders are named by
-    :func:`folder_names`; photos whose file names clash in one folder get a short hash of their
-    relative path in front. A marker file ``.kinfold-export.json`` (label → folder, counts)
-    marks the folder as an export, and only an empty folder or a previous export is replaced.
+    wherever links fail); ``mode="copy"`` copies them. ``split`` is None, 1 to 3 fractions for
+    train/val/test, or a ``{name: fraction}`` mapping; see :func:`stratified_split`. Label
+    folders are named by :func:`folder_names`; photos whose file names clash in one folder get
+    a short hash of their relative path in front. The marker file ``.kinfold-export.json``
+    (label → folder, counts, the files written) marks the folder as an export: a later export
+    replaces those files and keeps everything else found there.
 
     A split leaves a class folder out where it has no photos of that label (``ImageFolder``
     refuses empty class folders), so compare classes by name, not index, across splits.
 
     Returns photo counts per label, ``{label: n}``, or ``{split: {label: n}}`` with a split.
     """
-    if mode not in ("link", "copy"):
-        raise ExportError(f"mode must be 'link' or 'copy', not {mode!r}")
-    directory, source_root = Path(directory), Path(source_root)
-    photos = _check_photos(photos)
-    parts = stratified_split(photos, split, seed) if split is not None else {None: photos}
-    if not source_root.is_dir():
-        raise ExportError(f"Cannot export: the photo folder {source_root} does not exist.")
-    missing = [p.path for p in photos if not (source_root / p.path).is_file()]
-    if missing:
-        more = f" (and {len(missing) - 5} more)" if len(missing) > 5 else ""
-        raise ExportError(f"Cannot export: {len(missing)} photo(s) missing from {source_root}: "
-                          + ", ".join(missing[:5]) + more)
-    _check_destination(directory, source_root)
-
-    folders = folder_names(p.label for p in photos)
-    counts: dict = {}
-    try:
-        tmp = Path(tempfile.mkdtemp(prefix=f".{directory.name}.kinfold-", dir=directory.parent))
-    except OSError as e:
-        raise ExportError(f"Cannot export to {directory}: {e}") from e
-    try:
-        link = mode == "link"
-        for part, members in parts.items():
-            root = tmp / part if part is not None else tmp
-            root.mkdir(exist_ok=True)
-            by_label: dict[str, list[LabelledPhoto]] = defaultdict(list)
-            for p in members:
-                by_label[p.label].append(p)
-            for label, label_photos in sorted(by_label.items()):
-                (root / folders[label]).mkdir()
-                for path, name in _file_names(label_photos).items():
-                    source = (source_root / path).resolve()
-                    try:
-                        link = _place(source, root / folders[label] / name, link)
-                    except OSError as e:
-                        raise ExportError(f"Cannot export: could not copy {path}: {e}") from e
-            label_counts = {label: len(ps) for label, ps in sorted(by_label.items())}
-            if part is None:
-                counts = label_counts
-            else:
-                counts[part] = label_counts
-        marker = {"kinfold_export": 1, "created": _iso_utc(None),
-                  "mode": "link" if link else "copy",
-                  "split": None if split is None else _split_fractions(split), "seed": seed,
-                  "folders": folders, "counts": counts}
-        (tmp / MARKER_NAME).write_text(json.dumps(marker, ensure_ascii=False, indent=1), "utf-8")
-        _swap_in(tmp, directory)
-    except OSError as e:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise ExportError(f"Cannot export to {directory}: {e}; the previous export, if any, "
-                          "is unchanged.") from e
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return counts
+    return export_all(photos, folders=directory, photo_folder=source_root, split=split,
+                      seed=seed, mode=mode, overwrite=overwrite, store=store)["folders"]

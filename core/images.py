@@ -3,12 +3,15 @@
 Handles EXIF orientation, grey / palette / alpha / 16-bit / float / CMYK pixels, the first
 frame of animated or multi-page files, and JPEG draft mode (DCT-domain downscaling, which
 makes a 12-megapixel JPEG several times cheaper to decode when only a small copy is needed).
-Every failure becomes a :class:`PhotoError` with a reason a person can read.
+Only regular files are opened, and never so that the open can block. Every failure becomes a
+:class:`PhotoError` with a reason a person can read and whether it is worth trying again.
 """
 from __future__ import annotations
 
+import contextlib
 import os
-from pathlib import Path
+import stat
+from typing import BinaryIO, Iterator
 
 import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
@@ -21,24 +24,98 @@ _WHITE = (255, 255, 255)
 
 
 class PhotoError(Exception):
-    """A photo that cannot be decoded; ``str(err)`` is the human reason."""
+    """A photo that cannot be decoded; ``str(err)`` is the human reason (it never names the
+    file: callers show it beside the photo's relative path).
+
+    ``retry`` says whether the failure may pass: False when the file is not a readable photo as it
+    stands (unknown or damaged format, cut short, too many pixels, not a regular file), so a scan
+    may remember it; True for a failure of the system rather than of the file (an I/O error, no
+    permission, not enough memory, the file gone), which the next scan tries again."""
+
+    def __init__(self, reason: str, retry: bool = False):
+        super().__init__(reason)
+        self.retry = retry
 
 
-def _open(path: os.PathLike | str) -> Image.Image:
+_FILE_KINDS = ((stat.S_ISDIR, "a folder"), (stat.S_ISFIFO, "a named pipe"), (stat.S_ISSOCK, "a socket"),
+               (stat.S_ISCHR, "a character device"), (stat.S_ISBLK, "a block device"),
+               (stat.S_ISLNK, "a symbolic link"))
+
+
+def file_kind(mode: int) -> str:
+    """What a non-regular file is, in words ("a named pipe", ...)."""
+    return next((name for test, name in _FILE_KINDS if test(mode)), "not a regular file")
+
+
+def not_regular(mode: int) -> str:
+    return f"{file_kind(mode)}, not a regular file: only regular files are read"
+
+
+def system_reason(exc: OSError) -> str:
+    """A one-line reason for an operating-system error, without the file name."""
+    if isinstance(exc, FileNotFoundError):
+        return "file not found (moved or deleted meanwhile)"
+    return f"cannot read the file: {exc.strerror or exc}"
+
+
+def open_regular(path: os.PathLike | str) -> BinaryIO:
+    """Open ``path`` for reading only if it is a regular file. The open itself cannot block (a
+    named pipe or a device named like a photo would wait forever for a writer): O_NONBLOCK, and
+    the type is checked on the opened descriptor, so a file swapped in after a check is caught too.
+    O_NONBLOCK has no effect on reading a regular file."""
+    flags = os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_NOCTTY", 0) | getattr(os, "O_CLOEXEC", 0)
     try:
-        return Image.open(path)
-    except FileNotFoundError:
-        raise PhotoError(f"file not found: {path}") from None
-    except IsADirectoryError:
-        raise PhotoError(f"is a folder, not a photo: {path}") from None
-    except PermissionError:
-        raise PhotoError(f"no permission to read {path}") from None
-    except UnidentifiedImageError:
-        raise PhotoError(f"not a readable image (unknown or damaged format): {path}") from None
-    except Image.DecompressionBombError as exc:
-        raise PhotoError(f"too many pixels to decode safely: {exc}") from None
-    except (OSError, ValueError, SyntaxError) as exc:
-        raise PhotoError(f"cannot open image: {exc}") from None
+        fd = os.open(path, flags)
+    except OSError as exc:
+        raise PhotoError(system_reason(exc), retry=True) from None
+    try:
+        mode = os.fstat(fd).st_mode
+    except OSError as exc:
+        os.close(fd)
+        raise PhotoError(system_reason(exc), retry=True) from None
+    if not stat.S_ISREG(mode):
+        os.close(fd)
+        raise PhotoError(not_regular(mode))
+    return os.fdopen(fd, "rb")
+
+
+def _decode_failure(exc: BaseException) -> PhotoError | None:
+    """PhotoError for what Pillow raised while opening or decoding; None if it is not ours to judge."""
+    if isinstance(exc, Image.DecompressionBombError):
+        return PhotoError(f"too many pixels to decode safely: {exc}")
+    if isinstance(exc, UnidentifiedImageError):
+        return PhotoError("not a readable image (unknown or damaged format)")
+    if isinstance(exc, MemoryError):
+        return PhotoError("not enough memory to decode it", retry=True)
+    if isinstance(exc, OSError) and exc.errno is not None:
+        # The operating system failed (EIO, EACCES, ENOMEM...), not the image format.
+        return PhotoError(system_reason(exc), retry=True)
+    if isinstance(exc, (OSError, ValueError, SyntaxError, EOFError)):
+        # Pillow reports a damaged file as OSError without errno, SyntaxError, ValueError or EOFError.
+        reason = str(exc) or type(exc).__name__
+        if "truncated" in reason:
+            return PhotoError("image data is cut short (truncated file)")
+        return PhotoError(f"cannot decode the image: {reason}")
+    return None
+
+
+@contextlib.contextmanager
+def _opened(source: os.PathLike | str | BinaryIO) -> Iterator[Image.Image]:
+    """The image in ``source`` (a path, or a binary file the caller keeps open and closes)."""
+    fh = source if hasattr(source, "read") else open_regular(source)
+    try:
+        try:
+            img = Image.open(fh)
+        except Exception as exc:
+            failure = _decode_failure(exc)
+            if failure is None:
+                raise
+            raise failure from None
+        with img:
+            yield img
+    finally:
+        if fh is not source:
+            fh.close()
 
 
 def _orientation(img: Image.Image) -> int:
@@ -48,15 +125,16 @@ def _orientation(img: Image.Image) -> int:
         return 1
 
 
-def probe(path: os.PathLike | str) -> tuple[int, int]:
-    """(width, height) as displayed, i.e. after EXIF orientation. Reads the header only,
-    so a JPEG whose pixel data is cut short is only found by :func:`load_rgb`."""
-    with _open(path) as img:
+def probe(source: os.PathLike | str | BinaryIO) -> tuple[int, int]:
+    """(width, height) as displayed, i.e. after EXIF orientation, of a path or an open binary file.
+    Reads the header only, so a JPEG whose pixel data is cut short is only found by
+    :func:`load_rgb`."""
+    with _opened(source) as img:
         width, height = img.size
         if _orientation(img) in _ORIENTATIONS_SWAPPING_SIDES:
             width, height = height, width
     if width <= 0 or height <= 0:
-        raise PhotoError(f"image has no pixels ({width} x {height}): {path}")
+        raise PhotoError(f"image has no pixels ({width} x {height})")
     return width, height
 
 
@@ -115,9 +193,8 @@ def load_rgb(path: os.PathLike | str, min_side: int | None = None) -> Image.Imag
     With ``min_side`` a JPEG is decoded at the smallest DCT scale (1/1, 1/2, 1/4, 1/8) whose
     shorter side is still >= ``min_side``; other formats decode at full size.
     """
-    # Leaving the "with" closes the file (multi-frame files keep it open otherwise) but
-    # keeps the decoded pixels.
-    with _open(path) as source:
+    # Leaving the "with" closes the file but keeps the decoded pixels.
+    with _opened(path) as source:
         try:
             if min_side and source.format == "JPEG":
                 # draft() picks the largest scale keeping BOTH sides >= the request, so a
@@ -127,10 +204,8 @@ def load_rgb(path: os.PathLike | str, min_side: int | None = None) -> Image.Imag
             source.load()  # decode now so a truncated file fails here, not later
             ImageOps.exif_transpose(source, in_place=True)
             return to_rgb(source)
-        except Image.DecompressionBombError as exc:
-            raise PhotoError(f"too many pixels to decode safely: {exc}") from None
-        except (OSError, ValueError, SyntaxError, EOFError) as exc:
-            reason = str(exc) or type(exc).__name__
-            if "truncated" in reason:
-                raise PhotoError(f"image data is cut short (truncated file): {path}") from None
-            raise PhotoError(f"cannot decode image {path}: {reason}") from None
+        except Exception as exc:
+            failure = _decode_failure(exc)
+            if failure is None:
+                raise
+            raise failure from None

@@ -35,6 +35,7 @@ STORE_DIR = ".kinfold"
 DEFAULT_EXTRACTOR = "efficientnet-lite0"
 _EMBED_CHUNK = 1024          # photos embedded and committed per step, so a crash loses at most this
 _UNDOABLE = ("accept", "label", "set_aside", "clear", "split")
+_SKIPPED_FORMAT = 2          # remembered skips: final failures only, reasons without absolute paths
 
 
 class ProjectError(Exception):
@@ -135,10 +136,20 @@ class Project:
              lock: bool = True) -> "Project":
         """Create or reopen the project of `folder`. The store defaults to `<folder>/.kinfold/`;
         pass `store=` for a separate location (a read-only folder, say)."""
+        if folder is None or not str(folder).strip():
+            raise ProjectError("no photo folder given (the name is empty); name the folder, '.' for the "
+                               "current one")
+        if store is not None and not str(store).strip():
+            raise ProjectError(f"the store location is empty; name a folder, or leave it out to keep the "
+                               f"store in FOLDER/{STORE_DIR}")
         folder = Path(folder).expanduser().resolve()
         if not folder.is_dir():
             raise ProjectError(f"{folder} is not a folder")
-        store_dir = Path(store).expanduser().resolve() if store else folder / STORE_DIR
+        store_dir = Path(store).expanduser().resolve() if store is not None else folder / STORE_DIR
+        if cls._hides_photos(store_dir, folder):
+            raise ProjectError(f"the store {store_dir} is inside the photo folder {folder}, so the photos "
+                               f"under it would be left out of every scan; keep it outside the folder, or "
+                               f"leave the store out to use {folder / STORE_DIR}")
         try:
             st = Store(store_dir)
         except StoreError as exc:
@@ -152,6 +163,14 @@ class Project:
                 st.close()
                 raise
         return cls(folder, st, annotator or _default_annotator(), extractor, lk)
+
+    @staticmethod
+    def _hides_photos(store_dir: Path, folder: Path) -> bool:
+        """Whether a store there would hide photos from the scan: it lies in the photo folder (or is
+        it) and not within a hidden folder, which the scan leaves out anyway (the default `.kinfold`)."""
+        if not store_dir.is_relative_to(folder):
+            return False
+        return not any(part.startswith(".") for part in store_dir.relative_to(folder).parts)
 
     def close(self) -> None:
         self.store.close()
@@ -188,24 +207,34 @@ class Project:
 
     def scan(self, progress: Progress | None = None, cancel: Cancel | None = None) -> ScanReport:
         """Find new and changed photos and embed those not embedded yet. Safe to cancel: what was
-        embedded is kept, and the next scan goes on from there."""
+        embedded is kept, and the next scan goes on from there. A file that is not a readable photo
+        is remembered as skipped; a failure that may pass (I/O, memory, the network) is reported in
+        `skipped` for this scan only and tried again by the next one."""
         t0 = time.perf_counter()
         previous = {r.path: r for r in self.store.photos()}
-        ignore = self.store.directory if self.store.directory.is_relative_to(self.folder) else None
-        cat = catalogue.scan_folder(self.folder, previous, self.store.skipped(), ignore=ignore,
-                                    progress=progress, cancel=cancel)
-        extractor = self.extractor()
-        self.store.set_setting("extractor_id", extractor.id)
-        done_fps = self.store.embedded_fingerprints(extractor.id)
-        todo: dict[str, PhotoRow] = {}
-        for r in cat.photos:
-            if r.fingerprint not in done_fps:
-                todo.setdefault(r.fingerprint, r)
-        todo_rows = list(todo.values())
+        # Skips remembered before reasons were checked for being final (and named no path) are
+        # looked at once more.
+        remembered = self.store.skipped() if self.store.get_setting("skipped_format") == _SKIPPED_FORMAT else {}
+        try:
+            cat = catalogue.scan_folder(self.folder, previous, remembered, progress=progress, cancel=cancel)
+        except OSError as exc:  # the folder itself cannot be listed (gone, no permission, I/O error)
+            raise ProjectError(f"cannot read the folder {self.folder}: {exc.strerror or exc}") from exc
         failed: dict[str, str] = {}
+        retry = dict(cat.retry)
         embedded = 0
-        cancelled = cat.cancelled
-        if not cancelled and todo_rows:
+        cancelled = cat.cancelled or bool(cancel and cancel())
+        todo: dict[str, PhotoRow] = {}
+        paths_of: dict[str, list[str]] = {}
+        if not cancelled:  # a cancelled scan does not wait for the network to load
+            extractor = self.extractor()
+            self.store.set_setting("extractor_id", extractor.id)
+            done_fps = self.store.embedded_fingerprints(extractor.id)
+            for r in cat.photos:
+                paths_of.setdefault(r.fingerprint, []).append(r.path)
+                if r.fingerprint not in done_fps:
+                    todo.setdefault(r.fingerprint, r)
+        todo_rows = list(todo.values())
+        if todo_rows:
             from core.embedding import embed_files
 
             for start in range(0, len(todo_rows), _EMBED_CHUNK):
@@ -221,6 +250,9 @@ class Project:
                 embedded += len(res.ok)
                 for i, reason in res.failed:
                     failed[chunk[i].fingerprint] = reason
+                for i, reason in res.retry:
+                    # The photo stays catalogued without an embedding, so the next scan embeds it.
+                    retry.update((path, reason) for path in paths_of[chunk[i].fingerprint])
                 if res.cancelled:
                     cancelled = True
                     break
@@ -232,10 +264,12 @@ class Project:
             else:
                 photos.append(r)
         self.store.replace_catalogue(photos, skipped)
+        self.store.set_setting("skipped_format", _SKIPPED_FORMAT)
         self._load_catalogue()
+        shown = [(p, v[2]) for p, v in skipped.items()]
+        shown += [(p, f"{reason} (tried again at the next scan)") for p, reason in retry.items()]
         return ScanReport(photos=len(self._rows), new=len(cat.new), changed=len(cat.changed),
-                          removed=len(cat.removed), embedded=embedded,
-                          skipped=sorted((p, v[2]) for p, v in skipped.items()),
+                          removed=len(cat.removed), embedded=embedded, skipped=sorted(shown),
                           cancelled=cancelled, seconds=time.perf_counter() - t0)
 
     # -- geometry ----------------------------------------------------------------------------
@@ -561,15 +595,24 @@ class Project:
         return self.store.relearn_versions()
 
     # -- export ------------------------------------------------------------------------------
-    def export_csv(self, path) -> int:
-        return export.export_csv(path, self.labelled_photos())
+    # Nothing is written inside the photo folder or the store; an existing file that is not a
+    # Kinfold export is replaced only with overwrite=True (core/export.py has the rules).
+    def export(self, csv=None, coco=None, folders=None, *, split=None, seed: int = 0, mode: str = "link",
+               overwrite: bool = False) -> dict:
+        """Write the asked formats all or nothing: ``{"csv": rows, "coco": {...}, "folders": counts}``."""
+        return export.export_all(self.labelled_photos(), csv=csv, coco=coco, folders=folders,
+                                 photo_folder=self.folder, store=self.store.directory, split=split, seed=seed,
+                                 mode=mode, overwrite=overwrite)
 
-    def export_coco(self, path) -> dict:
-        return export.export_coco(path, self.labelled_photos())
+    def export_csv(self, path, *, overwrite: bool = False) -> int:
+        return self.export(csv=path, overwrite=overwrite)["csv"]
 
-    def export_folders(self, directory, split=None, *, seed: int = 0, mode: str = "link") -> dict:
-        return export.export_folders(directory, self.labelled_photos(), self.folder, split=split, seed=seed,
-                                     mode=mode)
+    def export_coco(self, path, *, overwrite: bool = False) -> dict:
+        return self.export(coco=path, overwrite=overwrite)["coco"]
+
+    def export_folders(self, directory, split=None, *, seed: int = 0, mode: str = "link",
+                       overwrite: bool = False) -> dict:
+        return self.export(folders=directory, split=split, seed=seed, mode=mode, overwrite=overwrite)["folders"]
 
 
 def _default_annotator() -> str:

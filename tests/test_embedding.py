@@ -126,14 +126,31 @@ def test_embed_files_orders_rows_and_reports_broken_photos(tmp_path, photo_folde
     seen = []
     result = embed_files(paths, extractor, batch_size=2, progress=lambda d, t, m: seen.append((d, t)))
     assert result.ok == [0, 2, 3, 4, 5]
-    assert [i for i, _ in result.failed] == [1, 6]
-    assert all(reason for _, reason in result.failed) and not result.cancelled
+    assert [i for i, _ in result.failed] == [1]        # not an image: final
+    assert [i for i, _ in result.retry] == [6]         # gone meanwhile: tried again next time
+    assert all(reason for _, reason in result.failed + result.retry) and not result.cancelled
     assert result.vectors.shape == (5, extractor.dim) and result.vectors.dtype == np.float32
     assert np.allclose(np.linalg.norm(result.vectors, axis=1), 1.0, atol=1e-5)
     assert seen[-1] == (7, 7) and [d for d, _ in seen] == sorted(d for d, _ in seen)
     # Same pixels embedded directly must give the same rows.
     direct = embed_images([load_rgb(paths[i], extractor.decode_side) for i in result.ok], extractor)
     assert ((direct * result.vectors).sum(axis=1) > 0.999).all()
+
+
+def test_network_failure_on_a_batch_is_a_retry_not_an_abort(photo_folder, extractor, monkeypatch):
+    real = extractor.embed
+    calls = []
+
+    def fails_first(batch):
+        calls.append(len(batch))
+        if len(calls) == 1:
+            raise RuntimeError("DefaultCPUAllocator: can't allocate memory")
+        return real(batch)
+
+    monkeypatch.setattr(extractor, "embed", fails_first)
+    result = embed_files(photo_folder, extractor, batch_size=2)
+    assert [i for i, _ in result.retry] == [0, 1] and "allocate memory" in result.retry[0][1]
+    assert result.ok == [2, 3, 4] and result.vectors.shape[0] == 3 and not result.failed
 
 
 def test_same_photo_twice_gives_same_vector_and_other_photos_differ(tmp_path, extractor):

@@ -151,7 +151,64 @@ def test_text_file_named_jpg_is_a_photo_error(tmp_path):
 
 
 def test_missing_file_and_folder_are_photo_errors(tmp_path):
-    with pytest.raises(PhotoError, match="not found"):
+    with pytest.raises(PhotoError, match="not found") as gone:
         load_rgb(tmp_path / "gone.png")
-    with pytest.raises(PhotoError):
+    assert gone.value.retry                     # it may be back (a disk not mounted yet)
+    with pytest.raises(PhotoError, match="a folder, not a regular file") as folder:
         probe(tmp_path)
+    assert not folder.value.retry
+
+
+def test_damaged_files_are_final_and_reasons_name_no_path(tmp_path):
+    path = tmp_path / "notes.jpg"
+    path.write_text("shopping list")
+    cut = tmp_path / "cut.png"
+    Image.new("RGB", (300, 200), (9, 9, 9)).save(cut)
+    cut.write_bytes(cut.read_bytes()[:120])
+    for bad, call in ((path, probe), (path, load_rgb), (cut, load_rgb)):
+        with pytest.raises(PhotoError) as err:
+            call(bad)
+        assert not err.value.retry, str(err.value)
+        assert str(tmp_path) not in str(err.value)  # shown beside the relative path instead
+
+
+def test_io_error_while_decoding_is_worth_retrying(tmp_path, monkeypatch):
+    import errno
+
+    from PIL import ImageFile
+
+    path = tmp_path / "fine.jpg"
+    Image.new("RGB", (64, 48), (200, 10, 10)).save(path)
+
+    def eio(self):
+        raise OSError(errno.EIO, "Input/output error")  # what a failing disk raises from read()
+
+    monkeypatch.setattr(ImageFile.ImageFile, "load", eio)
+    with pytest.raises(PhotoError, match="Input/output error") as err:
+        load_rgb(path)
+    assert err.value.retry
+    monkeypatch.undo()
+    assert load_rgb(path).size == (64, 48)
+
+
+def test_named_pipe_called_jpg_is_refused_without_waiting(tmp_path):
+    import os
+    import threading
+
+    pipe = tmp_path / "x.jpg"
+    os.mkfifo(pipe)
+    errors = []
+
+    def read_both():
+        for call in (probe, load_rgb):
+            try:
+                call(pipe)
+            except PhotoError as exc:
+                errors.append(exc)
+
+    # A daemon thread: if opening the pipe blocked, the test fails instead of hanging.
+    t = threading.Thread(target=read_both, daemon=True)
+    t.start()
+    t.join(10)
+    assert not t.is_alive(), "opening a named pipe blocked"
+    assert len(errors) == 2 and all("named pipe" in str(e) and not e.retry for e in errors)
