@@ -150,6 +150,7 @@ class ScanProgress(JobProgress):
 
     def _reset(self) -> None:
         self.step = -1
+        self.stopped = False  # the scan was cancelled: a step without a report did not run
         self.results = ["", "", ""]
         self._last = (0, 0, "")
         self._enter(self.READ)
@@ -165,6 +166,8 @@ class ScanProgress(JobProgress):
 
     def _summary(self, k: int) -> str:
         done, total, message = self._last if self.step == k else (0, 0, "")
+        if self.stopped and not total and k < self.GROUPS:
+            return "not done: the scan was stopped"
         if k == self.READ:
             if not total:
                 return "no new or changed files"
@@ -192,6 +195,8 @@ class ScanProgress(JobProgress):
     def attach(self, job) -> None:
         if job.name == "scan":
             self._reset()
+        elif self._job is not None and self._job.cancelled:
+            self.stopped = True
         super().attach(job)
         if job.name != "scan":
             self._enter(self.GROUPS)

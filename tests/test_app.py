@@ -441,3 +441,26 @@ def test_scan_steps_stay_true_over_chunked_embedding(qtbot):
     assert "950 embedded" not in shown.text.text() and shown.text.text().startswith("3000 of 3000 photos embedded")
     shown._enter(shown.GROUPS)
     assert "3000 of 3000 photos through" in shown.step_lines[1].text()
+
+
+def test_scan_steps_after_a_scan_stopped_while_reading(qtbot):
+    """A scan cancelled while reading files never embeds: the page must not claim every photo was."""
+    from app.pages import ScanProgress
+
+    shown = ScanProgress()
+    qtbot.addWidget(shown)
+
+    class Named:
+        progress = type("S", (), {"connect": lambda self, f: None})()
+
+        def __init__(self, name, cancelled=False):
+            self.name, self.cancelled = name, cancelled
+
+    scan = Named("scan")
+    shown.attach(scan)
+    shown.show_progress(120, 346, "reading files")
+    scan.cancelled = True
+    shown.attach(Named("finding groups"))
+    assert shown.overall.text() == "Step 3 of 3"
+    assert "120 of 346 files read" in shown.step_lines[0].text()
+    assert "not done" in shown.step_lines[1].text() and "already embedded" not in shown.step_lines[1].text()
