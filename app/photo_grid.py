@@ -4,6 +4,7 @@ preview screens. Taken-out photos are greyed, struck through, badged with an X a
 from __future__ import annotations
 
 import math
+
 from PySide6.QtCore import QAbstractListModel, QModelIndex, QPoint, QRect, QSize, Qt, Signal
 from PySide6.QtGui import QColor, QFont, QFontMetrics, QPainter, QPen
 from PySide6.QtWidgets import QAbstractItemView, QListView, QStyle, QStyledItemDelegate
@@ -31,7 +32,7 @@ def elide_path(fm: QFontMetrics, path: str, width: int) -> str:
         return fm.elidedText(path, Qt.TextElideMode.ElideMiddle, width)
     folder, name = path.rsplit("/", 1)
     room = width - fm.horizontalAdvance("/" + name)
-    if room >= fm.horizontalAdvance("draw…ay"):  # enough to recognise the folder by
+    if room >= 7 * fm.averageCharWidth():  # enough of the folder to recognise it by
         return fm.elidedText(folder, Qt.TextElideMode.ElideMiddle, room) + "/" + name
     if fm.horizontalAdvance("…/" + name) <= width:
         return "…/" + name
@@ -88,7 +89,7 @@ class PhotoModel(QAbstractListModel):
             return None
         p = self.paths[index.row()]
         if role == Qt.ItemDataRole.DisplayRole:
-            return p  # with its subfolder: the folder often says what a photo is; elided in the middle
+            return p  # with its subfolder (the folder often says what a photo is); see elide_path
         if role == Qt.ItemDataRole.DecorationRole:
             return self.thumbs.pixmap(p, self.side)
         if role == PATH_ROLE:
