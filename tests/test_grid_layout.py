@@ -276,3 +276,21 @@ def test_accept_does_not_ask_when_everything_was_seen(qtbot, tmp_path, scanned_d
     focused_key(Qt.Key.Key_Return)
     assert not page.question.isVisible()
     assert p.store.decisions()[-1]["kind"] == "accept" and sorted(p.store.decisions()[-1]["photos"]) == sorted(g.members)
+
+
+def test_captions_keep_the_file_name_and_show_the_subfolder_when_there_is_room(qtbot, bare):
+    """The caption is the path relative to the folder: the subfolders are shortened (in the middle)
+    before the file name is, and nothing is drawn wider than the card."""
+    from PySide6.QtGui import QFontMetrics
+
+    from app.photo_grid import elide_path
+
+    w, _ = bare
+    fm = QFontMetrics(w.group_page.grid.font())
+    path = "drawer-b/lower-tray/IMG_0525.jpg"
+    assert elide_path(fm, path, fm.horizontalAdvance(path)) == path
+    for width in range(fm.horizontalAdvance("IMG_0525.jpg"), fm.horizontalAdvance(path)):
+        text = elide_path(fm, path, width)
+        assert fm.horizontalAdvance(text) <= width and text.endswith("/IMG_0525.jpg") or text == "IMG_0525.jpg"
+    wide = elide_path(fm, path, fm.horizontalAdvance(path) - 10)
+    assert wide.startswith("dr") and wide.endswith("/IMG_0525.jpg") and "…" in wide
