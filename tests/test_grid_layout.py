@@ -294,3 +294,113 @@ def test_captions_keep_the_file_name_and_show_the_subfolder_when_there_is_room(q
         assert fm.horizontalAdvance(text) <= width and text.endswith("/IMG_0525.jpg") or text == "IMG_0525.jpg"
     wide = elide_path(fm, path, fm.horizontalAdvance(path) - 10)
     assert wide.startswith("dr") and wide.endswith("/IMG_0525.jpg") and "…" in wide
+
+
+# -- the mouse under a real X server ----------------------------------------------------------------
+
+@pytest.mark.skipif(not (shutil.which("xvfb-run") and shutil.which("xdotool")),
+                    reason="needs xvfb-run and xdotool (apt-get install xvfb xdotool)")
+def test_mouse_in_a_real_window(tmp_path, scanned_demo):
+    """Clicks from xdotool through Xvfb and Qt's xcb platform, as a user's mouse arrives: a click takes
+    a photo out, a double-click previews and takes nothing out, Accept on a group that does not fit
+    asks first, Esc shows the first unseen photo, and "Accept anyway" labels exactly the members not
+    taken out (checked in the store)."""
+    import json
+    import subprocess
+    import sys
+
+    folder = tmp_path / "photos"
+    shutil.copytree(scanned_demo, folder, symlinks=True)
+    env = dict(os.environ, QT_QPA_PLATFORM="xcb", HOME=str(tmp_path),
+               PYTHONPATH=os.pathsep.join([str(ROOT)] + [p for p in [os.environ.get("PYTHONPATH")] if p]))
+    proc = subprocess.run(["xvfb-run", "-a", "-s", "-screen 0 1600x1000x24", sys.executable, __file__, str(folder),
+                           str(tmp_path / "settings.ini")], capture_output=True, text=True, env=env, timeout=600,
+                          cwd=str(ROOT))
+    rows = [json.loads(line) for line in proc.stdout.splitlines() if line.startswith("{")]
+    assert rows, proc.stdout[-2000:] + proc.stderr[-3000:]
+    r = rows[-1]
+    if r.get("skip"):
+        pytest.skip(r["skip"])
+    n = len(r["members"])
+    assert r["after_click"] == [r["members"][2]] and f"{n - 1} of {n} photos" in r["header"]
+    assert r["after_double_click"] == [r["members"][2]] and r["preview_of"] == r["members"][3]
+    assert r["asked"] and r["decisions_after_ask"] == 0 and f"{r['unseen']} photo" in r["question"]
+    assert r["after_esc_current"] == r["first_unseen_row"] and r["after_esc_visible"]
+    # Outside the window: the store holds one accept of exactly the members not taken out.
+    from core.project import Project
+
+    with Project.open(folder) as p:
+        accepts = [d for d in p.store.decisions() if d["kind"] == "accept"]
+    assert len(accepts) == 1 and accepts[0]["label"] == "fuse"
+    assert sorted(accepts[0]["photos"]) == sorted(m for m in r["members"] if m != r["members"][2])
+
+
+def _mouse_session(folder: str, settings: str) -> None:
+    """The child side of test_mouse_in_a_real_window: the window on the X server, xdotool's clicks."""
+    import json
+    import subprocess
+    import time
+
+    from PySide6.QtWidgets import QToolButton
+
+    app = QApplication([])
+    w = MainWindow(QSettings(settings, QSettings.Format.IniFormat))
+
+    def settle(seconds):
+        end = time.monotonic() + seconds
+        while time.monotonic() < end:
+            app.processEvents()
+            time.sleep(0.01)
+
+    def xdo(*args, wait=0.4):
+        subprocess.run(["xdotool", *map(str, args)], check=True)
+        settle(wait)
+
+    def click(widget, at=None, repeat=1):
+        c = widget.mapToGlobal(at if at is not None else widget.rect().center())
+        xdo("mousemove", c.x(), c.y())
+        xdo("click", "--repeat", repeat, "--delay", 80, 1, wait=0.8)  # past the double-click time
+
+    w.resize(1024, 700)
+    w.move(0, 0)
+    w.show()
+    w.open_folder(folder)
+    end = time.monotonic() + 300
+    while not w.groups and time.monotonic() < end:
+        settle(0.1)
+    settle(2.0)
+    g, page, grid, model, p = w.current(), w.group_page, w.group_page.grid, w.group_model, w.project
+    out = dict(members=g.members)
+    if len(g.members) < 5 or not grid.unseen_paths():
+        print(json.dumps(dict(skip="the first group fits a 1024x700 window whole")))
+        return
+    click(grid.viewport(), grid.visualRect(model.index(2)).center())
+    out.update(after_click=model.taken_out(), header=page.header.text())
+    click(grid.viewport(), grid.visualRect(model.index(3)).center(), repeat=2)
+    out.update(after_double_click=model.taken_out(), preview_of=getattr(w, "last_preview", None) and w.last_preview.path)
+    w.last_preview.close()
+    settle(0.5)
+    click(page.label)
+    xdo("type", "--delay", 40, "fuse")
+    accept = next(b for b in page.findChildren(QToolButton) if b.defaultAction() is w.actions["accept"])
+    unseen = grid.unseen_paths()
+    before = len(p.store.decisions())
+    click(accept)
+    out.update(asked=page.question.isVisible(), question=page.question_text.text(), unseen=len(unseen),
+               decisions_after_ask=len(p.store.decisions()) - before, first_unseen_row=g.members.index(unseen[0]))
+    click(page.label)  # the pointer over the window, so the key goes to it
+    xdo("key", "Escape", wait=0.8)
+    row = grid.currentIndex().row()
+    out.update(after_esc_current=row,
+               after_esc_visible=grid.viewport().rect().contains(grid.visualRect(model.index(row))))
+    click(accept)
+    if page.question.isVisible():
+        click(page.accept_anyway)
+    print(json.dumps(out), flush=True)
+    w.close()
+
+
+if __name__ == "__main__":
+    import sys
+
+    _mouse_session(sys.argv[1], sys.argv[2])
