@@ -8,10 +8,13 @@ from PySide6.QtWidgets import QWidget
 from app import theme
 
 # Keys the grid understands without a menu action.
-GRID_KEYS = [("Arrow keys", "move between photos"),
+GRID_KEYS = [("Arrow keys", "move between photos, as they are drawn"),
+             ("Home End PgUp PgDn", "first, last, a screen up or down"),
              ("Any letter", "start typing a label"),
              ("Tab", "move to the label field"),
-             ("Esc", "back from the label field / close a view")]
+             ("Esc", "back from the label field / close a view"),
+             ("Click", "take a photo out of the group, or put it back"),
+             ("Double-click", "see a photo full size (takes nothing out)")]
 
 
 class HelpOverlay(QWidget):
@@ -55,9 +58,9 @@ class HelpOverlay(QWidget):
         bold.setBold(True)
         p.setFont(bold)
         p.setPen(QColor(theme.INK))
-        p.drawText(QRectF(card.left() + 24, y, width - 48, line), "Keyboard — any key closes this sheet")
+        p.drawText(QRectF(card.left() + 24, y, width - 48, line), "Keys and mouse — any key closes this sheet")
         y += line + 6
-        key_w = 170
+        key_w = max([170] + [QFontMetrics(bold).horizontalAdvance(k) + 20 for _, keys in self.sections for k, _ in keys])
         for title, keys in self.sections:
             p.setFont(bold)
             p.setPen(QColor(theme.MUTED))

@@ -15,7 +15,7 @@ from app.export_dialog import ExportDialog
 from app.help_overlay import GRID_KEYS, HelpOverlay
 from app.history import labelled_curve
 from app.jobs import Job
-from app.pages import GroupPage, ReviewPage, ScanPage, StartPage, action_button
+from app.pages import GroupPage, ReviewPage, ScanPage, StartPage, action_button, scan_summary
 from app.photo_grid import PhotoModel
 from app.preview import PreviewDialog
 from app.side_panel import SidePanel
@@ -292,10 +292,7 @@ class MainWindow(QMainWindow):
     def _scanned(self, report) -> None:
         self.last_scan = report
         self.side.show_skipped(report.skipped)
-        note = (f"Scan stopped early: {report.photos} photos ready; open the folder again to go on."
-                if report.cancelled else
-                f"{report.photos} photos ready ({report.embedded} embedded now, {len(report.skipped)} skipped).")
-        self.group_page.say(note)
+        self.group_page.say(scan_summary(report))
         self.scan_page.title.setText("Finding groups")
         self._propose_in_background(self.scan_page.progress)
 
@@ -345,6 +342,8 @@ class MainWindow(QMainWindow):
         self.group_page.label.setText(text)
 
     def accept(self) -> None:
+        if not self._confirm_unseen():
+            return
         g = self.current()
         label = self.group_page.label.text().strip()
         if not label:
@@ -359,6 +358,10 @@ class MainWindow(QMainWindow):
                                 (f"; {len(drop)} taken out went back to the pool." if drop else "."))
             self.group_page.grid.setFocus()
             self.refresh()
+
+    def _confirm_unseen(self) -> bool:
+        """False while photos never on screen would be labelled and the user has not confirmed (once)."""
+        return self.group_page.confirm_unseen()
 
     def toggle_member(self) -> None:
         idx = self.group_page.grid.currentIndex()

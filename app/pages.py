@@ -2,16 +2,22 @@
 the user asked for; the window turns that into engine calls."""
 from __future__ import annotations
 
+import time
+
 from PySide6.QtCore import QStringListModel, Qt, Signal
 from PySide6.QtGui import QAction
-from PySide6.QtWidgets import (QCompleter, QFrame, QHBoxLayout, QLabel, QLineEdit, QListWidget,
-                               QListWidgetItem, QPushButton, QToolButton, QVBoxLayout, QWidget,
-                               QAbstractItemView, QSizePolicy)
+from PySide6.QtWidgets import (QApplication, QCompleter, QFrame, QHBoxLayout, QLabel, QLineEdit,
+                               QListWidget, QListWidgetItem, QPushButton, QToolButton, QVBoxLayout,
+                               QWidget, QAbstractItemView, QSizePolicy)
 
 from app import theme
-from app.jobs import JobProgress
+from app.jobs import JobProgress, _duration
 from app.photo_grid import PhotoGrid, PhotoModel
-from app.side_panel import group_summary
+
+
+def count(n: int, word: str, plural: str | None = None) -> str:
+    """'1 photo', '2 photos'."""
+    return f"{n} {word if n == 1 else (plural or word + 's')}"
 
 
 def _label(text: str = "", name: str | None = None, wrap: bool = False) -> QLabel:
@@ -119,13 +125,142 @@ class StartPage(QWidget):
         self.error.setVisible(bool(text))
 
 
+class ScanProgress(JobProgress):
+    """The scan's three steps, each named with its own count, so the bar starting again is explained:
+    reading the new or changed files, embedding the photos not embedded yet, finding the first groups.
+    The steps are told apart by the engine's progress messages ("reading files", "embedded …",
+    "done: …"/"cancelled: …"); the scan job and the "finding groups" job both report here."""
+
+    STEPS = ("Read the new and changed files", "Embed the photos (what each one looks like)",
+             "Find the first groups")
+    READ, EMBED, GROUPS = range(3)
+
+    def __init__(self, parent: QWidget | None = None):
+        super().__init__(parent, unit="photos")
+        self.overall = _label(" ", "heading")
+        self.step_lines = [_label(" ") for _ in self.STEPS]
+        box = QVBoxLayout()
+        box.setSpacing(2)
+        box.addWidget(self.overall)
+        for line in self.step_lines:
+            box.addWidget(line)
+        box.addSpacing(8)
+        self.layout().insertLayout(0, box)
+        self._reset()
+
+    def _reset(self) -> None:
+        self.step = -1
+        self.stopped = False  # the scan was cancelled: a step without a report did not run
+        self.results = ["", "", ""]
+        self._last = (0, 0, "")
+        self._enter(self.READ)
+
+    def _enter(self, step: int) -> None:
+        """Move on to `step`; a step passed without a report had nothing to do."""
+        for k in range(max(self.step, 0), step):
+            if not self.results[k]:
+                self.results[k] = self._summary(k)
+        self.step = step
+        self._step_t0, self._step_done0 = time.monotonic(), None
+        self._draw_steps()
+
+    def _summary(self, k: int) -> str:
+        done, total, message = self._last if self.step == k else (0, 0, "")
+        if self.stopped and not total and k < self.GROUPS:
+            return "not done: the scan was stopped"
+        if k == self.READ:
+            if not total:
+                return "no new or changed files"
+            return f"{count(total, 'file')} read" if done >= total else f"{done} of {count(total, 'file')} read"
+        if k == self.EMBED:
+            if not total:
+                return "every photo was already embedded"
+            # The split between embedded and unreadable is known only from the engine's closing words.
+            return self._embed_result(done, total, message) or (
+                f"{done} of {count(total, 'photo')} through (unreadable ones are listed when the scan ends)")
+        return "done"
+
+    def _draw_steps(self) -> None:
+        self.overall.setText(f"Step {self.step + 1} of {len(self.STEPS)}")
+        for k, (line, name) in enumerate(zip(self.step_lines, self.STEPS)):
+            if k < self.step:
+                mark, tail, weight = "✓", f" — {self.results[k]}", 400
+            elif k == self.step:
+                mark, tail, weight = "▶", "", 600
+            else:
+                mark, tail, weight = "○", "", 400
+            line.setStyleSheet(f"font-weight: {weight}; color: {theme.INK if k <= self.step else theme.MUTED};")
+            line.setText(f"{mark}  {k + 1}. {name}{tail}")
+
+    def attach(self, job) -> None:
+        if job.name == "scan":
+            self._reset()
+        elif self._job is not None and self._job.cancelled:
+            self.stopped = True
+        super().attach(job)
+        if job.name != "scan":
+            self._enter(self.GROUPS)
+            self.text.setText("finding neighbours and forming groups…")
+
+    def show_progress(self, done: int, total: int, message: str) -> None:
+        if message.startswith("reading"):
+            step = self.READ
+        elif "embedded" in message or message.startswith(("done:", "cancelled:")):
+            step = self.EMBED
+        else:
+            step = self.GROUPS
+        if step > self.step:
+            self._enter(step)
+        self._last = (done, total, message)
+        if step == self.GROUPS:
+            self.bar.setRange(0, 0)  # one call into the engine: no count to show
+            return
+        now = time.monotonic()
+        if self._step_done0 is None:
+            self._step_done0, self._step_t0 = done, now
+        self.bar.setRange(0, max(total, 1))
+        self.bar.setValue(min(done, max(total, 1)))
+        what = "files read" if step == self.READ else "photos embedded"
+        parts = [f"{done} of {total} {what}"]
+        rate = (done - self._step_done0) / max(now - self._step_t0, 1e-6)
+        if rate > 0 and now - self._step_t0 > 0.5:
+            parts.append(f"{rate:.1f} {'files' if step == self.READ else 'photos'}/s")
+            if done < total:
+                parts.append(f"about {_duration((total - done) / rate)} left in this step")
+        result = self._embed_result(done, total, message)
+        if result and done >= total:
+            parts = [result]
+        self.text.setText("  ·  ".join(parts))
+
+    @staticmethod
+    def _embed_result(done: int, total: int, message: str) -> str | None:
+        """The engine's closing words for the embedding ("done: 345 embedded, 1 could not be read"),
+        when they speak for the whole scan: the engine embeds in chunks, and a chunk's closing words
+        count that chunk only."""
+        if not message.startswith(("done:", "cancelled:")):
+            return None
+        numbers = [int(w) for w in message.replace(",", " ").split() if w.isdigit()]
+        if sum(numbers) != done or done != total and message.startswith("done:"):
+            return None
+        return message.split(":", 1)[1].strip() + (" (stopped early)" if message.startswith("cancelled:") else "")
+
+
+def scan_summary(report) -> str:
+    """The line shown once a scan has ended: what is ready, what was embedded now, what was left out."""
+    ready = count(report.photos, "photo")
+    if report.cancelled:
+        return f"Scan stopped early: {ready} ready; open the folder again to go on."
+    left_out = f"; {count(len(report.skipped), 'file')} left out, listed in the side panel" if report.skipped else ""
+    return f"{ready} ready ({report.embedded} embedded now){left_out}."
+
+
 class ScanPage(QWidget):
     def __init__(self, parent=None):
         super().__init__(parent)
         self.title = _label("Reading the folder", "title")
-        self.detail = _label("Photos already embedded are not redone; you can cancel and carry on later.",
+        self.detail = _label("Photos already embedded are not redone; you can cancel (Esc) and carry on later.",
                              "subtitle", wrap=True)
-        self.progress = JobProgress(unit="photos")
+        self.progress = ScanProgress()
         col = QVBoxLayout()
         col.addStretch(1)
         col.addWidget(self.title)
@@ -146,10 +281,19 @@ class ScanPage(QWidget):
 
 
 class GroupPage(QWidget):
-    """The current group: header, thumbnail grid, label field and the action buttons."""
+    """The current group: header, thumbnail grid, label field and the action buttons.
+
+    Mouse: a click on a photo takes it out of the group or puts it back (the window's "toggle" action);
+    a double-click shows it full size and leaves it as it was (the double-click's first click is undone).
+    Before an accept, `confirm_unseen` asks once when members have not been on screen."""
+
+    CLICK_HINT = "Click to take it out of the group, click again to put it back · double-click: full size"
 
     def __init__(self, model: PhotoModel, actions: dict[str, QAction], parent=None):
         super().__init__(parent)
+        self.actions = actions
+        self.group = None
+        model.hint = self.CLICK_HINT
         self.header = _label(" ", "groupHeader")
         self.detail = _label(" ", "muted")
         self.grid = PhotoGrid(model)
@@ -163,6 +307,19 @@ class GroupPage(QWidget):
         self.label.setAccessibleName("Label for this group")
         self.busy = JobProgress(unit="steps")
         self.busy.hide()
+
+        # The question asked before labelling photos that were never on screen.
+        self.question = QFrame()
+        self.question.setObjectName("panel")
+        self.question_text = _label(" ", "problem", wrap=True)
+        self.accept_anyway = QPushButton("Accept anyway  (Return)")
+        self.show_unseen = QPushButton("Show them  (Esc)")
+        q = QHBoxLayout(self.question)
+        q.addWidget(self.question_text, 1)
+        q.addWidget(self.show_unseen)
+        q.addWidget(self.accept_anyway)
+        self.question.hide()
+        self.asking = False
 
         bar = QFrame()
         bar.setObjectName("panel")
@@ -186,12 +343,24 @@ class GroupPage(QWidget):
         lay.addWidget(self.detail)
         lay.addWidget(self.grid, 1)
         lay.addWidget(self.empty, 1)
+        lay.addWidget(self.question)
         lay.addWidget(self.message)
         lay.addWidget(bar)
-        self.label.escaped.connect(self.grid.setFocus)
+        self.label.escaped.connect(self._escaped)
+        self.grid.escaped.connect(self._escaped)
+        self.show_unseen.clicked.connect(self._escaped)
+        self.accept_anyway.clicked.connect(actions["accept"].trigger)
+        self._last_click = (-1, 0.0)
+        self.grid.clicked.connect(self._clicked)
+        self.grid.doubleClicked.connect(self._double_clicked)
+        model.out_changed.connect(self._show_header)
+        model.modelReset.connect(self._stop_asking)
 
+    # -- header -------------------------------------------------------------------------------
     def show_group(self, g, position: int, queued: int) -> None:
         has = g is not None
+        self.group = g
+        self._stop_asking()
         self.grid.setVisible(has)
         self.empty.setVisible(not has)
         if not has:
@@ -200,15 +369,78 @@ class GroupPage(QWidget):
             self.empty.setText("Every photo is labelled or set aside. Review the labels, relearn, or export.")
             self.label.clear()
             return
-        self.header.setText(f"Group {g.id}  ·  {len(g.members)} photos")
+        self._show_header()
         parts = [f"trust {g.trust:.2f}"]
         if g.suggested_label:
             conf = f" (confidence {g.confidence:.2f})" if g.confidence is not None else ""
             parts.append(f"suggested label “{g.suggested_label}”{conf}")
-        parts += [g.kind, f"{queued} more groups queued"]
+        parts += [g.kind, f"{queued} more {'group' if queued == 1 else 'groups'} queued" if queued
+                  else "no more groups queued"]
         self.detail.setText("  ·  ".join(parts))
         self.label.setText(g.suggested_label or "")
         self.label.selectAll()
+
+    def labelled_by_accept(self) -> int:
+        """How many photos an accept would label now: the members not taken out."""
+        model = self.grid.photo_model()
+        return len(model.paths) - len(model.taken_out())
+
+    def _show_header(self) -> None:
+        if self.group is None:
+            return
+        n, k = len(self.grid.photo_model().paths), self.labelled_by_accept()
+        if k == n:
+            what = f"Accept will label all {count(n, 'photo')}" if n > 1 else "Accept will label its 1 photo"
+        elif k == 0:
+            what = f"all {count(n, 'photo')} taken out: nothing to label"
+        else:
+            what = f"Accept will label {k} of {count(n, 'photo')} ({n - k} taken out)"
+        self.header.setText(f"Group {self.group.id}  ·  {what}")
+
+    # -- mouse --------------------------------------------------------------------------------
+    def _clicked(self, idx) -> None:
+        toggle = self.actions["toggle"]
+        if not idx.isValid() or not toggle.isEnabled():
+            return
+        self.grid.setCurrentIndex(idx)
+        toggle.trigger()
+        self._last_click = (idx.row(), time.monotonic())
+
+    def _double_clicked(self, idx) -> None:
+        row, at = self._last_click
+        self._last_click = (-1, 0.0)
+        window = QApplication.doubleClickInterval() / 1000 + 0.2
+        if idx.isValid() and row == idx.row() and time.monotonic() - at <= window:
+            self.grid.setCurrentIndex(idx)
+            self.actions["toggle"].trigger()  # undo the double-click's first click: previewing changes nothing
+
+    # -- photos not on screen -----------------------------------------------------------------
+    def confirm_unseen(self) -> bool:
+        """Whether an accept may go on. Members (not taken out) whose card has not been fully on screen
+        are counted and asked about once: accept again (Return, or the button) goes on; Esc shows them.
+        With no label typed it lets the accept say what is missing first."""
+        unseen = self.grid.unseen_paths() if self.group is not None else []
+        if not unseen or self.asking or not self.label.text().strip():
+            self._stop_asking()
+            return True
+        self.asking = True
+        n = len(unseen)
+        self.question_text.setText(
+            f"⚠  {count(n, 'photo')} of this group {'has' if n == 1 else 'have'} not been on screen yet. "
+            f"Return accepts {'it' if n == 1 else 'them'} too; Esc shows {'it' if n == 1 else 'them'} first.")
+        self.question.show()
+        return False
+
+    def _stop_asking(self) -> None:
+        self.asking = False
+        self.question.hide()
+
+    def _escaped(self) -> None:
+        if self.asking:
+            self._stop_asking()
+            self.grid.show_first_unseen()
+        else:
+            self.grid.setFocus()
 
     def say(self, text: str, problem: bool = False) -> None:
         say(self.message, text, problem)

@@ -4,7 +4,6 @@ preview screens. Taken-out photos are greyed, struck through, badged with an X a
 from __future__ import annotations
 
 import math
-from pathlib import PurePosixPath
 
 from PySide6.QtCore import QAbstractListModel, QModelIndex, QPoint, QRect, QSize, Qt, Signal
 from PySide6.QtGui import QColor, QFont, QFontMetrics, QPainter, QPen
@@ -27,10 +26,29 @@ def box_height(side: int) -> int:
     return round(side * BOX_RATIO)
 
 
+def elide_path(fm: QFontMetrics, path: str, width: int) -> str:
+    """A relative path cut to `width` px: the subfolders shortened in the middle before the file name is."""
+    if fm.horizontalAdvance(path) <= width or "/" not in path:
+        return fm.elidedText(path, Qt.TextElideMode.ElideMiddle, width)
+    folder, name = path.rsplit("/", 1)
+    room = width - fm.horizontalAdvance("/" + name)
+    if room >= 7 * fm.averageCharWidth():  # enough of the folder to recognise it by
+        return fm.elidedText(folder, Qt.TextElideMode.ElideMiddle, room) + "/" + name
+    if fm.horizontalAdvance("…/" + name) <= width:
+        return "…/" + name
+    return fm.elidedText(name, Qt.TextElideMode.ElideMiddle, width)
+
+
 class PhotoModel(QAbstractListModel):
-    def __init__(self, thumbs: Thumbnails, parent=None):
+    """The photos of a grid by relative path, with the set taken out. `out_changed` says when a photo
+    was taken out or put back; `hint` is the line of the tooltip saying what the mouse does."""
+
+    out_changed = Signal()
+
+    def __init__(self, thumbs: Thumbnails, parent=None, hint: str = "Double-click to see it full size"):
         super().__init__(parent)
         self.thumbs = thumbs
+        self.hint = hint
         self.paths: list[str] = []
         self.notes: list[str] = []
         self.out: set[str] = set()
@@ -58,6 +76,7 @@ class PhotoModel(QAbstractListModel):
         self.out.symmetric_difference_update({p})
         idx = self.index(row)
         self.dataChanged.emit(idx, idx, [OUT_ROLE])
+        self.out_changed.emit()
 
     def taken_out(self) -> list[str]:
         return [p for p in self.paths if p in self.out]
@@ -70,7 +89,7 @@ class PhotoModel(QAbstractListModel):
             return None
         p = self.paths[index.row()]
         if role == Qt.ItemDataRole.DisplayRole:
-            return PurePosixPath(p).name
+            return p  # with its subfolder (the folder often says what a photo is); see elide_path
         if role == Qt.ItemDataRole.DecorationRole:
             return self.thumbs.pixmap(p, self.side)
         if role == PATH_ROLE:
@@ -81,9 +100,10 @@ class PhotoModel(QAbstractListModel):
             return self.notes[index.row()]
         if role == Qt.ItemDataRole.ToolTipRole:
             note = self.notes[index.row()]
-            return p + ("  (taken out)" if p in self.out else "") + (f"\n{note}" if note else "")
+            lines = [p + ("  (taken out)" if p in self.out else ""), note, self.hint]
+            return "\n".join(line for line in lines if line)
         if role == Qt.ItemDataRole.AccessibleTextRole:
-            return PurePosixPath(p).name + (", taken out" if p in self.out else "")
+            return p + (", taken out" if p in self.out else "")
         return None
 
     def _thumb_ready(self, rel: str) -> None:
@@ -130,10 +150,13 @@ class PhotoCard(QStyledItemDelegate):
             painter.setOpacity(0.28 if out else 1.0)
             painter.drawPixmap(target, pm)
             painter.setOpacity(1.0)
+            shown = True
         else:
             painter.setPen(QColor(theme.MUTED))
-            unreadable = index.data(PATH_ROLE) in index.model().thumbs.unreadable
-            painter.drawText(box, Qt.AlignmentFlag.AlignCenter, "no preview" if unreadable else "…")
+            shown = index.data(PATH_ROLE) in index.model().thumbs.unreadable
+            painter.drawText(box, Qt.AlignmentFlag.AlignCenter, "no preview" if shown else "…")
+        if shown and isinstance(self.parent(), PhotoGrid):  # "…" while loading is not the photo
+            self.parent().mark_seen(index.row(), option.rect)
 
         if out:
             self._cross_badge(painter, box)
@@ -147,9 +170,8 @@ class PhotoCard(QStyledItemDelegate):
         font.setStrikeOut(out)
         painter.setFont(font)
         painter.setPen(QColor(theme.MUTED if out else theme.INK))
-        name = str(index.data(Qt.ItemDataRole.DisplayRole))
         painter.drawText(text_rect, Qt.AlignmentFlag.AlignHCenter,
-                         fm.elidedText(name, Qt.TextElideMode.ElideMiddle, text_rect.width()))
+                         elide_path(fm, str(index.data(Qt.ItemDataRole.DisplayRole)), text_rect.width()))
         if self.notes:
             font.setStrikeOut(False)
             painter.setFont(font)
@@ -198,25 +220,42 @@ class PhotoCard(QStyledItemDelegate):
                               b.topRight()])
 
 
+def columns(width: int, card_width: int, spacing: int = SPACING // 2) -> int:
+    """How many cards QListView's icon layout puts in a row of a `width`-px layout area: the first card
+    `spacing` px in, cards `spacing` apart, and a new row once a card would reach the right edge
+    (measured against Qt 6's layout in tests/test_grid_layout.py)."""
+    return max(1, (width - spacing - 1) // (card_width + spacing))
+
+
+def rows_height(rows: int, card_height: int, spacing: int = SPACING // 2) -> int:
+    """The height QListView's icon layout needs for `rows` rows of cards (its contents height)."""
+    return spacing + rows * (card_height + spacing)
+
+
 def fitting_side(width: int, height: int, count: int, extra_height: int,
-                 lo: int = MIN_SIDE, hi: int = MAX_SIDE) -> int:
+                 lo: int = MIN_SIDE, hi: int = MAX_SIDE, spacing: int = SPACING // 2) -> int:
     """The largest thumbnail side (step 8 px, so cached sizes get reused) at which `count` cards fit a
-    width x height viewport without scrolling; `lo` when none does (the grid then scrolls). Mirrors
-    QListView's icon layout: cards `SPACING` apart, the first one at the corner."""
+    width x height layout area without scrolling; `lo` when none does (the grid then scrolls).
+    `extra_height`: the card's height below its thumbnail box and padding (the caption lines)."""
     for side in range(hi, lo - 1, -8):
-        cols = max(1, (width + SPACING) // (side + 2 * PAD + SPACING))
+        cols = columns(width, side + 2 * PAD, spacing)
         rows = math.ceil(max(count, 1) / cols)
-        if rows * (box_height(side) + 2 * PAD + extra_height + SPACING) - SPACING <= height:
+        if rows_height(rows, box_height(side) + 2 * PAD + extra_height, spacing) <= height:
             return side
     return lo
 
 
 class PhotoGrid(QListView):
     """Icon-mode list of photo cards. `typed` carries a printable key pressed on the grid (so the
-    window can start a label with it); `opened` a photo double-clicked."""
+    window can start a label with it); `opened` a photo double-clicked; `escaped` Esc on the grid.
+
+    A fitted grid sizes its cards so the whole group fits the viewport, or, below the smallest readable
+    size, scrolls with a scrollbar. It remembers which cards have been fully on screen with their
+    picture since the photos were set (`unseen_paths`), so nothing is labelled that was never shown."""
 
     typed = Signal(str)
     opened = Signal(str)
+    escaped = Signal()
 
     def __init__(self, model: PhotoModel, parent=None, notes: bool = False, fit: bool = True):
         super().__init__(parent)
@@ -233,7 +272,9 @@ class PhotoGrid(QListView):
         self.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
         self.setVerticalScrollMode(QAbstractItemView.ScrollMode.ScrollPerPixel)
         self.fit = fit
+        self.seen: set[int] = set()  # rows drawn whole, with their picture, since the photos were set
         self.doubleClicked.connect(lambda idx: self.opened.emit(idx.data(PATH_ROLE)))
+        model.modelReset.connect(self.seen.clear)
         model.modelReset.connect(self.refit)
 
     def photo_model(self) -> PhotoModel:
@@ -243,23 +284,67 @@ class PhotoGrid(QListView):
         idx = self.currentIndex()
         return idx.data(PATH_ROLE) if idx.isValid() else None
 
+    # -- fitting ------------------------------------------------------------------------------
+    def layout_area(self) -> tuple[int, int]:
+        """The width QListView lays rows out in and the height it shows without scrolling. Qt keeps
+        room for the vertical scrollbar in the width whether or not it is shown, so the number of
+        columns does not change when the scrollbar comes or goes."""
+        full = self.maximumViewportSize()
+        bar = self.style().pixelMetric(QStyle.PixelMetric.PM_ScrollBarExtent, None, self.verticalScrollBar())
+        return full.width() - bar, full.height()
+
+    def _caption_height(self) -> int:
+        self.ensurePolished()  # the style sheet's font, as the cards will be drawn with it
+        return self.card._lines() * (QFontMetrics(self.font()).height() + 2)
+
     def side_for(self, count: int) -> int:
-        vp = self.viewport().size()
-        extra = self.card._lines() * (QFontMetrics(self.font()).height() + 2)
-        return fitting_side(vp.width(), vp.height(), count, extra)
+        width, height = self.layout_area()
+        return fitting_side(width, height, count, self._caption_height(), spacing=self.spacing())
 
     def refit(self) -> None:
         if not self.fit:
             return
-        self.photo_model().set_side(self.side_for(self.model().rowCount()))
-        if self.model().rowCount() and not self.currentIndex().isValid():
-            self.setCurrentIndex(self.model().index(0))
+        model = self.photo_model()
+        count = model.rowCount()
+        side = self.side_for(count)
+        model.set_side(side)
+        if count:
+            # Check against Qt's own layout: should a style lay cards out differently from
+            # `fitting_side`, step down rather than leave a row cut off.
+            _, height = self.layout_area()
+            self.doItemsLayout()
+            while self.contentsSize().height() > height and model.side > MIN_SIDE:
+                model.set_side(model.side - 8)
+                self.doItemsLayout()
+            if not self.currentIndex().isValid():
+                self.setCurrentIndex(model.index(0))
 
     def resizeEvent(self, event):
         super().resizeEvent(event)
         self.refit()
 
+    # -- what has been on screen --------------------------------------------------------------
+    def mark_seen(self, row: int, rect: QRect) -> None:
+        """Called by the card painter: a card drawn whole inside the viewport has been on screen."""
+        if self.viewport().rect().contains(rect):
+            self.seen.add(row)
+
+    def unseen_paths(self) -> list[str]:
+        """Members not taken out whose card has not been fully on screen since the photos were set."""
+        model = self.photo_model()
+        return [p for i, p in enumerate(model.paths) if i not in self.seen and p not in model.out]
+
+    def show_first_unseen(self) -> None:
+        unseen = self.unseen_paths()
+        if unseen:
+            idx = self.photo_model().index(self.photo_model().paths.index(unseen[0]))
+            self.setCurrentIndex(idx)
+            self.scrollTo(idx, QAbstractItemView.ScrollHint.PositionAtTop)
+        self.setFocus()
+
     def keyPressEvent(self, event):
+        if event.key() == Qt.Key.Key_Escape:
+            self.escaped.emit()  # and on to the page (the review page goes back on Esc)
         text = event.text()
         mods = event.modifiers() & ~Qt.KeyboardModifier.ShiftModifier & ~Qt.KeyboardModifier.KeypadModifier
         if text and text.isprintable() and not text.isspace() and text != "?" and mods == Qt.KeyboardModifier.NoModifier:

@@ -74,6 +74,16 @@ def key(qtbot, widget, k, mods=Qt.KeyboardModifier.NoModifier):
     qtbot.wait(10)
 
 
+def seen_all(qtbot, w):
+    """Scroll through the group until every card has been drawn whole with its picture; before that
+    an accept asks first (tests/test_grid_layout.py checks the asking)."""
+    bar = w.group_page.grid.verticalScrollBar()
+    for value in range(0, bar.maximum() + bar.pageStep(), max(bar.pageStep(), 1)):
+        bar.setValue(value)  # look through the whole group, as a mouse user drags the scrollbar
+        qtbot.wait(50)
+    qtbot.waitUntil(lambda: not w.group_page.grid.unseen_paths(), timeout=20_000)
+
+
 def type_label(qtbot, w, text):
     """Type on the grid: the first letter jumps to the label field, the rest goes there."""
     grid, field = w.group_page.grid, w.group_page.label
@@ -97,6 +107,7 @@ def test_label_a_folder_by_keyboard(qtbot, window, folder, tmp_path):
 
     # 1. Accept the first group by keyboard under a new label.
     type_label(qtbot, w, "hex nut")
+    seen_all(qtbot, w)
     key(qtbot, w.group_page.label, Qt.Key.Key_Return)
     st = p.status()
     assert st.labelled == len(first.members) and st.by_label == {"hex nut": len(first.members)}
@@ -120,6 +131,7 @@ def test_label_a_folder_by_keyboard(qtbot, window, folder, tmp_path):
         type_label(qtbot, w, "washer")
     label2 = w.group_page.label.text()
     grid.setFocus()
+    seen_all(qtbot, w)
     key(qtbot, grid, Qt.Key.Key_Return)
     assert p.status().labelled == st.labelled + len(second.members) - 1
     last = p.store.decisions()[-1]
@@ -319,11 +331,14 @@ def test_gui_stays_responsive_during_a_real_scan(qtbot, window, demo_source, tmp
     fresh = tmp_path / "fresh"
     shutil.copytree(demo_source, fresh, ignore=_ignore_store)
     gaps, last = [], [time.perf_counter()]
+    shown = window.scan_page.progress
+    samples = []  # what the scan page showed: (step line, step, bar value, bar maximum, text)
 
     def beat():
         now = time.perf_counter()
         gaps.append(now - last[0])
         last[0] = now
+        samples.append((shown.overall.text(), shown.step, shown.bar.value(), shown.bar.maximum(), shown.text.text()))
 
     timer = QTimer()
     timer.setInterval(10)
@@ -343,6 +358,25 @@ def test_gui_stays_responsive_during_a_real_scan(qtbot, window, demo_source, tmp
     # machine, 324 ms once with a benchmark running beside it). The test guards the design: a scan on
     # the GUI thread would stall it for the whole scan (seconds), far beyond this bound.
     assert longest < 1000 < seconds * 1000 / 2
+
+    # The scan page names its step whenever its bar starts again, and its figures are true.
+    steps = [step for _, step, _, _, _ in samples]
+    assert steps == sorted(steps) and {0, 1} <= set(steps)         # reading, then embedding, in order
+    for (line0, step0, value0, _, _), (line1, step1, value1, _, _) in zip(samples, samples[1:]):
+        if value1 < value0:
+            assert step1 > step0 and line1 != line0                 # the bar fell back only with a new step named
+    # Outside reference: the files whose type Pillow registers as an image format.
+    photo_files = sum(1 for f in fresh.rglob("*") if f.suffix.lower() in Image.registered_extensions())
+    read = [m for _, step, _, m, _ in samples if step == 0]
+    embedding = [(v, m, t) for _, step, v, m, t in samples if step == 1]
+    assert read and max(read) == photo_files                        # step 1 counts the photo files read
+    assert max(m for _, m, _ in embedding) == photo_files           # a fresh folder: every one is embedded
+    assert any("photos embedded" in t for v, m, t in embedding if 0 < v < m)
+    assert shown.overall.text() == "Step 3 of 3"                    # finding groups once the scan ended
+    assert f"{report.embedded} embedded" in shown.step_lines[1].text()
+    note = window.group_page.message.text()
+    assert note.startswith(f"{report.photos} photos ready ({report.embedded} embedded now")
+    assert report.photos == window.project.status().photos
 
 
 @pytest.mark.skipif(not _relearning_offered(), reason="core.relearning does not offer relearn_project yet")
@@ -380,3 +414,53 @@ def test_cancelling_a_scan_keeps_what_was_embedded(qtbot, window, demo_source, t
     assert report.photos == report.embedded                     # a fresh folder: ready means embedded now
     assert w.project.status().photos == report.photos
     assert "stopped early" in w.group_page.message.text()
+
+
+def test_scan_steps_stay_true_over_chunked_embedding(qtbot):
+    """The engine embeds in chunks of 1,024 and each chunk's closing words count that chunk only
+    (core/project.py, core/embedding.py); the scan page must not pass them off as the whole scan's."""
+    from app.pages import ScanProgress
+
+    shown = ScanProgress()
+    qtbot.addWidget(shown)
+
+    class Named:
+        name = "scan"
+        progress = type("S", (), {"connect": lambda self, f: None})()
+
+    shown.attach(Named())
+    for done in range(1, 2501, 500):
+        shown.show_progress(done, 2500, "reading files")
+    assert shown.overall.text() == "Step 1 of 3" and shown.bar.maximum() == 2500
+    # Chunk 1 of 3 (the messages core.project.scan passes on: overall counts, chunk-local words).
+    shown.show_progress(1000, 3000, "embedded 1000 of 1024 photos")
+    assert shown.overall.text() == "Step 2 of 3" and "2500 files read" in shown.step_lines[0].text()
+    shown.show_progress(1024, 3000, "done: 1020 embedded, 4 could not be read")
+    assert shown.text.text().startswith("1024 of 3000 photos embedded")  # not "1020 embedded"
+    shown.show_progress(3000, 3000, "done: 950 embedded, 2 could not be read")  # the last chunk's words
+    assert "950 embedded" not in shown.text.text() and shown.text.text().startswith("3000 of 3000 photos embedded")
+    shown._enter(shown.GROUPS)
+    assert "3000 of 3000 photos through" in shown.step_lines[1].text()
+
+
+def test_scan_steps_after_a_scan_stopped_while_reading(qtbot):
+    """A scan cancelled while reading files never embeds: the page must not claim every photo was."""
+    from app.pages import ScanProgress
+
+    shown = ScanProgress()
+    qtbot.addWidget(shown)
+
+    class Named:
+        progress = type("S", (), {"connect": lambda self, f: None})()
+
+        def __init__(self, name, cancelled=False):
+            self.name, self.cancelled = name, cancelled
+
+    scan = Named("scan")
+    shown.attach(scan)
+    shown.show_progress(120, 346, "reading files")
+    scan.cancelled = True
+    shown.attach(Named("finding groups"))
+    assert shown.overall.text() == "Step 3 of 3"
+    assert "120 of 346 files read" in shown.step_lines[0].text()
+    assert "not done" in shown.step_lines[1].text() and "already embedded" not in shown.step_lines[1].text()
