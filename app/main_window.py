@@ -19,7 +19,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
 
-from PySide6.QtCore import QEvent, QKeyCombination, QSettings, Qt, QTimer, Signal
+from PySide6.QtCore import QEvent, QItemSelectionModel, QKeyCombination, QSettings, Qt, QTimer, Signal
 from PySide6.QtGui import QAction, QKeyEvent, QKeySequence
 from PySide6.QtWidgets import (QApplication, QFileDialog, QFrame, QMainWindow, QMessageBox, QSplitter,
                                QStackedWidget, QVBoxLayout, QListWidgetItem, QWidget)
@@ -424,7 +424,7 @@ class MainWindow(QMainWindow):
             self._end_pending()
             if view.error is None and counts is not None:
                 self.curve.add(counts, view.status.labelled)
-            self._apply(view)
+            self._apply(view, focus_grid=call is not None)
             if view.error is not None:
                 (where or self.group_page).say(view.error, problem=True)
             elif done is not None:
@@ -502,10 +502,10 @@ class MainWindow(QMainWindow):
                     return True
         return False
 
-    def _apply(self, view: View) -> None:
+    def _apply(self, view: View, focus_grid: bool = False) -> None:
         """Show a view: the current group and what follows, the figures, the review page's photos."""
         self.status = view.status
-        self._show_groups(view.groups)
+        self._show_groups(view.groups, focus_grid)
         if view.review is not None:
             self._fill_review(*view.review)
         elif self.stack.currentWidget() is self.review_page and not view.status.by_label:
@@ -519,7 +519,9 @@ class MainWindow(QMainWindow):
         """Ask for the proposals and status again (after something changed outside the window)."""
         return self._act("refresh", None)
 
-    def _show_groups(self, groups) -> None:
+    def _show_groups(self, groups, focus_grid: bool = False) -> None:
+        """`focus_grid`: after a decision the keyboard goes back to the grid of the new group (the
+        label field may have had it back from a closing popup meanwhile)."""
         self.groups = [shown(g) for g in groups]
         g = self.current()
         self.thumbs.forget_queue()
@@ -537,7 +539,7 @@ class MainWindow(QMainWindow):
             nxt = self.groups[1].members
             self.thumbs.prefetch(nxt, self.group_page.grid.side_for(len(nxt)))
         self._sync_actions()
-        if self.stack.currentWidget() is self.work and not self.group_page.label.hasFocus():
+        if self.stack.currentWidget() is self.work and (focus_grid or not self.group_page.label.hasFocus()):
             self.group_page.grid.setFocus()
         self.groups_shown.emit()
 
@@ -732,8 +734,9 @@ class MainWindow(QMainWindow):
     def _review_rows(self, label: str, rows) -> None:
         self.review_model.set_photos([p for p, _ in rows], [f"typicality {t:.2f}" for _, t in rows])
         self.review_page.header.setText(f"“{label}”  ·  {photos(len(rows))}")
-        if rows:
-            self.review_page.grid.setCurrentIndex(self.review_model.index(0))
+        if rows:  # the least typical photo, selected (the field is empty, so Return alone relabels nothing)
+            self.review_page.grid.selectionModel().setCurrentIndex(
+                self.review_model.index(0), QItemSelectionModel.SelectionFlag.ClearAndSelect)
 
     def relabel_selected(self) -> None:
         page = self.review_page
