@@ -34,18 +34,27 @@ SESSION_ACTIONS = 300
 
 
 # -- delivery as a window system does it --------------------------------------------------------
-def target():
-    popup = QApplication.activePopupWidget()
-    if popup is not None:
-        return popup
+def activate():
+    """Qt's offscreen platform leaves a hidden popup "active"; X11 and Wayland hand activation back to
+    the window underneath, which is what this does."""
+    if QApplication.activePopupWidget() is not None:
+        return
     active = QApplication.activeWindow()
     if active is None or not active.isVisible():
-        # Qt's offscreen platform leaves a hidden popup "active"; X11 and Wayland hand activation back
-        # to the window underneath, which is what this does.
         main = next(t for t in QApplication.topLevelWidgets() if isinstance(t, MainWindow) and t.isVisible())
         main.activateWindow()
         QApplication.processEvents()
-    return QApplication.focusWidget()
+
+
+def target():
+    activate()
+    return QApplication.activePopupWidget() or QApplication.focusWidget()
+
+
+def focus(widget):
+    """Give `widget` the keyboard, as a click on it would."""
+    activate()
+    widget.setFocus(Qt.FocusReason.MouseFocusReason)
 
 
 def press(k, mods=NO):
@@ -128,7 +137,7 @@ def test_return_from_the_field_and_from_the_grid(qtbot, window, demo):
     open_and_wait(qtbot, w, demo)
     store, fp = reader(demo)
     first = w.current()
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     type_text("hex nut")                      # the first letter, typed on the grid, starts the label
     assert QApplication.focusWidget() is w.group_page.label and w.group_page.label.text() == "hex nut"
     press(Qt.Key.Key_Return)
@@ -139,7 +148,7 @@ def test_return_from_the_field_and_from_the_grid(qtbot, window, demo):
     # From the grid, with the label already in the field (as a suggestion would be): keypad Enter.
     second = w.current()
     w.group_page.label.setText("washer")
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     press(Qt.Key.Key_Enter, Qt.KeyboardModifier.KeypadModifier)
     settle(qtbot, w)
     assert {label_of(store, fp, m) for m in second.members} == {("labelled", "washer")}
@@ -152,14 +161,14 @@ def test_return_with_the_completion_popup_open(qtbot, window, demo):
     open_and_wait(qtbot, w, demo)
     store, fp = reader(demo)
     field = w.group_page.label
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     type_text("spring")
     press(Qt.Key.Key_Return)
     settle(qtbot, w)
 
     # "pri" opens the popup on "spring"; Down highlights it; Return takes it and accepts.
     g = w.current()
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     type_text("pri")
     qtbot.waitUntil(field.popup_open, timeout=5_000)
     press(Qt.Key.Key_Down)
@@ -170,7 +179,7 @@ def test_return_with_the_completion_popup_open(qtbot, window, demo):
 
     # The next key after an accept is not swallowed by a popup: all of "nut" reaches the field.
     g = w.current()
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     type_text("sp")
     qtbot.waitUntil(field.popup_open, timeout=5_000)
     press(Qt.Key.Key_Down)
@@ -200,14 +209,14 @@ def test_a_near_duplicate_label_asks_once(qtbot, window, demo):
     w = window
     open_and_wait(qtbot, w, demo)
     store, fp = reader(demo)
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     type_text("resistor")
     press(Qt.Key.Key_Return)
     settle(qtbot, w)
 
     # "res" with "resistor" existing: the question offers it; choosing it labels under "resistor".
     g = w.current()
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     type_text("res")
     answered = answer_next_question(lambda t: "“resistor”" in t and t.startswith("Use"))
     press(Qt.Key.Key_Return)
@@ -216,7 +225,7 @@ def test_a_near_duplicate_label_asks_once(qtbot, window, demo):
 
     # "Resistor" (case only): keeping the new spelling is allowed, and it is asked exactly once.
     g = w.current()
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     type_text("Resistor")
     answered = answer_next_question(lambda t: t.startswith("Keep"))
     press(Qt.Key.Key_Return)
@@ -233,7 +242,7 @@ def test_review_relabel_does_not_repeat(qtbot, window, demo):
     store, fp = reader(demo)
     g = w.current()
     w.group_page.label.setText("gear")
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     press(Qt.Key.Key_Return)
     settle(qtbot, w)
     press(Qt.Key.Key_R, CTRL)
@@ -251,7 +260,7 @@ def test_review_relabel_does_not_repeat(qtbot, window, demo):
     n = len(store.decisions())
     nxt = w.review_page.selected_paths()
     assert nxt and first not in nxt                  # ... while the next photo is selected
-    w.review_page.new_label.setFocus()
+    focus(w.review_page.new_label)
     press(Qt.Key.Key_Return)                         # a second Return relabels nothing
     settle(qtbot, w)
     assert len(store.decisions()) == n
@@ -266,7 +275,7 @@ def test_keys_typed_during_a_decision_wait_for_the_next_group(qtbot, window, dem
     open_and_wait(qtbot, w, demo)
     store, fp = reader(demo)
     first = w.current()
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     type_text("washer")
     press(Qt.Key.Key_Return)
     assert w.pending is not None or w.current().id != first.id
@@ -287,7 +296,7 @@ def test_words_and_figures(qtbot, window, demo):
     g = w.current()
     grid = w.group_page.grid
     # Set one photo aside: the singular is right, and no question is asked for taken-out photos.
-    grid.setFocus()
+    focus(grid)
     grid.setCurrentIndex(w.group_model.index(0))
     press(Qt.Key.Key_Space)
     press(Qt.Key.Key_A, CTRL | Qt.KeyboardModifier.ShiftModifier)
@@ -312,7 +321,7 @@ def test_words_and_figures(qtbot, window, demo):
     # Undoing a split says how many photos came back.
     while not w.current().splittable:
         w.group_page.label.setText("filler")
-        grid.setFocus()
+        focus(grid)
         press(Qt.Key.Key_Return)
         settle(qtbot, w)
     whole = w.current()
@@ -352,7 +361,7 @@ def test_closing_the_folder_waits_for_a_running_job(qtbot, window, demo):
 
     project.propose = slow_propose
     w.group_page.label.setText("washer")
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     press(Qt.Key.Key_Return)
     assert started.wait(10)
     t0 = time.monotonic()
@@ -372,7 +381,7 @@ def test_the_export_dialog_stays_until_its_worker_has_ended(qtbot, window, demo,
     w = window
     open_and_wait(qtbot, w, demo)
     w.group_page.label.setText("washer")
-    w.group_page.grid.setFocus()
+    focus(w.group_page.grid)
     press(Qt.Key.Key_Return)
     settle(qtbot, w)
     release = threading.Event()
@@ -433,19 +442,25 @@ class Annotator:
         self.look()
 
     def move_to(self, row):
+        """Arrow keys to member `row`, following the layout on screen (rows, as drawn)."""
         grid = self.w.group_page.grid
+        index = grid.model().index
         for _ in range(400):
             cur = grid.currentIndex().row()
             if cur == row:
                 return
-            here = grid.visualRect(grid.model().index(cur))
-            there = grid.visualRect(grid.model().index(row))
+            here, there = grid.visualRect(index(cur)), grid.visualRect(index(row))
             if there.top() > here.bottom():
                 self.key(Qt.Key.Key_Down)
+                if grid.currentIndex().row() == cur:   # the row below is shorter: step left first
+                    self.key(Qt.Key.Key_Left)
             elif there.bottom() < here.top():
                 self.key(Qt.Key.Key_Up)
             else:
-                self.key(Qt.Key.Key_Right if row > cur else Qt.Key.Key_Left)
+                self.key(Qt.Key.Key_Right if there.left() > here.left() else Qt.Key.Key_Left)
+            if grid.currentIndex().row() == cur:
+                raise AssertionError(f"the arrow keys do not move from member {cur} towards {row} "
+                                     f"({here.getRect()} -> {there.getRect()}; keys went to {target()}, held {len(self.w.held)})")
         raise AssertionError(f"the keyboard cannot reach member {row}")
 
     def sweep(self):
@@ -466,7 +481,7 @@ class Annotator:
         members = list(w.group_model.paths)
         assert members == g.members
         self.seen = set()
-        w.group_page.grid.setFocus()
+        focus(w.group_page.grid)
         self.look()
         classes = [self.truth[m] for m in members]
         counts = Counter(classes)
@@ -490,7 +505,7 @@ class Annotator:
         self.sweep()
         field = w.group_page.label
         if field.text() != m:
-            w.group_page.grid.setFocus()
+            focus(w.group_page.grid)
             type_text(m)                     # the first letter on the grid starts the label
             assert field.text() == m, (field.text(), m)
             if m not in self.used and g.suggested_label != m:
