@@ -405,6 +405,8 @@ class MainWindow(QMainWindow):
         if self.pending is not None:
             (where or self.group_page).say("Still applying the last decision: click again once it is shown.",
                                             problem=True)
+        elif self.job is not None:
+            (where or self.group_page).say(f"Wait for {self.job.name} to finish first.", problem=True)
         return True
 
     def _act(self, name: str, call: Callable | None, done: Callable[[View], None] | None = None,
