@@ -44,7 +44,8 @@ MAX_RECENT = 8
 MAX_HELD_KEYS = 200    # type-ahead while a decision is in flight; more than this is refused
 _ENGINE_ERRORS = (ProjectError, StoreError, OSError, ValueError)
 _KEY_EVENTS = (QEvent.Type.KeyPress, QEvent.Type.KeyRelease, QEvent.Type.ShortcutOverride)
-_MOUSE_EVENTS = (QEvent.Type.MouseButtonPress, QEvent.Type.MouseButtonRelease, QEvent.Type.MouseButtonDblClick)
+# Presses only: a release that ends a drag begun before (a splitter, a scroll bar) must still arrive.
+_MOUSE_EVENTS = (QEvent.Type.MouseButtonPress, QEvent.Type.MouseButtonDblClick)
 
 
 def relearning_available() -> bool:
@@ -469,6 +470,9 @@ class MainWindow(QMainWindow):
         if etype == QEvent.Type.KeyPress:
             if len(self.held) < MAX_HELD_KEYS:
                 self.held.append((event.key(), event.modifiers(), event.text(), event.isAutoRepeat()))
+            else:
+                self.group_page.say(f"Typed too far ahead: keys after the {MAX_HELD_KEYS}th were dropped.",
+                                    problem=True)
             return True
         if etype == QEvent.Type.KeyRelease:
             return True

@@ -384,10 +384,11 @@ def test_the_export_dialog_stays_until_its_worker_has_ended(qtbot, window, demo,
     focus(w.group_page.grid)
     press(Qt.Key.Key_Return)
     settle(qtbot, w)
-    release = threading.Event()
+    started, release = threading.Event(), threading.Event()
     original = w.project.export_csv
 
     def slow_csv(path):
+        started.set()
         release.wait(5)
         return original(path)
 
@@ -396,7 +397,7 @@ def test_the_export_dialog_stays_until_its_worker_has_ended(qtbot, window, demo,
     dlg = w.last_export
     dlg.destination.setText(str(tmp_path / "out"))
     dlg.run.click()
-    qtbot.waitUntil(dlg.running, timeout=5_000)
+    assert started.wait(10)                         # the worker is writing the CSV now
     dlg.reject()
     qtbot.wait(100)
     assert dlg.isVisible() and dlg.running()        # still there while its worker runs
