@@ -2,9 +2,9 @@
 the user asked for; the window turns that into engine calls."""
 from __future__ import annotations
 
-from PySide6.QtCore import QEvent, QStringListModel, Qt, Signal
-from PySide6.QtGui import QAction
-from PySide6.QtWidgets import (QCompleter, QFrame, QHBoxLayout, QLabel, QLineEdit, QListWidget,
+from PySide6.QtCore import QEvent, QPointF, QStringListModel, Qt, Signal
+from PySide6.QtGui import QAction, QMouseEvent
+from PySide6.QtWidgets import (QApplication, QCompleter, QFrame, QHBoxLayout, QLabel, QLineEdit, QListWidget,
                                QListWidgetItem, QPushButton, QToolButton, QVBoxLayout, QWidget,
                                QAbstractItemView, QSizePolicy)
 
@@ -69,6 +69,26 @@ class LabelField(QLineEdit):
         comp.setFilterMode(Qt.MatchFlag.MatchContains)
         self.setCompleter(comp)
         self.setClearButtonEnabled(True)
+        comp.popup().installEventFilter(self)  # after the completer's own filter, so it runs first
+
+    def eventFilter(self, obj, event):
+        """A click outside the open completion list closes it and still lands where it was aimed (the
+        list alone would swallow it: "type a label, click Accept" would not accept)."""
+        popup = self.completer().popup()
+        if obj is popup and event.type() == QEvent.Type.MouseButtonPress \
+                and not popup.rect().contains(event.position().toPoint()):
+            at = event.globalPosition().toPoint()
+            popup.hide()
+            under = QApplication.widgetAt(at)
+            if under is not None:
+                # The whole click: the window system sends the release to the popup's window, now hidden.
+                local = QPointF(under.mapFromGlobal(at))
+                for kind, buttons in ((QEvent.Type.MouseButtonPress, event.buttons()),
+                                      (QEvent.Type.MouseButtonRelease, Qt.MouseButton.NoButton)):
+                    QApplication.sendEvent(under, QMouseEvent(kind, local, QPointF(at), event.button(), buttons,
+                                                              event.modifiers()))
+            return True
+        return super().eventFilter(obj, event)
 
     def set_names(self, names) -> None:
         names = sorted(names)

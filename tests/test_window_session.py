@@ -13,6 +13,8 @@ import os
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")  # before any Qt import
 
 import shutil
+import subprocess
+import sys
 import time
 from collections import Counter
 from pathlib import Path
@@ -202,6 +204,16 @@ def test_return_with_the_completion_popup_open(qtbot, window, demo):
     QTest.mouseClick(accept_button, Qt.MouseButton.LeftButton)
     settle(qtbot, w)
     assert {label_of(store, fp, m) for m in g.members} == {("labelled", "gear")}
+
+    # "Type a label, click Accept" with the completion list still open: the click is not swallowed.
+    g = w.current()
+    focus(w.group_page.grid)
+    type_text("pri")                                    # lists "spring"; not its beginning, so no question
+    qtbot.waitUntil(field.popup_open, timeout=5_000)
+    QTest.mouseClick(accept_button, Qt.MouseButton.LeftButton)
+    settle(qtbot, w)
+    assert {label_of(store, fp, m) for m in g.members} == {("labelled", "pri")}
+    assert not field.popup_open()
     store.close()
 
 
@@ -404,6 +416,30 @@ def test_the_export_dialog_stays_until_its_worker_has_ended(qtbot, window, demo,
     release.set()
     qtbot.waitUntil(lambda: not dlg.isVisible(), timeout=10_000)
     assert not dlg.running()
+
+
+# -- a real X server -----------------------------------------------------------------------------
+@pytest.mark.skipif(not (shutil.which("xvfb-run") and shutil.which("xdotool")), reason="needs Xvfb and xdotool")
+def test_under_a_real_x_server_keys_and_clicks_are_not_swallowed(demo, tmp_path):
+    """Under X the completion list takes the keyboard and the mouse while it is open, which offscreen
+    Qt does not imitate: typing a label that lists an existing one, then Return or a click on Accept,
+    must accept, and the next letters must all reach the field. xdotool types and clicks."""
+    steps = ["type:washer", "key:Return",                       # a new label
+             "type:sh", "key:Down", "key:Return",               # lists "washer": Down + Return takes it
+             "type:nut", "key:KP_Enter",                        # all three letters reach the field
+             "type:as", "click:accept",                         # list open, click Accept: accepted "as"
+             "type:bolt", "click:accept"]
+    env = dict(os.environ, QT_QPA_PLATFORM="xcb", PYTHONPATH=str(Path(__file__).resolve().parent.parent))
+    run = subprocess.run(["xvfb-run", "-a", "-s", "-screen 0 1400x900x24", sys.executable, "-m",
+                          "tests.xvfb_drive", str(demo), str(tmp_path / "settings.ini"), *steps],
+                         capture_output=True, text=True, timeout=300, env=env,
+                         cwd=Path(__file__).resolve().parent.parent)
+    assert run.returncode == 0, run.stderr[-2000:]
+    assert run.stdout.count("step ") == len(steps), run.stdout + run.stderr[-2000:]
+    store, fp = reader(demo)
+    accepts = [(d["label"], len(d["photos"])) for d in store.decisions() if d["kind"] == "accept"]
+    assert [label for label, _ in accepts] == ["washer", "washer", "nut", "as", "bolt"], run.stdout
+    store.close()
 
 
 # -- the simulated annotator on 2,000 Fashion-MNIST photos ------------------------------------
