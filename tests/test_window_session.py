@@ -579,6 +579,7 @@ class Annotator:
         return True
 
 
+@pytest.mark.slow   # in the default run: about a minute of scanning, then ~15 s of session
 def test_a_session_of_300_actions_on_2000_fashion_photos(qtbot, tmp_path, fashion):
     folder, truth = fashion
     w = make_window(qtbot, tmp_path)
