@@ -6,10 +6,11 @@ Every engine call runs on the one engine thread (`app.jobs`), never on the GUI t
 proposals and the status, and hands back a `View`; the GUI thread only applies views. The GUI thread
 never touches `Project`, so the store and the engine's caches are used from one thread at a time.
 
-While a decision is in flight, keys typed in the window are held and delivered, in order, once its
-result is on screen (type-ahead: "shirt Return trouser Return" labels two groups, the second only after
-it was shown). Mouse clicks meanwhile are refused with a message, since the user clicked on what was
-still on screen.
+While a decision is in flight (tens of milliseconds), keys typed in the window are held and delivered,
+in order, once its result is on screen: letters, arrows and Space arrive where they would have, so no
+typing is lost. A key that would decide (Return, a decision's shortcut) is not replayed but refused with
+a message: it was pressed before the group it would decide on was shown, so nothing is decided on a
+group nobody has seen. Mouse clicks meanwhile are refused with a message for the same reason.
 """
 from __future__ import annotations
 
@@ -486,27 +487,46 @@ class MainWindow(QMainWindow):
     def _deliver_held(self) -> None:
         """Deliver the held keys as a window system does: ShortcutOverride to the focus widget (or the
         open popup), then the window's shortcut if nobody claimed the key, else the key press itself.
-        Stops when a key starts another decision; the rest waits for that one."""
-        while self.held and self.pending is None:
+        Letters, arrows and Space arrive; a key that would decide (Return, or a decision's shortcut) is
+        refused, since it was pressed before the group it would decide on was on screen."""
+        refused = None
+        while self.held:
             key, mods, text, repeat = self.held.pop(0)
+            if self._decides(key, mods):
+                refused = refused or QKeySequence(QKeyCombination(mods, Qt.Key(key))).toString(
+                    QKeySequence.SequenceFormat.NativeText)
+                continue
             target = QApplication.activePopupWidget() or QApplication.focusWidget() or self
             over = QKeyEvent(QEvent.Type.ShortcutOverride, key, mods, text, repeat)
             over.setAccepted(False)
             QApplication.sendEvent(target, over)
-            if not over.isAccepted() and self._trigger_shortcut(key, mods):
+            if not over.isAccepted() and self._shortcut(key, mods) is not None:
+                self._shortcut(key, mods).trigger()
                 continue
             QApplication.sendEvent(target, QKeyEvent(QEvent.Type.KeyPress, key, mods, text, repeat))
             QApplication.sendEvent(target, QKeyEvent(QEvent.Type.KeyRelease, key, mods, text, repeat))
+        if refused:
+            where = self.review_page if self.stack.currentWidget() is self.review_page else self.group_page
+            where.say(f"{refused} was pressed before this was on screen, so it decided nothing: "
+                      "press it again to apply it here.", problem=True)
 
-    def _trigger_shortcut(self, key, mods) -> bool:
+    _DECIDING = ("accept", "split", "later", "aside", "undo")
+
+    def _decides(self, key, mods) -> bool:
+        plain = mods & ~Qt.KeyboardModifier.KeypadModifier
+        if key in (Qt.Key.Key_Return, Qt.Key.Key_Enter) and plain == Qt.KeyboardModifier.NoModifier:
+            return True  # accept, or relabel in the review page's field
+        action = self._shortcut(key, mods)
+        return action is not None and any(action is self.actions[k] for k in self._DECIDING)
+
+    def _shortcut(self, key, mods) -> QAction | None:
         for m in (mods, mods & ~Qt.KeyboardModifier.KeypadModifier):  # as Qt's shortcut map tries them
             seq = QKeySequence(QKeyCombination(m, Qt.Key(key)))
             for a in self.actions.values():
                 if a.isEnabled() and a.isVisible() and any(s.matches(seq) == QKeySequence.SequenceMatch.ExactMatch
                                                            for s in a.shortcuts()):
-                    a.trigger()
-                    return True
-        return False
+                    return a
+        return None
 
     def _apply(self, view: View, focus_grid: bool = False) -> None:
         """Show a view: the current group and what follows, the figures, the review page's photos."""
