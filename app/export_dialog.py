@@ -151,6 +151,8 @@ class ExportDialog(QDialog):
             self.destination.setText(d)
 
     def start(self) -> Job | None:
+        if self.running():
+            return None
         if not (self.csv.isChecked() or self.coco.isChecked() or self.folders.isChecked()):
             self.report.setText("⚠  choose at least one thing to write")
             return None
@@ -173,19 +175,33 @@ class ExportDialog(QDialog):
 
     def _finished(self, written: dict) -> None:
         self.written = written
-        self.progress.hide()
-        self.run.setEnabled(True)
         self.report.setText("Written:\n" + export_report(written))
+        self._ended()
         if self.on_written:
             self.on_written(written)
 
     def _failed(self, message: str) -> None:
-        self.progress.hide()
-        self.run.setEnabled(True)
         self.report.setText(f"⚠  {message}\nNothing else was changed.")
+        self._ended()
+
+    def running(self) -> bool:
+        return self.job is not None and not self.job.wait(0)
 
     def reject(self) -> None:
-        if self.job is not None and not self.job.wait(0):
-            self.job.cancel()
-            self.job.wait(30)
-        super().reject()
+        """Close, or (while writing) stop after the current step and close once the worker has ended:
+        the dialog never goes away with its worker still running."""
+        if not self.running():
+            super().reject()
+            return
+        self.job.cancel()
+        self._closing = True
+        self.run.setEnabled(False)
+        self.progress.cancel_button.setEnabled(False)
+        self.report.setText("Stopping after the current step…")
+
+    def _ended(self) -> None:
+        self.progress.hide()
+        self.run.setEnabled(True)
+        if getattr(self, "_closing", False):
+            self._closing = False
+            super().reject()

@@ -1,7 +1,9 @@
-"""Long engine calls (scan, relearn, export, the first proposals) off the GUI thread.
+"""Every engine call off the GUI thread: scans, relearning, exports, proposals and each decision.
 
-A `Job` runs `work(progress, cancel)` on a QThreadPool thread; the engine's plain progress callback
-becomes a queued Qt signal, throttled so a fast loop cannot flood the GUI thread.
+A `Job` runs `work(progress, cancel)` on the one engine thread; the engine's plain progress callback
+becomes a queued Qt signal, throttled so a fast loop cannot flood the GUI thread. Jobs run one at a
+time, in the order started (they share one Project). `cancel_all` + `wait_all` end them all, so no job
+outlives the folder it works on.
 """
 from __future__ import annotations
 
@@ -18,6 +20,9 @@ _EMIT_EVERY = 0.05  # seconds between progress signals; the bar cannot show more
 # One thread for engine jobs: they share one Project, so they run one at a time.
 _POOL = QThreadPool()
 _POOL.setMaxThreadCount(1)
+_POOL.setExpiryTimeout(-1)   # keep the thread: a decision every second should not start one each time
+_LIVE: set["Job"] = set()    # started and not ended
+_LIVE_LOCK = threading.Lock()
 
 
 class Job(QObject):
@@ -34,7 +39,13 @@ class Job(QObject):
         self._last = 0.0
 
     def start(self) -> "Job":
+        """Queue the work. Connect to finished/failed before: the job deletes itself once it has
+        delivered them."""
         job = self
+        self.finished.connect(self.deleteLater)
+        self.failed.connect(self.deleteLater)
+        with _LIVE_LOCK:
+            _LIVE.add(self)
 
         class _Run(QRunnable):
             def run(self):  # noqa: D401 - Qt entry point
@@ -66,11 +77,16 @@ class Job(QObject):
             message = str(exc) or type(exc).__name__
             if not _is_expected(exc):
                 traceback.print_exc()
-            self._done.set()
+            self._end()
             self.failed.emit(message)
             return
-        self._done.set()
+        self._end()
         self.finished.emit(result)
+
+    def _end(self) -> None:
+        with _LIVE_LOCK:
+            _LIVE.discard(self)
+        self._done.set()
 
 
 def _is_expected(exc: Exception) -> bool:
@@ -81,8 +97,23 @@ def _is_expected(exc: Exception) -> bool:
     return isinstance(exc, (ProjectError, StoreError, ExportError, OSError, ValueError))
 
 
-def wait_all(seconds: float = 30.0) -> bool:
-    return _POOL.waitForDone(int(seconds * 1000))
+def running() -> bool:
+    """Whether any job is queued or running."""
+    with _LIVE_LOCK:
+        return bool(_LIVE)
+
+
+def cancel_all() -> None:
+    """Ask every queued or running job to stop (each stops at its next cancellation point)."""
+    with _LIVE_LOCK:
+        live = list(_LIVE)
+    for job in live:
+        job.cancel()
+
+
+def wait_all(seconds: float | None = None) -> bool:
+    """Wait until every job has ended (None: however long that takes). True when none is left."""
+    return _POOL.waitForDone(-1 if seconds is None else int(seconds * 1000))
 
 
 class JobProgress(QWidget):

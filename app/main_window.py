@@ -1,32 +1,52 @@
 """The Kinfold window: pages in a stack, the actions (menus, buttons, keys) and the engine calls they
-make. Every decision goes straight to `core.project.Project`; long calls run as `Job`s."""
+make.
+
+Every engine call runs on the one engine thread (`app.jobs`), never on the GUI thread: a decision
+(accept, split, later, set aside, undo, relabel, remove) is a job that records it, asks for the next
+proposals and the status, and hands back a `View`; the GUI thread only applies views. The GUI thread
+never touches `Project`, so the store and the engine's caches are used from one thread at a time.
+
+While a decision is in flight (tens of milliseconds), keys typed in the window are held and delivered,
+in order, once its result is on screen: letters, arrows and Space arrive where they would have, so no
+typing is lost. A key that would decide (Return, a decision's shortcut) is not replayed but refused with
+a message: it was pressed before the group it would decide on was shown, so nothing is decided on a
+group nobody has seen. Mouse clicks meanwhile are refused with a message for the same reason.
+"""
 from __future__ import annotations
 
+import dataclasses
 import importlib
+from dataclasses import dataclass
 from pathlib import Path
+from typing import Any, Callable
 
-from PySide6.QtCore import QSettings, Qt, QTimer, Signal
-from PySide6.QtGui import QAction, QKeySequence
-from PySide6.QtWidgets import (QFileDialog, QFrame, QMainWindow, QSplitter, QStackedWidget, QVBoxLayout,
-                               QListWidgetItem, QWidget)
+from PySide6.QtCore import QEvent, QItemSelectionModel, QKeyCombination, QSettings, Qt, QTimer, Signal
+from PySide6.QtGui import QAction, QKeyEvent, QKeySequence
+from PySide6.QtWidgets import (QApplication, QFileDialog, QFrame, QMainWindow, QMessageBox, QSplitter,
+                               QStackedWidget, QVBoxLayout, QListWidgetItem, QWidget)
 
-from app import theme
+from app import jobs, theme
 from app.export_dialog import ExportDialog
 from app.help_overlay import GRID_KEYS, HelpOverlay
-from app.history import labelled_curve
+from app.history import Curve
 from app.jobs import Job
 from app.pages import GroupPage, ReviewPage, ScanPage, StartPage, action_button, scan_summary
 from app.photo_grid import PhotoModel
 from app.preview import PreviewDialog
-from app.side_panel import SidePanel
+from app.side_panel import SidePanel, photos
 from app.thumbnails import Thumbnails
+from core.label_names import near_duplicates, shown_suggestion
 from core.project import Project, ProjectError
 from core.proposals import MIN_SPLIT
 from core.store import StoreError
 
 LOOKAHEAD = 6          # groups asked for at a time: the current one and what the side panel lists
 MAX_RECENT = 8
+MAX_HELD_KEYS = 200    # type-ahead while a decision is in flight; more than this is refused
 _ENGINE_ERRORS = (ProjectError, StoreError, OSError, ValueError)
+_KEY_EVENTS = (QEvent.Type.KeyPress, QEvent.Type.KeyRelease, QEvent.Type.ShortcutOverride)
+# Presses only: a release that ends a drag begun before (a splitter, a scroll bar) must still arrive.
+_MOUSE_EVENTS = (QEvent.Type.MouseButtonPress, QEvent.Type.MouseButtonDblClick)
 
 
 def relearning_available() -> bool:
@@ -52,6 +72,47 @@ def relearn_summary(result: dict) -> str:
     return text + "."
 
 
+@dataclass
+class View:
+    """What the engine thread hands back after an action: the action's own result (or its one-line
+    refusal), the next proposals, the status, and what the review page shows."""
+    result: Any = None
+    error: str | None = None
+    groups: list = dataclasses.field(default_factory=list)
+    status: Any = None
+    review: tuple[str, list] | None = None       # (label, [(path, typicality)])
+    curve: Curve | None = None                    # only when the log was replayed (a folder opened)
+
+
+def engine_view(project: Project, call: Callable | None = None, review_label: str | None = None,
+                replay: bool = False) -> View:
+    """Runs on the engine thread: the action, then everything the window shows next."""
+    view = View()
+    if call is not None:
+        try:
+            view.result = call(project)
+        except _ENGINE_ERRORS as exc:
+            view.error = str(exc)
+    view.groups = project.propose(limit=LOOKAHEAD)
+    view.status = project.status()
+    if review_label is not None:
+        label = review_label if review_label in view.status.by_label else next(iter(view.status.by_label), None)
+        if label is not None:
+            view.review = (label, project.review(label))
+    if replay:
+        view.curve = Curve.from_decisions(project.store.decisions())
+    return view
+
+
+def shown(g):
+    """The proposal as the window shows it: a suggestion it should not show is dropped (never typed
+    into the label field either)."""
+    if g is None:
+        return None
+    label = shown_suggestion(g.kind, g.suggested_label, g.confidence)
+    return g if label == g.suggested_label else dataclasses.replace(g, suggested_label=None, confidence=None)
+
+
 class MainWindow(QMainWindow):
     groups_shown = Signal()      # a new current group (or the empty state) is on screen
     job_ended = Signal(str)      # a background job finished or failed; carries its name
@@ -61,8 +122,14 @@ class MainWindow(QMainWindow):
         self.settings = settings or QSettings("Kinfold", "Kinfold")
         self.project: Project | None = None
         self.groups = []
-        self.job: Job | None = None
+        self.status = None
+        self.curve = Curve()
+        self.job: Job | None = None          # a long job with a progress bar (scan, relearn, first proposals)
+        self.pending: Job | None = None      # the decision in flight
+        self.held: list[tuple] = []          # keys typed while it is in flight
         self.last_scan = None
+        self.last_preview = None
+        self.last_export = None
         self.relearn_seconds: float | None = None   # time budget handed to the engine (None: its default)
         self.setWindowTitle("Kinfold")
         self.setStyleSheet(theme.STYLE)
@@ -90,8 +157,7 @@ class MainWindow(QMainWindow):
         self.review_page = ReviewPage(self.review_model)
         self.stack = QStackedWidget()
         for page in (self.start, self.scan_page, self.work, self.review_page):
-            wrap = page
-            self.stack.addWidget(wrap)
+            self.stack.addWidget(page)
         container = QWidget()
         lay = QVBoxLayout(container)
         lay.setContentsMargins(14, 10, 14, 10)
@@ -102,13 +168,15 @@ class MainWindow(QMainWindow):
 
         self.start.choose_requested.connect(self.choose_folder)
         self.start.open_requested.connect(self.open_folder)
-        self.group_page.grid.typed.connect(self._start_label)
+        self.group_page.label.accept_requested.connect(self.accept)
+        self.group_page.grid.typed.connect(lambda t: self._start_label(self.group_page.label, t))
         self.group_page.grid.opened.connect(self.preview)
         self.review_page.grid.opened.connect(self.preview)
-        self.review_page.grid.typed.connect(lambda t: (self.review_page.new_label.setFocus(),
-                                                       self.review_page.new_label.setText(t)))
+        self.review_page.grid.typed.connect(lambda t: self._start_label(self.review_page.new_label, t))
         self.review_page.labels.currentItemChanged.connect(lambda it, _: it and self._show_review(
             it.data(Qt.ItemDataRole.UserRole)))
+        # The review field's Return arrives as accept_requested (LabelField keeps Return to itself).
+        self.review_page.new_label.accept_requested.connect(self.relabel_selected)
         self.review_page.relabel.clicked.connect(self.relabel_selected)
         self.review_page.remove.clicked.connect(self.remove_selected)
         self.review_page.back.connect(self.back_to_groups)
@@ -124,7 +192,8 @@ class MainWindow(QMainWindow):
             ("toggle", "Take out / put back", ["Space"], "Group", self.toggle_member),
             ("split", "Split", ["Ctrl+D"], "Group", self.split),
             ("later", "Later", ["Ctrl+L"], "Group", self.later),
-            ("aside", "Set aside", ["Ctrl+N"], "Group", self.set_aside),
+            # Not Ctrl+N: most people know it as "new"; setting aside a whole group also asks first.
+            ("aside", "Set aside", ["Ctrl+Shift+A"], "Group", self.set_aside),
             ("undo", "Undo", ["Ctrl+Z"], "Group", self.undo),
             ("preview", "Preview", ["Ctrl+P"], "Views", self.preview),
             ("review", "Review labels", ["Ctrl+R"], "Views", self.open_review),
@@ -140,7 +209,8 @@ class MainWindow(QMainWindow):
             "toggle": "Take the photo under the keyboard outline out of the group, or put it back",
             "split": f"Break the group into two parts that are each more alike (groups of {MIN_SPLIT} or more)",
             "later": "Leave this group; its photos come back after everything else",
-            "aside": "Mark the taken-out photos — or, if none, the whole group — as belonging to no class",
+            "aside": "Mark the taken-out photos — or, if none, the whole group (asks first) — as belonging "
+                     "to no class",
             "undo": "Reverse the last decision (repeat to go further back)",
             "preview": "Show the photo full size with its nearest photos (or double-click it)",
             "relearn": "Relearn from the decisions so far, then propose again",
@@ -189,13 +259,9 @@ class MainWindow(QMainWindow):
         self.actions["close"].setEnabled(self.project is not None)
         self.actions["open"].setEnabled(self.job is None)
 
-    def _engine(self, call, *args, where=None):
-        """Run one engine call; its refusal is shown where the user is looking, never raised."""
-        try:
-            return call(*args), None
-        except _ENGINE_ERRORS as exc:
-            (where or self.group_page).say(str(exc), problem=True)
-            return None, exc
+    def idle(self) -> bool:
+        """No job and no decision in flight, no key held back."""
+        return self.job is None and self.pending is None and not self.held
 
     # -- folders ------------------------------------------------------------------------------
     def recent_folders(self) -> list[str]:
@@ -215,7 +281,7 @@ class MainWindow(QMainWindow):
             self.open_folder(folder)
 
     def open_folder(self, folder: str) -> bool:
-        if self.job is not None:
+        if self.job is not None or self.pending is not None:
             self.statusBar().showMessage("wait for the running task to finish first")
             return False
         self.close_folder()
@@ -229,7 +295,7 @@ class MainWindow(QMainWindow):
         self._remember(self.project.folder)
         self.thumbs.set_folder(self.project.folder)
         self.setWindowTitle(f"Kinfold — {self.project.folder.name}")
-        self.statusBar().showMessage(str(self.project.folder))
+        self.statusBar().showMessage(self.project.folder.name)
         self.actions["relearn"].setVisible(relearning_available())
         self.scan_page.title.setText(f"Reading {self.project.folder.name}")
         self.stack.setCurrentWidget(self.scan_page)
@@ -237,15 +303,29 @@ class MainWindow(QMainWindow):
         return True
 
     def close_folder(self) -> None:
-        if self.job is not None:
-            self.job.cancel()
-            self.job.wait(120)
-            self.job = None
+        """Cancel every job and wait until each has ended, however long its last step takes; only then
+        is the store closed (a job never runs against a closed store)."""
+        if jobs.running():
+            self.statusBar().showMessage("stopping the running task…")
+            QApplication.setOverrideCursor(Qt.CursorShape.WaitCursor)
+            try:
+                jobs.cancel_all()
+                jobs.wait_all()
+            finally:
+                QApplication.restoreOverrideCursor()
+        self.job = None
+        self._end_pending()
+        for dlg in (self.last_export, self.last_preview):
+            if dlg is not None:
+                dlg.done(0)
+        self.last_export = self.last_preview = None
         self.thumbs.forget_queue()
         if self.project is not None:
             self.project.close()
             self.project = None
         self.groups = []
+        self.status = None
+        self.curve = Curve()
         self.group_model.set_photos([])
         self.review_model.set_photos([])
         self.setWindowTitle("Kinfold")
@@ -292,72 +372,262 @@ class MainWindow(QMainWindow):
     def _scanned(self, report) -> None:
         self.last_scan = report
         self.side.show_skipped(report.skipped)
-        self.group_page.say(scan_summary(report))
+        note = scan_summary(report)
         self.scan_page.title.setText("Finding groups")
-        self._propose_in_background(self.scan_page.progress)
+        self._propose_in_background(self.scan_page.progress, note, replay=True)
 
-    def _propose_in_background(self, progress_widget) -> None:
-        """The first proposals after a scan or a relearn build the neighbour graph: not on the GUI thread."""
+    def _propose_in_background(self, progress_widget, note: str, replay: bool = False) -> None:
+        """The first proposals after a scan or a relearn build the neighbour graph; `note` is shown once
+        they are on screen. `replay`: read the decision log once for the chart (a folder just opened)."""
         project = self.project
 
         def work(progress, cancel):
             progress(0, 1, "finding neighbours and forming groups")
-            return project.propose(limit=LOOKAHEAD)
+            return engine_view(project, replay=replay)
 
-        def done(groups):
+        def done(view):
             self.group_page.busy.hide()
             self.stack.setCurrentWidget(self.work)
-            self._show_groups(groups)
+            if view.curve is not None:
+                self.curve = view.curve
+            self._apply(view)
+            self.group_page.say(note)
 
         self._start_job("finding groups", work, progress_widget, done, cancellable=False)
+
+    # -- decisions: one at a time on the engine thread; the GUI thread applies the result -------
+    def _busy(self, where=None) -> bool:
+        """Refuses an action while another runs (only a mouse click can get here: keys are held)."""
+        if self.pending is None and self.job is None and self.project is not None:
+            return False
+        if self.pending is not None:
+            (where or self.group_page).say("Still applying the last decision: click again once it is shown.",
+                                            problem=True)
+        elif self.job is not None:
+            (where or self.group_page).say(f"Wait for {self.job.name} to finish first.", problem=True)
+        return True
+
+    def _act(self, name: str, call: Callable | None, done: Callable[[View], None] | None = None,
+             counts: str | None = None, where=None) -> Job | None:
+        """Run `call(project)` and then fetch the next view on the engine thread. `counts`: the kind of
+        decision it records, for the chart (None: it records none)."""
+        if self._busy(where):
+            return None
+        project = self.project
+        review = self._review_label() if self.stack.currentWidget() is self.review_page else None
+        job = self.pending = Job(name, lambda progress, cancel: engine_view(project, call, review), self)
+        QApplication.instance().installEventFilter(self)
+
+        def finished(view: View) -> None:
+            if self.pending is not job:
+                return  # the folder was closed meanwhile
+            self._end_pending()
+            if view.error is None and counts is not None:
+                self.curve.add(counts, view.status.labelled)
+            self._apply(view, focus_grid=call is not None)
+            if view.error is not None:
+                (where or self.group_page).say(view.error, problem=True)
+            elif done is not None:
+                done(view)
+            self.job_ended.emit(name)
+            self._deliver_held()
+
+        def failed(message: str) -> None:
+            if self.pending is not job:
+                return
+            self._end_pending()
+            self.held.clear()  # the screen did not change: keys typed for what comes next are void
+            (where or self.group_page).say(f"{name} failed: {message}", problem=True)
+            self.job_ended.emit(name)
+
+        job.finished.connect(finished)
+        job.failed.connect(failed)
+        return job.start()
+
+    def _end_pending(self) -> None:
+        if self.pending is not None:
+            self.pending = None
+            app = QApplication.instance()
+            if app is not None:
+                app.removeEventFilter(self)
+
+    def eventFilter(self, obj, event):
+        """Installed only while a decision is in flight: holds keys, refuses clicks in this window."""
+        if self.pending is None or not isinstance(obj, QWidget):
+            return False
+        etype = event.type()
+        if etype not in _KEY_EVENTS and etype not in _MOUSE_EVENTS:
+            return False
+        win = obj.window()
+        if win is not self and not self._is_own_popup(win):
+            return False  # a dialog of its own (a question, the export) is not held
+        if etype == QEvent.Type.ShortcutOverride:
+            event.accept()       # no shortcut fires now; the key press itself comes next and is held
+            return True
+        if etype == QEvent.Type.KeyPress:
+            if len(self.held) < MAX_HELD_KEYS:
+                self.held.append((event.key(), event.modifiers(), event.text(), event.isAutoRepeat()))
+            else:
+                self.group_page.say(f"Typed too far ahead: keys after the {MAX_HELD_KEYS}th were dropped.",
+                                    problem=True)
+            return True
+        if etype == QEvent.Type.KeyRelease:
+            return True
+        if etype == QEvent.Type.MouseButtonPress:
+            self._busy()
+        return True
+
+    def _is_own_popup(self, win) -> bool:
+        return any(win is f.completer().popup() for f in (self.group_page.label, self.review_page.new_label))
+
+    def _deliver_held(self) -> None:
+        """Deliver the held keys as a window system does: ShortcutOverride to the focus widget (or the
+        open popup), then the window's shortcut if nobody claimed the key, else the key press itself.
+        Letters, arrows and Space arrive; a key that would decide (Return, or a decision's shortcut) is
+        refused, since it was pressed before the group it would decide on was on screen."""
+        refused = None
+        while self.held:
+            key, mods, text, repeat = self.held.pop(0)
+            if self._decides(key, mods):
+                refused = refused or QKeySequence(QKeyCombination(mods, Qt.Key(key))).toString(
+                    QKeySequence.SequenceFormat.NativeText)
+                continue
+            target = QApplication.activePopupWidget() or QApplication.focusWidget() or self
+            over = QKeyEvent(QEvent.Type.ShortcutOverride, key, mods, text, repeat)
+            over.setAccepted(False)
+            QApplication.sendEvent(target, over)
+            if not over.isAccepted() and self._shortcut(key, mods) is not None:
+                self._shortcut(key, mods).trigger()
+                continue
+            QApplication.sendEvent(target, QKeyEvent(QEvent.Type.KeyPress, key, mods, text, repeat))
+            QApplication.sendEvent(target, QKeyEvent(QEvent.Type.KeyRelease, key, mods, text, repeat))
+        if refused:
+            where = self.review_page if self.stack.currentWidget() is self.review_page else self.group_page
+            where.say(f"{refused} was pressed before this was on screen, so it decided nothing: "
+                      "press it again to apply it here.", problem=True)
+
+    _DECIDING = ("accept", "split", "later", "aside", "undo")
+
+    def _decides(self, key, mods) -> bool:
+        plain = mods & ~Qt.KeyboardModifier.KeypadModifier
+        if key in (Qt.Key.Key_Return, Qt.Key.Key_Enter) and plain == Qt.KeyboardModifier.NoModifier:
+            return True  # accept, or relabel in the review page's field
+        action = self._shortcut(key, mods)
+        return action is not None and any(action is self.actions[k] for k in self._DECIDING)
+
+    def _shortcut(self, key, mods) -> QAction | None:
+        for m in (mods, mods & ~Qt.KeyboardModifier.KeypadModifier):  # as Qt's shortcut map tries them
+            seq = QKeySequence(QKeyCombination(m, Qt.Key(key)))
+            for a in self.actions.values():
+                if a.isEnabled() and a.isVisible() and any(s.matches(seq) == QKeySequence.SequenceMatch.ExactMatch
+                                                           for s in a.shortcuts()):
+                    return a
+        return None
+
+    def _apply(self, view: View, focus_grid: bool = False) -> None:
+        """Show a view: the current group and what follows, the figures, the review page's photos."""
+        self.status = view.status
+        self._show_groups(view.groups, focus_grid)
+        if view.review is not None:
+            self._fill_review(*view.review)
+        elif self.stack.currentWidget() is self.review_page and not view.status.by_label:
+            self.back_to_groups()
 
     # -- the group ----------------------------------------------------------------------------
     def current(self):
         return self.groups[0] if self.groups else None
 
-    def refresh(self) -> None:
-        groups, err = self._engine(self.project.propose, LOOKAHEAD)
-        self._show_groups(groups if err is None else [])
+    def refresh(self) -> Job | None:
+        """Ask for the proposals and status again (after something changed outside the window)."""
+        return self._act("refresh", None)
 
-    def _show_groups(self, groups) -> None:
-        self.groups = list(groups)
+    def _show_groups(self, groups, focus_grid: bool = False) -> None:
+        """`focus_grid`: after a decision the keyboard goes back to the grid of the new group (the
+        label field may have had it back from a closing popup meanwhile)."""
+        self.groups = [shown(g) for g in groups]
         g = self.current()
         self.thumbs.forget_queue()
         self.group_model.set_photos(g.members if g else [])
-        self.group_page.show_group(g, 1, max(len(self.groups) - 1, 0))
-        status = self.project.status()
-        self.side.show_state(status, self.groups[1:], labelled_curve(self.project.store.decisions()))
-        self.group_page.label.set_names(status.by_label)
-        self.review_page.new_label.set_names(status.by_label)
+        more = len(self.groups) - 1
+        # LOOKAHEAD groups are asked for at a time: a full list means at least that many more follow.
+        queued = more if len(self.groups) < LOOKAHEAD else f"at least {more}"
+        self.group_page.show_group(g, 1, queued)
+        self.group_page.label.reset((g.suggested_label or "") if g else "")
+        self.side.show_state(self.status, self.groups[1:], self.curve)
+        names = list(self.status.by_label)
+        self.group_page.label.set_names(names)
+        self.review_page.new_label.set_names(names)
         if len(self.groups) > 1:  # so the next group appears without waiting for its thumbnails
             nxt = self.groups[1].members
             self.thumbs.prefetch(nxt, self.group_page.grid.side_for(len(nxt)))
         self._sync_actions()
-        if self.stack.currentWidget() is self.work and not self.group_page.label.hasFocus():
+        if self.stack.currentWidget() is self.work and (focus_grid or not self.group_page.label.hasFocus()):
             self.group_page.grid.setFocus()
         self.groups_shown.emit()
 
-    def _start_label(self, text: str) -> None:
-        self.group_page.label.setFocus()
-        self.group_page.label.setText(text)
+    @staticmethod
+    def _start_label(field, text: str) -> None:
+        """A letter typed on a grid starts the label: the field takes focus and the letter, as an edit
+        (so completion opens as if it had been typed there)."""
+        field.setFocus(Qt.FocusReason.ShortcutFocusReason)
+        field.selectAll()
+        field.insert(text)
+
+    def _settle_label(self, label: str, page) -> str | None:
+        """A new label that is an existing one in another spelling, or its first letters, asks once
+        which is meant. Returns the label to use, or None (cancelled)."""
+        names = list(self.status.by_label) if self.status else []
+        close = near_duplicates(label, names)[:3]
+        if not close:
+            return label
+        box = QMessageBox(self)
+        box.setIcon(QMessageBox.Icon.Question)
+        box.setWindowTitle("Existing label?")
+        box.setText(f"“{label}” would be a new label. Did you mean "
+                    + " or ".join(f"“{n}”" for n in close) + "?")
+        box.setInformativeText("Two spellings of one name would become two classes.")
+        use = [box.addButton(f"Use “{n}”", QMessageBox.ButtonRole.AcceptRole) for n in close]
+        keep = box.addButton(f"Keep “{label}” as a new label", QMessageBox.ButtonRole.AcceptRole)
+        cancel = box.addButton(QMessageBox.StandardButton.Cancel)
+        box.setDefaultButton(use[0])
+        box.setEscapeButton(cancel)
+        box.exec()
+        clicked = box.clickedButton()
+        if clicked in use:
+            return close[use.index(clicked)]
+        if clicked is keep:
+            return label
+        page.say("Nothing labelled: choose the label again.")
+        return None
 
     def accept(self) -> None:
-        if not self._confirm_unseen():
+        if self._busy():
             return
         g = self.current()
-        label = self.group_page.label.text().strip()
+        page = self.group_page
+        if g is None or self.stack.currentWidget() is not self.work:
+            return
+        label = " ".join(page.label.text().split())
         if not label:
-            self.group_page.say("Type a label first (or pick one from the list as you type).", problem=True)
-            self.group_page.label.setFocus()
+            page.say("Type a label first (or pick one from the list as you type).", problem=True)
+            page.label.setFocus()
+            return
+        if not self._confirm_unseen():  # photos never on screen: say how many, ask once
+            return
+        label = self._settle_label(label, page)
+        if label is None:
+            page.label.setFocus()
             return
         drop = self.group_model.taken_out()
-        _, err = self._engine(self.project.accept, g.id, label, drop)
-        if err is None:
-            kept = len(g.members) - len(drop)
-            self.group_page.say(f"Labelled {kept} photos “{label}”" +
-                                (f"; {len(drop)} taken out went back to the pool." if drop else "."))
-            self.group_page.grid.setFocus()
-            self.refresh()
+        kept = len(g.members) - len(drop)
+        page.label.close_popup()
+
+        def done(view):
+            page.say(f"Labelled {photos(kept)} “{label}”" +
+                     (f"; {len(drop)} taken out went back to the pool." if drop else "."))
+
+        page.grid.setFocus()
+        self._act("accept", lambda p: p.accept(g.id, label, drop), done, counts="accept")
 
     def _confirm_unseen(self) -> bool:
         """False while photos never on screen would be labelled and the user has not confirmed (once)."""
@@ -374,56 +644,86 @@ class MainWindow(QMainWindow):
 
     def split(self) -> None:
         g = self.current()
-        parts, err = self._engine(self.project.split, g.id)
-        if err is None:
-            self.group_page.say("Split into " + " and ".join(f"{len(p.members)}" for p in parts) + " photos.")
-            self.refresh()
+        if g is None or self._busy():
+            return
+        self._act("split", lambda p: p.split(g.id),
+                  lambda view: self.group_page.say(
+                      "Split into " + " and ".join(str(len(part.members)) for part in view.result) + " photos."),
+                  counts="split")
 
     def later(self) -> None:
-        _, err = self._engine(self.project.defer, self.current().id)
-        if err is None:
-            self.group_page.say("Left for later.")
-            self.refresh()
+        g = self.current()
+        if g is None or self._busy():
+            return
+        self._act("later", lambda p: p.defer(g.id), lambda view: self.group_page.say("Left for later."))
 
     def set_aside(self) -> None:
         g = self.current()
-        paths = self.group_model.taken_out() or list(g.members)
-        _, err = self._engine(self.project.set_aside, paths)
-        if err is None:
-            self.group_page.say(f"Set {len(paths)} photos aside as no class.")
-            self.refresh()
+        if g is None or self._busy():
+            return
+        paths = self.group_model.taken_out()
+        if not paths:
+            answer = QMessageBox.question(
+                self, "Set the whole group aside?",
+                f"No photo is taken out, so all {photos(len(g.members))} of this group would be set aside "
+                "as belonging to no class.", QMessageBox.StandardButton.Yes | QMessageBox.StandardButton.Cancel,
+                QMessageBox.StandardButton.Cancel)
+            if answer != QMessageBox.StandardButton.Yes:
+                self.group_page.say("Nothing set aside.")
+                return
+            paths = list(g.members)
+        self._act("set aside", lambda p: p.set_aside(paths),
+                  lambda view: self.group_page.say(f"Set {photos(len(paths))} aside as no class."),
+                  counts="set_aside")
 
     def undo(self) -> None:
         where = self.review_page if self.stack.currentWidget() is self.review_page else self.group_page
-        undone, err = self._engine(self.project.undo, where=where)
-        if err is not None:
+        if self._busy(where):
             return
-        where.say(f"Undid the last {undone['kind'].replace('_', ' ')} ({undone['photos']} photos)."
-                  if undone else "Nothing left to undo.")
-        self.refresh()
-        if where is self.review_page:
-            self._fill_review(self._review_label())
+
+        def done(view):
+            undone = view.result
+            if not undone:
+                where.say("Nothing left to undo.")
+            elif undone["kind"] == "split":
+                # A split changes no label; what comes back is the whole group, shown first again.
+                n = len(view.groups[0].members) if view.groups else 0
+                where.say(f"Undid the split: the whole group ({photos(n)}) is back.")
+            else:
+                where.say(f"Undid the last {undone['kind'].replace('_', ' ')} ({photos(undone['photos'])}).")
+
+        self._act("undo", lambda p: p.undo(), done, counts="undo", where=where)
 
     def preview(self, path: str | None = None) -> None:
-        if self.project is None:
+        if self.project is None or self._busy():
             return
         grid = self.review_page.grid if self.stack.currentWidget() is self.review_page else self.group_page.grid
         path = path or grid.current_path()
-        if path:
-            dlg = PreviewDialog(self.project, self.thumbs, path, self)
-            dlg.setStyleSheet(theme.STYLE)
-            dlg.open()
-            self.last_preview = dlg
+        if not path:
+            return
+        project = self.project
+
+        def fetch(p, then):
+            """The dialog's engine reads, on the engine thread; `then(info, near)` on the GUI thread."""
+            job = Job("preview", lambda progress, cancel: (project.photo_info(p), project.neighbours(p, 8)), self)
+            job.finished.connect(lambda r: then(*r))
+            job.failed.connect(lambda m: self.group_page.say(f"preview failed: {m}", problem=True))
+            job.start()
+
+        dlg = PreviewDialog(fetch, self.thumbs, path, self)
+        dlg.setStyleSheet(theme.STYLE)
+        dlg.open()
+        self.last_preview = dlg
 
     # -- review -------------------------------------------------------------------------------
     def open_review(self, label: str | None = None) -> None:
-        if self.project is None or self.job is not None:
+        if self.project is None or self._busy():
             return
-        if not self.project.status().by_label:
+        if not (self.status and self.status.by_label):
             self.group_page.say("No labels yet: accept a group first.", problem=True)
             return
         self.stack.setCurrentWidget(self.review_page)
-        self._fill_review(label or self._side_label())
+        self._fill_review(label or self._side_label() or next(iter(self.status.by_label)), None)
         self.review_page.grid.setFocus()
 
     def _side_label(self) -> str | None:
@@ -434,12 +734,10 @@ class MainWindow(QMainWindow):
         it = self.review_page.labels.currentItem()
         return it.data(Qt.ItemDataRole.UserRole) if it else None
 
-    def _fill_review(self, label: str | None) -> None:
-        by_label = self.project.status().by_label
-        if not by_label:
-            self.back_to_groups()
-            return
-        label = label if label in by_label else next(iter(by_label))
+    def _fill_review(self, label: str, rows: list | None) -> None:
+        """The label list (from the last status) with `label` current, and its photos: `rows` when the
+        engine already sent them, else asked for."""
+        by_label = self.status.by_label if self.status else {}
         lst = self.review_page.labels
         lst.blockSignals(True)
         lst.clear()
@@ -450,62 +748,80 @@ class MainWindow(QMainWindow):
             if name == label:
                 lst.setCurrentItem(it)
         lst.blockSignals(False)
-        self._show_review(label)
+        if rows is None:
+            self._show_review(label)
+        else:
+            self._review_rows(label, rows)
 
     def _show_review(self, label: str) -> None:
-        rows, err = self._engine(self.project.review, label, where=self.review_page)
-        if err is not None:
+        if self.project is None or self._busy(self.review_page):
             return
+        self._act("review", lambda p: p.review(label),
+                  lambda view: self._review_rows(label, view.result), where=self.review_page)
+
+    def _review_rows(self, label: str, rows) -> None:
         self.review_model.set_photos([p for p, _ in rows], [f"typicality {t:.2f}" for _, t in rows])
-        self.review_page.header.setText(f"“{label}”  ·  {len(rows)} photos")
-        if rows:
-            self.review_page.grid.setCurrentIndex(self.review_model.index(0))
+        self.review_page.header.setText(f"“{label}”  ·  {photos(len(rows))}")
+        if rows:  # the least typical photo, selected (the field is empty, so Return alone relabels nothing)
+            self.review_page.grid.selectionModel().setCurrentIndex(
+                self.review_model.index(0), QItemSelectionModel.SelectionFlag.ClearAndSelect)
 
     def relabel_selected(self) -> None:
-        paths = self.review_page.selected_paths()
-        new = self.review_page.new_label.text().strip()
-        if not paths or not new:
-            self.review_page.say("Select photos and type the new label first.", problem=True)
+        page = self.review_page
+        if self._busy(page):
             return
-        _, err = self._engine(self.project.label, paths, new, where=self.review_page)
-        if err is None:
-            self.review_page.say(f"Relabelled {len(paths)} photos “{new}”.")
-            self.refresh()
-            self._fill_review(self._review_label())
+        paths = page.selected_paths()
+        new = " ".join(page.new_label.text().split())
+        if not paths or not new:
+            page.say("Select photos and type the new label first.", problem=True)
+            return
+        new = self._settle_label(new, page)
+        if new is None:
+            return
+        # The field is emptied now, so a second Return cannot relabel the next photo selected.
+        page.new_label.reset()
+        page.grid.setFocus()
+        self._act("relabel", lambda p: p.label(paths, new),
+                  lambda view: page.say(f"Relabelled {photos(len(paths))} “{new}”."), counts="label", where=page)
 
     def remove_selected(self) -> None:
-        paths = self.review_page.selected_paths()
-        if not paths:
-            self.review_page.say("Select photos first.", problem=True)
+        page = self.review_page
+        if self._busy(page):
             return
-        _, err = self._engine(self.project.clear, paths, where=self.review_page)
-        if err is None:
-            self.review_page.say(f"Removed the label from {len(paths)} photos; they are back in the pool.")
-            self.refresh()
-            self._fill_review(self._review_label())
+        paths = page.selected_paths()
+        if not paths:
+            page.say("Select photos first.", problem=True)
+            return
+        self._act("remove", lambda p: p.clear(paths),
+                  lambda view: page.say(f"Removed the label from {photos(len(paths))}; back in the pool."),
+                  counts="clear", where=page)
 
     def back_to_groups(self) -> None:
         self.stack.setCurrentWidget(self.work)
-        self.refresh()
+        self.group_page.grid.setFocus()
 
     # -- relearn and export -------------------------------------------------------------------
     def relearn(self) -> None:
         if not relearning_available():
             self.actions["relearn"].setVisible(False)
             return
+        if self._busy():
+            return
         page = self.group_page
         page.busy.show()
+        page.say("Relearning…")
 
         def done(result):
-            page.say(relearn_summary(result or {}) + " Proposing again…")
-            self._propose_in_background(page.busy)
+            summary = relearn_summary(result or {})
+            page.say(summary + " Proposing again…")
+            self._propose_in_background(page.busy, summary)
 
         project, seconds = self.project, self.relearn_seconds
         self._run("relearning", lambda progress, cancel: project.relearn(progress=progress, seconds=seconds,
                                                                         cancel=cancel), page.busy, done)
 
     def export(self) -> None:
-        if self.project is None or self.job is not None:
+        if self.project is None or self._busy():
             return
         dlg = ExportDialog(self.project, self)
         dlg.setStyleSheet(theme.STYLE)

@@ -4,11 +4,11 @@ from __future__ import annotations
 
 import time
 
-from PySide6.QtCore import QStringListModel, Qt, Signal
-from PySide6.QtGui import QAction
-from PySide6.QtWidgets import (QApplication, QCompleter, QFrame, QHBoxLayout, QLabel, QLineEdit,
-                               QListWidget, QListWidgetItem, QPushButton, QToolButton, QVBoxLayout,
-                               QWidget, QAbstractItemView, QSizePolicy)
+from PySide6.QtCore import QEvent, QPointF, QStringListModel, Qt, Signal
+from PySide6.QtGui import QAction, QMouseEvent
+from PySide6.QtWidgets import (QApplication, QCompleter, QFrame, QHBoxLayout, QLabel, QLineEdit, QListWidget,
+                               QListWidgetItem, QPushButton, QToolButton, QVBoxLayout, QWidget,
+                               QAbstractItemView, QSizePolicy)
 
 from app import theme
 from app.jobs import JobProgress, _duration
@@ -54,9 +54,18 @@ def say(line: QLabel, text: str, problem: bool = False) -> None:
 
 
 class LabelField(QLineEdit):
-    """The label to accept under, completing over the labels so far. Esc hands focus back."""
+    """The label to accept under, completing over the labels so far. Esc hands focus back.
+
+    Return / keypad Enter emit `accept_requested`, handled here rather than by a window shortcut: the
+    field claims them at ShortcutOverride, so the accept does not depend on which window (the field's,
+    or the completion popup's) a window system sends the key to. With the popup open, Return first
+    takes the highlighted completion (if one is highlighted), then asks to accept. The popup is closed
+    whenever the field is reset or loses focus, so it never swallows the next key or click."""
 
     escaped = Signal()
+    accept_requested = Signal()
+
+    _RETURN = (Qt.Key.Key_Return, Qt.Key.Key_Enter)
 
     def __init__(self, parent=None):
         super().__init__(parent)
@@ -66,15 +75,76 @@ class LabelField(QLineEdit):
         comp.setFilterMode(Qt.MatchFlag.MatchContains)
         self.setCompleter(comp)
         self.setClearButtonEnabled(True)
+        comp.popup().installEventFilter(self)  # after the completer's own filter, so it runs first
+
+    def eventFilter(self, obj, event):
+        """A click outside the open completion list closes it and still lands where it was aimed (the
+        list alone would swallow it: "type a label, click Accept" would not accept)."""
+        popup = self.completer().popup()
+        if obj is popup and event.type() == QEvent.Type.MouseButtonPress \
+                and not popup.rect().contains(event.position().toPoint()):
+            at = event.globalPosition().toPoint()
+            popup.hide()
+            under = QApplication.widgetAt(at)
+            if under is not None:
+                # The whole click: the window system sends the release to the popup's window, now hidden.
+                local = QPointF(under.mapFromGlobal(at))
+                for kind, buttons in ((QEvent.Type.MouseButtonPress, event.buttons()),
+                                      (QEvent.Type.MouseButtonRelease, Qt.MouseButton.NoButton)):
+                    QApplication.sendEvent(under, QMouseEvent(kind, local, QPointF(at), event.button(), buttons,
+                                                              event.modifiers()))
+            return True
+        return super().eventFilter(obj, event)
 
     def set_names(self, names) -> None:
-        self.names.setStringList(sorted(names))
+        names = sorted(names)
+        if names != self.names.stringList():
+            self.names.setStringList(names)
+
+    def popup_open(self) -> bool:
+        return self.completer().popup().isVisible()
+
+    def close_popup(self) -> None:
+        if self.popup_open():
+            self.completer().popup().hide()
+
+    def reset(self, text: str = "") -> None:
+        """A new group or a finished relabel: the field shows `text` (selected) and no popup."""
+        self.close_popup()
+        self.setText(text)
+        self.selectAll()
+
+    def _is_return(self, event) -> bool:
+        mods = event.modifiers() & ~Qt.KeyboardModifier.KeypadModifier
+        return event.key() in self._RETURN and mods == Qt.KeyboardModifier.NoModifier
+
+    def event(self, event):
+        if event.type() == QEvent.Type.ShortcutOverride and self._is_return(event):
+            event.accept()  # Return is the field's: it arrives as a key press below, never as a shortcut
+            return True
+        return super().event(event)
 
     def keyPressEvent(self, event):
-        if event.key() == Qt.Key.Key_Escape and not self.completer().popup().isVisible():
+        if self._is_return(event):
+            popup = self.completer().popup()
+            if popup.isVisible():
+                current = popup.currentIndex()
+                if current.isValid():
+                    self.setText(str(current.data()))
+                popup.hide()
+            event.accept()
+            self.accept_requested.emit()
+            return
+        if event.key() == Qt.Key.Key_Escape and not self.popup_open():
             self.escaped.emit()
             return
         super().keyPressEvent(event)
+
+    def focusOutEvent(self, event):
+        # The popup keeps the field's focus while it is open; any other focus change closes it.
+        if event.reason() != Qt.FocusReason.PopupFocusReason:
+            self.close_popup()
+        super().focusOutEvent(event)
 
 
 class StartPage(QWidget):
@@ -494,7 +564,6 @@ class ReviewPage(QWidget):
         lay.addLayout(left)
         lay.addLayout(right, 1)
         self.back_button.clicked.connect(self.back)
-        self.new_label.returnPressed.connect(self.relabel.click)
 
     def selected_paths(self) -> list[str]:
         from app.photo_grid import PATH_ROLE

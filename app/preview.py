@@ -11,9 +11,12 @@ PREVIEW_SIDE = 1400   # decode bound; the dialog shows it scaled to fit
 
 
 class PreviewDialog(QDialog):
-    def __init__(self, project, thumbs: Thumbnails, path: str, parent=None):
+    """`fetch(path, then)` reads the photo's facts and nearest photos from the engine (on its thread) and
+    calls `then(info, near)` on the GUI thread."""
+
+    def __init__(self, fetch, thumbs: Thumbnails, path: str, parent=None):
         super().__init__(parent)
-        self.project, self.thumbs = project, thumbs
+        self.fetch, self.thumbs = fetch, thumbs
         self.setWindowTitle("Photo")
         self.resize(1000, 760)
         self.picture = QLabel("…")
@@ -44,7 +47,15 @@ class PreviewDialog(QDialog):
 
     def show_photo(self, path: str) -> None:
         self.path = path
-        info = self.project.photo_info(path)
+        self.photo_width = 0
+        self.info_text = path
+        self.info.setText(path)
+        self._paint()
+        self.fetch(path, lambda info, near: self._show_info(path, info, near))
+
+    def _show_info(self, path: str, info: dict, near) -> None:
+        if path != self.path:
+            return  # another photo was asked for meanwhile
         state = {"labelled": f"labelled “{info['label']}”", "set_aside": "set aside (no class)",
                  "unlabelled": "not labelled yet"}.get(info["state"], info["state"])
         self.info_text = (f"<b>{info['path']}</b><br>{info['width']} × {info['height']} px · "
@@ -52,7 +63,6 @@ class PreviewDialog(QDialog):
         self.photo_width = info["width"]
         self.info.setText(self.info_text)
         self.setWindowTitle(info["path"])
-        near = self.project.neighbours(path, 8)
         self.near_model.set_photos([p for p, _ in near], [f"similarity {s:.2f}" for _, s in near])
         self._paint()
 

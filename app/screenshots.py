@@ -100,10 +100,11 @@ def render(out: Path, source: Path) -> list[Path]:
             raise SystemExit("the scan did not finish in 5 minutes")
 
         name_of = _names_from_truth(folder) or (lambda members: "part")
-        for _ in range(3):  # a session under way: a few groups accepted
+        for _ in range(3):  # a session under way: a few groups accepted, through the window
             g = w.current()
-            w.project.accept(g.id, name_of(g.members))
-            w.refresh()
+            w.group_page.label.setText(name_of(g.members))
+            w.accept()
+            _wait(app, w.idle, 60)  # the decision runs on the engine thread
         g = w.current()
         w.group_page.label.setText(name_of(g.members))
         w.group_page.grid.setFocus()
@@ -124,6 +125,7 @@ def render(out: Path, source: Path) -> list[Path]:
 
         w.preview(g.members[0])
         dlg = w.last_preview
+        _wait(app, lambda: bool(dlg.near_model.paths), 30)
         dlg.resize(1000, 720)
         _settle(app, 1.2)
         _save(dlg, out / "5-preview.png")
@@ -131,6 +133,7 @@ def render(out: Path, source: Path) -> list[Path]:
         dlg.close()
 
         w.open_review()
+        _wait(app, w.idle, 60)
         grid = w.review_page.grid
         grid.selectionModel().select(w.review_model.index(0), grid.selectionModel().SelectionFlag.Select)
         _settle(app, 1.5)

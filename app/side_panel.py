@@ -15,8 +15,13 @@ def _heading(text: str) -> QLabel:
     return lab
 
 
+def photos(n: int) -> str:
+    return f"{n} photo" if n == 1 else f"{n} photos"
+
+
 def group_summary(g) -> str:
-    text = f"{len(g.members)} photos · trust {g.trust:.2f}"
+    """One line of the "Next up" list; `g` as the window shows it (see main_window.shown)."""
+    text = f"{photos(len(g.members))} · trust {g.trust:.2f}"
     if g.suggested_label:
         text += f" · “{g.suggested_label}”?"
     if g.kind == "split part":
@@ -61,12 +66,15 @@ class SidePanel(QWidget):
         self.labels.itemActivated.connect(lambda it: self.label_chosen.emit(it.data(Qt.ItemDataRole.UserRole)))
 
     def show_state(self, status, upcoming, curve) -> None:
-        self.summary.setText(f"<b>{status.labelled}</b> of {status.photos} photos labelled<br>"
+        """`curve`: the window's `history.Curve`; its actions are the decisions recorded, undo not counted."""
+        self.summary.setText(f"<b>{status.labelled}</b> of {photos(status.photos)} labelled<br>"
                              f"{status.set_aside} set aside · {status.unlabelled} to go · "
-                             f"<b>{status.actions}</b> actions")
+                             f"<b>{curve.actions}</b> {'action' if curve.actions == 1 else 'actions'}")
+        self.summary.setToolTip("Actions: decisions recorded (accept, split, set aside, relabel, remove); "
+                                "an undo is not counted, and takes the figures back.")
         self.bar.setRange(0, max(status.photos, 1))
         self.bar.setValue(status.labelled)
-        self.chart.set_points(curve, status.photos)
+        self.chart.set_points(curve.points, status.photos)
         self.next_list.clear()
         for g in upcoming:
             self.next_list.addItem(group_summary(g))

@@ -69,9 +69,23 @@ def open_and_wait(qtbot, w, folder):
     assert w.stack.currentWidget() is w.work
 
 
+def settle(qtbot, w):
+    """Engine calls run on the engine thread: wait until the window has applied the result."""
+    qtbot.waitUntil(w.idle, timeout=60_000)
+
+
 def key(qtbot, widget, k, mods=Qt.KeyboardModifier.NoModifier):
     qtbot.keyClick(widget, k, mods)
     qtbot.wait(10)
+    w = widget.window()
+    if isinstance(w, MainWindow):
+        settle(qtbot, w)
+
+
+def refresh(qtbot, w):
+    w.refresh()
+    settle(qtbot, w)
+    settle(qtbot, w)
 
 
 def seen_all(qtbot, w):
@@ -154,10 +168,13 @@ def test_label_a_folder_by_keyboard(qtbot, window, folder, tmp_path):
     assert part.kind == "split part" and set(part.members) < before
     assert w.group_model.paths == part.members
 
-    # The chart's curve, replayed from the log, ends at the engine's own labelled count.
+    # The chart's curve, kept by appending after each action, is the log's replay, and ends at the
+    # engine's own labelled count; an undo is not counted as an action.
     curve = labelled_curve(p.store.decisions())
-    assert curve[-1] == (p.status().actions, p.status().labelled)
+    undos = sum(d["kind"] == "undo" for d in p.store.decisions())
+    assert curve[-1] == (p.status().actions - undos, p.status().labelled)
     assert w.side.chart.points == curve
+    assert f"<b>{p.status().actions - undos}</b> actions" in w.side.summary.text()
 
     # 5. Export (Ctrl+E): CSV, COCO and class folders with a split, in a worker.
     key(qtbot, grid, Qt.Key.Key_E, Qt.KeyboardModifier.ControlModifier)
@@ -193,7 +210,7 @@ def test_reopening_shows_the_state_left(qtbot, folder, tmp_path):
     open_and_wait(qtbot, w, folder)
     g = w.current()
     w.project.accept(g.id, "spring")
-    w.refresh()
+    refresh(qtbot, w)
     shown = w.current().members
     status = w.project.status()
     w.close()
@@ -226,7 +243,7 @@ def test_review_relabel_and_remove(qtbot, window, folder):
     open_and_wait(qtbot, w, folder)
     g = w.current()
     w.project.accept(g.id, "gear")
-    w.refresh()
+    refresh(qtbot, w)
     key(qtbot, w.group_page.grid, Qt.Key.Key_R, Qt.KeyboardModifier.ControlModifier)
     assert w.stack.currentWidget() is w.review_page
     expected = w.project.review("gear")
@@ -236,12 +253,14 @@ def test_review_relabel_and_remove(qtbot, window, folder):
     odd = w.review_model.paths[0]
     w.review_page.new_label.setText("odd one")
     w.review_page.relabel.click()
+    settle(qtbot, w)
     assert w.project.photo_info(odd)["label"] == "odd one"
     assert w.project.store.decisions()[-1]["kind"] == "label"
     grid.selectionModel().clearSelection()
     grid.selectionModel().select(w.review_model.index(0), grid.selectionModel().SelectionFlag.Select)
     gone = w.review_model.paths[0]
     w.review_page.remove.click()
+    settle(qtbot, w)
     assert w.project.photo_info(gone)["state"] == "unlabelled"
     assert w.project.store.decisions()[-1]["kind"] == "clear"
     key(qtbot, grid, Qt.Key.Key_Escape)
@@ -256,6 +275,7 @@ def test_preview_shows_size_and_neighbours(qtbot, window, folder):
     key(qtbot, w.group_page.grid, Qt.Key.Key_P, Qt.KeyboardModifier.ControlModifier)
     dlg = w.last_preview
     assert dlg.isVisible() and dlg.path == path
+    qtbot.waitUntil(lambda: bool(dlg.near_model.paths), timeout=10_000)  # read on the engine thread
     # Outside reference: Pillow's own reading of the file size, EXIF orientation applied.
     with Image.open(folder / path) as im:
         width, height = ImageOps.exif_transpose(im).size
@@ -385,17 +405,18 @@ def test_relearn_runs_in_the_background_then_proposes_again(qtbot, window, folde
     open_and_wait(qtbot, w, folder)
     for label in ("first", "second"):
         w.project.accept(w.current().id, label)
-        w.refresh()
+        refresh(qtbot, w)
     decisions = w.project.store.decisions()
     w.relearn_seconds = 5.0  # the engine's time budget, kept short for the test
     with qtbot.waitSignal(w.job_ended, timeout=120_000, check_params_cb=lambda n: n == "finding groups"):
-        key(qtbot, w.group_page.grid, Qt.Key.Key_R,
-            Qt.KeyboardModifier.ControlModifier | Qt.KeyboardModifier.ShiftModifier)
+        qtbot.keyClick(w.group_page.grid, Qt.Key.Key_R,
+                       Qt.KeyboardModifier.ControlModifier | Qt.KeyboardModifier.ShiftModifier)
         assert w.job is not None and not w.actions["accept"].isEnabled()  # no decisions while it runs
     assert w.project.status().relearned_version is not None
     assert w.project.store.decisions() == decisions          # relearning never touches the decisions
     assert w.current() is not None and w.actions["accept"].isEnabled()
     assert "Relearned: version" in w.group_page.message.text()
+    assert "Proposing again" not in w.group_page.message.text()   # said while it proposed, gone when done
 
 
 def test_cancelling_a_scan_keeps_what_was_embedded(qtbot, window, demo_source, tmp_path):
