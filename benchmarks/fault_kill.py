@@ -1,7 +1,7 @@
 """Kill Kinfold with SIGKILL at random moments in every verb, then check that nothing was lost.
 
-    python -m benchmarks.fault_kill --kills 100 --seed 0        # the full run (~20-30 min on 2 cores)
-    python -m benchmarks.fault_kill --kills 12 --seed 0         # every verb at least once (a few minutes)
+    python -m benchmarks.fault_kill --kills 100 --seed 0        # the full run (~8-10 min on 2 cores)
+    python -m benchmarks.fault_kill --kills 12 --seed 0         # every verb at least once (~2 min)
 
 One project (a copy of the demo folder, sample_images/) is kept going across all kills, so damage
 accumulates the way it would for a person whose machine keeps crashing. Each round:
@@ -11,10 +11,16 @@ accumulates the way it would for a person whose machine keeps crashing. Each rou
    of the round's verb (scan, label, accept, split, undo, later, relearn, export), prints BEGIN on
    its stdout and makes the call. After every call returns it appends a line to a log file and
    fsyncs it, so the log lists exactly the calls that returned before the kill.
-2. This process reads BEGIN, waits a random fraction (seeded) of that verb's last measured
-   duration and sends SIGKILL. Scans are killed in their hashing stage (the photo folder's mtimes
-   are touched first so every file is read again) or in their embedding stage (new photos are
-   added first), so both get hit.
+2. The kill, by turns for each verb:
+   - "clock": this process reads BEGIN, waits a random fraction (seeded) of the verb's last measured
+     duration and sends SIGKILL;
+   - "step": the driver SIGKILLs itself just before a random one of the call's steps (a store
+     statement or a file created, replaced or removed), so the short windows between two
+     transactions or two renames are hit as often as any other moment;
+   - "file" (scans): the driver SIGKILLs itself once a random share of the files has been read and
+     hashed (the scan's first stage takes about 2% of its time, so a clock rarely lands in it).
+   Before each scan, new photos are added (they must be embedded), two earlier ones are changed,
+   one removed, and every original gets a new modification time (so it is read and hashed again).
 3. Checks, on the store as the kill left it (plain sqlite3, not Kinfold's code):
    - every call logged as returned is in the store (decision row with its label and photos, label
      rows unless a later decision changed them, undo rows, split parts, photos left for later,
@@ -22,14 +28,16 @@ accumulates the way it would for a person whose machine keeps crashing. Each rou
      wholly absent (a "half decision" otherwise);
    - `PRAGMA integrity_check` is ok;
    - the previous export (CSV, COCO, class folders) is byte-identical, or replaced by a complete
-     newer one (equal to what exporting the same store again gives);
+     newer one (equal to what exporting the same store again gives); a kill between two formats
+     leaves one new and one old file, each whole: counted apart ("mixing two exports"), since
+     separate destinations cannot be replaced in one step;
    then the next run: open, scan, propose and export to the same destinations must work, and
    afterwards no temporary file may be left in the store folder or beside the export destinations.
 
-Timing: the kill lands inside the call, or during close/exit when the call was faster than its last
-measured duration; the table says how many of each. The verbs, choices and delay fractions are drawn
-from the seed, so a rerun makes the same plan; where a kill lands in wall-clock terms depends on the
-machine's load, so the exact outcome can differ between runs.
+The kill lands inside the call, or during close/exit when the call was faster than its last measured
+duration (or had fewer steps); the table says how many of each. The verbs, choices, delay fractions
+and steps are drawn from the seed, so a rerun makes the same plan; where a clock kill lands depends
+on the machine's load, so the exact outcome can differ between runs.
 """
 from __future__ import annotations
 
@@ -192,12 +200,16 @@ def _free_up(p, rng, log) -> None:
         log.note("returned", verb="clear", background=True, decision=dec, paths=paths)
 
 
-def _scan_progress(log):
+def _scan_progress(log, kill_at_file: float | None = None):
+    """Notes the stages of a scan in the log; with `kill_at_file` (a fraction) SIGKILLs the process
+    once that share of the files has been read and hashed."""
     last = [None]
 
     def progress(done, total, message):
-        # The first progress of each stage, and the end of reading (hashing) files.
         stage = "reading files" if message == "reading files" else "embedding"
+        if kill_at_file is not None and stage == "reading files" and done >= max(1, round(kill_at_file * total)):
+            os.kill(os.getpid(), signal.SIGKILL)
+        # The first progress of each stage, and the end of reading (hashing) files.
         if stage != last[0] or (stage == "reading files" and done == total):
             last[0] = stage
             log.note("phase", stage=stage, done=done, total=total)
@@ -289,7 +301,7 @@ def driver(spec: dict) -> None:
             _background(p, rng, log, "label")
     info: dict = {}
     if verb == "scan":
-        call = lambda: p.scan(progress=_scan_progress(log))  # noqa: E731
+        call = lambda: p.scan(progress=_scan_progress(log, spec.get("kill_at_file")))  # noqa: E731
     elif verb == "label":
         paths = rng.sample(p.photos(), rng.randint(1, 6))
         label = rng.choice(LABELS)
@@ -437,7 +449,6 @@ class Checker:
                                                                             split=0.02)
         self.steps: dict[str, int] = dict.fromkeys(VERBS, 8) | dict(scan=18, export=30)
         self.step_names: dict[str, list[str]] = {}
-        self.scan_hash_end = 0.3
         self.prev_export: dict[str, str | None] = {}
         self.returned: list[dict] = []     # every returned call so far (rechecked after every kill)
         _share_extractor()
@@ -693,10 +704,11 @@ class Checker:
             os.utime(p, (now, now))
 
     # -- one round ---------------------------------------------------------------------------------
-    def spawn(self, rnd: int, verb: str, *, exit_after: bool = False, kill_at_step: int | None = None):
+    def spawn(self, rnd: int, verb: str, *, exit_after: bool = False, kill_at_step: int | None = None,
+              kill_at_file: float | None = None):
         spec = dict(folder=str(self.folder), verb=verb, log=str(self.log_path), round=rnd,
                     seed=f"{self.seed}/{rnd}", dests={k: str(v) for k, v in self.dests.items()}, exit=exit_after,
-                    kill_at_step=kill_at_step)
+                    kill_at_step=kill_at_step, kill_at_file=kill_at_file)
         env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
         err = open(self.stderr_path, "a")
         err.write(f"--- round {rnd} {verb}\n")
@@ -728,12 +740,6 @@ class Checker:
                 self.estimate[e["verb"]] = e["seconds"]
                 self.steps[e["verb"]] = e["steps"]
                 self.step_names[e["verb"]] = e.get("step_names", [])
-        phases = [e for e in events if e["event"] == "phase"]
-        begin = next((e for e in events if e["event"] == "begin"), None)
-        if begin and begin["verb"] == "scan":
-            read = [e for e in phases if e["stage"] == "reading files" and e["done"] == e["total"]]
-            if read:
-                self.scan_hash_end = read[-1]["t"] - begin["t"]
 
     def calibrate(self) -> None:
         """Each verb once, not killed: its duration is the first estimate for the kill delays."""
@@ -772,17 +778,13 @@ class Checker:
             names = self.step_names.get(verb, [])
             what = f"before step {kill_at}/{self.steps.get(verb, 0)}" + (
                 f" ({names[kill_at]})" if kill_at < len(names) else " (after the last)")
-        elif verb == "scan":
-            # Half the scan kills land in the hashing stage, the rest in embedding and after.
-            hash_end = self.scan_hash_end
-            total = max(self.estimate.get("scan", 5.0), hash_end)
-            delay = fraction * 2 * hash_end if fraction < 0.5 else hash_end + (fraction - 0.5) * 2 * (total - hash_end)
-            what = f"at {delay * 1000:.1f} ms"
+        elif mode == "file":
+            what = f"after hashing {fraction:.0%} of the files"
         else:
             delay = fraction * self.estimate.get(verb, 0.05)
             what = f"at {delay * 1000:.1f} ms"
         before_temps = set(self.temporaries())
-        proc = self.spawn(rnd, verb, kill_at_step=kill_at)
+        proc = self.spawn(rnd, verb, kill_at_step=kill_at, kill_at_file=fraction if mode == "file" else None)
         first = self._wait_line(proc, 600)
         if first != "BEGIN":
             proc.kill()
@@ -793,7 +795,7 @@ class Checker:
             self.record_returned(events)
             self.next_run(rnd)
             return
-        if mode == "step":
+        if mode in ("step", "file"):
             self._wait_line(proc, 600)   # the driver kills itself at its step, or says DONE / ERROR
         else:
             t0 = time.perf_counter()
@@ -861,22 +863,22 @@ class Checker:
 
 def plan(kills: int, seed: int) -> list[tuple[str, float, str]]:
     """Verbs in shuffled blocks of all eight (so every verb comes up once kills >= 8). Each kill
-    lands at a fraction of the verb's last measured duration ("clock": SIGKILL from this process)
-    or of its steps ("step": the driver SIGKILLs itself before that store statement or file
-    operation); a verb's kills alternate between the two, starting with either."""
+    lands at a fraction of the verb's last measured duration ("clock": SIGKILL from this process),
+    of its steps ("step": the driver SIGKILLs itself before that store statement or file
+    operation) or, for scans, of the files it reads and hashes ("file"). A verb's kills take the
+    modes in turn, starting with a random one."""
     rng = random.Random(seed)
     order: list[str] = []
     while len(order) < kills:
         block = list(VERBS)
         rng.shuffle(block)
         order += block
-    first = {v: rng.random() < 0.5 for v in VERBS}
-    seen: Counter = Counter()
+    modes = {v: ("clock", "step", "file") if v == "scan" else ("clock", "step") for v in VERBS}
+    turn = {v: rng.randrange(len(modes[v])) for v in VERBS}
     out = []
     for v in order[:kills]:
-        mode = "step" if (seen[v] % 2 == 0) == first[v] else "clock"
-        seen[v] += 1
-        out.append((v, rng.random(), mode))
+        out.append((v, rng.random(), modes[v][turn[v] % len(modes[v])]))
+        turn[v] += 1
     return out
 
 
@@ -917,15 +919,16 @@ def run(kills: int = 100, seed: int = 0, work: Path | None = None, source: Path 
 
 def report(fig: Figures, kills: int, seed: int) -> str:
     lines = [f"Kinfold fault test: {sum(fig.kills.values())} SIGKILLs, seed {seed}", "",
-             f"{'verb':9s} {'kills':>5s} {'by clock':>9s} {'at a step':>10s} {'in call':>8s} {'after return':>13s} "
-             f"{'refused':>8s} {'median s':>9s}"]
+             f"{'verb':9s} {'kills':>5s} {'by clock':>9s} {'at a step':>10s} {'hashing':>8s} {'in call':>8s} "
+             f"{'after return':>13s} {'refused':>8s} {'median s':>9s}"]
     for v in VERBS:
         d = sorted(fig.durations.get(v, []))
         med = f"{d[len(d) // 2]:.3f}" if d else "-"
         lines.append(f"{v:9s} {fig.kills[v]:5d} {fig.modes[(v, 'clock')]:9d} {fig.modes[(v, 'step')]:10d} "
-                     f"{fig.in_call[v]:8d} {fig.after_return[v]:13d} {fig.raised[v]:8d} {med:>9s}")
-    lines.append(f"scans killed while hashing: {fig.scan_phase['hashing']}, while embedding or after: "
-                 f"{fig.scan_phase['embedding']}")
+                     f"{fig.modes[(v, 'file')]:8d} {fig.in_call[v]:8d} {fig.after_return[v]:13d} {fig.raised[v]:8d} "
+                     f"{med:>9s}")
+    lines.append(f"scans killed while reading and hashing files: {fig.scan_phase['hashing']}, while embedding "
+                 f"or writing the catalogue: {fig.scan_phase['embedding']}")
     lines += ["",
               f"decisions returned before kills:     {len(fig.returned_decisions)}",
               f"decisions found in the store:        {fig.found}",
