@@ -2,6 +2,8 @@
 
     python -m benchmarks.fault_kill --kills 100 --seed 0        # the full run (~8-10 min on 2 cores)
     python -m benchmarks.fault_kill --kills 12 --seed 0         # every verb at least once (~2 min)
+    python -m benchmarks.fault_kill --sweep                     # each verb killed before each of its steps
+    python -m benchmarks.fault_kill --sweep --verbs export      # one verb only
 
 One project (a copy of the demo folder, sample_images/) is kept going across all kills, so damage
 accumulates the way it would for a person whose machine keeps crashing. Each round:
@@ -773,8 +775,8 @@ class Checker:
         kill_at = None
         if verb == "scan":
             self.change_folder(rnd)
-        if mode == "step":
-            kill_at = int(fraction * (self.steps.get(verb, 0) + 1))
+        if mode in ("step", "sweep"):
+            kill_at = int(fraction if mode == "sweep" else fraction * (self.steps.get(verb, 0) + 1))
             names = self.step_names.get(verb, [])
             what = f"before step {kill_at}/{self.steps.get(verb, 0)}" + (
                 f" ({names[kill_at]})" if kill_at < len(names) else " (after the last)")
@@ -795,7 +797,7 @@ class Checker:
             self.record_returned(events)
             self.next_run(rnd)
             return
-        if mode in ("step", "file"):
+        if mode in ("step", "sweep", "file"):
             self._wait_line(proc, 600)   # the driver kills itself at its step, or says DONE / ERROR
         else:
             t0 = time.perf_counter()
@@ -803,7 +805,7 @@ class Checker:
         if proc.poll() is None:
             os.kill(proc.pid, signal.SIGKILL)
         proc.wait()
-        f.modes[(verb, mode)] += 1
+        f.modes[(verb, "step" if mode == "sweep" else mode)] += 1
         f.kills[verb] += 1
         events = self._events(rnd)
         begin = next(e for e in events if e["event"] == "begin")
@@ -861,7 +863,7 @@ class Checker:
 
 # ------------------------------------------------------------------ the run
 
-def plan(kills: int, seed: int) -> list[tuple[str, float, str]]:
+def plan(kills: int, seed: int, verbs=VERBS) -> list[tuple[str, float, str]]:
     """Verbs in shuffled blocks of all eight (so every verb comes up once kills >= 8). Each kill
     lands at a fraction of the verb's last measured duration ("clock": SIGKILL from this process),
     of its steps ("step": the driver SIGKILLs itself before that store statement or file
@@ -872,7 +874,7 @@ def plan(kills: int, seed: int) -> list[tuple[str, float, str]]:
     while len(order) < kills:
         block = list(VERBS)
         rng.shuffle(block)
-        order += block
+        order += [v for v in block if v in verbs]
     modes = {v: ("clock", "step", "file") if v == "scan" else ("clock", "step") for v in VERBS}
     turn = {v: rng.randrange(len(modes[v])) for v in VERBS}
     out = []
@@ -899,9 +901,11 @@ def prepare(work: Path, source: Path, scanned: Path | None) -> None:
 
 
 def run(kills: int = 100, seed: int = 0, work: Path | None = None, source: Path = ROOT / "sample_images",
-        scanned: Path | None = None, added: int = 24, verbose: bool = True, calibrate: bool = True) -> Figures:
+        scanned: Path | None = None, added: int = 24, verbose: bool = True, calibrate: bool = True,
+        verbs=VERBS, sweep: bool = False) -> Figures:
     """The whole test; `calibrate=False` skips timing each verb first (its first kill then uses a
-    rough guess of the duration and of the steps)."""
+    rough guess of the duration and of the steps). `sweep` replaces the random plan: each verb of
+    `verbs` is killed once before each of its steps, in order (the steps counted in calibration)."""
     work = Path(work) if work else Path(tempfile.mkdtemp(prefix="kinfold-fault-"))
     t0 = time.perf_counter()
     prepare(work, source, scanned)
@@ -911,14 +915,18 @@ def run(kills: int = 100, seed: int = 0, work: Path | None = None, source: Path 
     if verbose:
         print("calibration (s): " + ", ".join(f"{v} {c.estimate.get(v, float('nan')):.3f}" for v in VERBS),
               flush=True)
-    for rnd, (verb, fraction, mode) in enumerate(plan(kills, seed)):
+    if sweep:
+        rounds = [(v, k, "sweep") for v in verbs for k in range(c.steps[v] + 1)]
+    else:
+        rounds = plan(kills, seed, verbs)
+    for rnd, (verb, fraction, mode) in enumerate(rounds):
         c.round(rnd, verb, fraction, mode)
     c.fig.notes.append(f"work folder {work}; {time.perf_counter() - t0:.0f} s in all")
     return c.fig
 
 
-def report(fig: Figures, kills: int, seed: int) -> str:
-    lines = [f"Kinfold fault test: {sum(fig.kills.values())} SIGKILLs, seed {seed}", "",
+def report(fig: Figures, rerun: str) -> str:
+    lines = [f"Kinfold fault test: {sum(fig.kills.values())} SIGKILLs ({rerun})", "",
              f"{'verb':9s} {'kills':>5s} {'by clock':>9s} {'at a step':>10s} {'hashing':>8s} {'in call':>8s} "
              f"{'after return':>13s} {'refused':>8s} {'median s':>9s}"]
     for v in VERBS:
@@ -961,7 +969,7 @@ def report(fig: Figures, kills: int, seed: int) -> str:
             (f"{k}: {v}" for k, v in fig.leftover_temporaries.items()))
     listing("next-run failures", fig.next_run_failures)
     listing("notes", fig.notes, 30)
-    lines.append(f"rerun: python -m benchmarks.fault_kill --kills {kills} --seed {seed}")
+    lines.append(f"rerun: python -m benchmarks.fault_kill {rerun}")
     return "\n".join(lines)
 
 
@@ -973,14 +981,25 @@ def main(argv=None) -> int:
     ap.add_argument("--source", type=Path, default=ROOT / "sample_images", help="the photo folder to copy")
     ap.add_argument("--scanned", type=Path, help="copy this already scanned folder (store included) instead")
     ap.add_argument("--added", type=int, default=24, help="new photos before each scan round")
+    ap.add_argument("--verbs", default=",".join(VERBS), help="kill only these verbs (comma-separated)")
+    ap.add_argument("--sweep", action="store_true",
+                    help="instead of --kills random kills: kill each verb once before each of its steps")
     ap.add_argument("--quiet", action="store_true")
     ap.add_argument("--driver", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.driver:
         driver(json.loads(args.driver))
         return 0
-    fig = run(args.kills, args.seed, args.work, args.source, args.scanned, args.added, not args.quiet)
-    print(report(fig, args.kills, args.seed), flush=True)
+    verbs = tuple(v.strip() for v in args.verbs.split(",") if v.strip())
+    unknown = sorted(set(verbs) - set(VERBS))
+    if unknown:
+        ap.error(f"unknown verb(s) {', '.join(unknown)}; choose from {', '.join(VERBS)}")
+    fig = run(args.kills, args.seed, args.work, args.source, args.scanned, args.added, not args.quiet,
+              verbs=verbs, sweep=args.sweep)
+    rerun = "--sweep" if args.sweep else f"--kills {args.kills} --seed {args.seed}"
+    if verbs != VERBS:
+        rerun += f" --verbs {','.join(verbs)}"
+    print(report(fig, rerun), flush=True)
     bad = (fig.lost or fig.other_lost or fig.integrity_failures or fig.half or fig.partial_exports
            or fig.leftover_temporaries or fig.next_run_failures)
     return 1 if bad else 0
