@@ -625,7 +625,7 @@ class Checker:
                 newer += 1
                 continue
             state = "missing" if now[k] is None else "changed and incomplete"
-            self.fig.partial_exports.append(f"round {rnd} ({verb}): {k} export {d.name} {state}")
+            self.fig.partial_exports.append(f"round {rnd} ({verb}, killed {what}): {k} export {d.name} {state}")
         if newer:
             self.fig.new_exports += 1
             if newer < len(self.dests):
@@ -935,8 +935,8 @@ def report(fig: Figures, rerun: str) -> str:
         lines.append(f"{v:9s} {fig.kills[v]:5d} {fig.modes[(v, 'clock')]:9d} {fig.modes[(v, 'step')]:10d} "
                      f"{fig.modes[(v, 'file')]:8d} {fig.in_call[v]:8d} {fig.after_return[v]:13d} {fig.raised[v]:8d} "
                      f"{med:>9s}")
-    lines.append(f"scans killed while reading and hashing files: {fig.scan_phase['hashing']}, while embedding "
-                 f"or writing the catalogue: {fig.scan_phase['embedding']}")
+    lines.append(f"scans killed before all files were read and hashed: {fig.scan_phase['hashing']}, while "
+                 f"embedding or writing the catalogue: {fig.scan_phase['embedding']}")
     lines += ["",
               f"decisions returned before kills:     {len(fig.returned_decisions)}",
               f"decisions found in the store:        {fig.found}",
