@@ -927,13 +927,13 @@ def run(kills: int = 100, seed: int = 0, work: Path | None = None, source: Path 
 
 def report(fig: Figures, rerun: str) -> str:
     lines = [f"Kinfold fault test: {sum(fig.kills.values())} SIGKILLs ({rerun})", "",
-             f"{'verb':9s} {'kills':>5s} {'by clock':>9s} {'at a step':>10s} {'hashing':>8s} {'in call':>8s} "
+             f"{'verb':9s} {'kills':>5s} {'by clock':>9s} {'at a step':>10s} {'at a file':>10s} {'in call':>8s} "
              f"{'after return':>13s} {'refused':>8s} {'median s':>9s}"]
     for v in VERBS:
         d = sorted(fig.durations.get(v, []))
         med = f"{d[len(d) // 2]:.3f}" if d else "-"
         lines.append(f"{v:9s} {fig.kills[v]:5d} {fig.modes[(v, 'clock')]:9d} {fig.modes[(v, 'step')]:10d} "
-                     f"{fig.modes[(v, 'file')]:8d} {fig.in_call[v]:8d} {fig.after_return[v]:13d} {fig.raised[v]:8d} "
+                     f"{fig.modes[(v, 'file')]:10d} {fig.in_call[v]:8d} {fig.after_return[v]:13d} {fig.raised[v]:8d} "
                      f"{med:>9s}")
     lines.append(f"scans killed before all files were read and hashed: {fig.scan_phase['hashing']}, while "
                  f"embedding or writing the catalogue: {fig.scan_phase['embedding']}")
