@@ -101,7 +101,7 @@ def test_split_gives_two_parts_shown_first(photo_project_folder):
         photos = p.photos()
         mixed = [q for q in photos if truth_of(q) in ("chelsea", "rocket")]
         # Make a mixed group the way the engine would offer one: through a stored proposal.
-        gid = p.store.replace_open_proposals([dict(members=mixed, trust=0.5, kind="new area")])[0]
+        gid = p.store.update_open_proposals((), [dict(members=mixed, trust=0.5, kind="new area")])[0]
         parts = p.split(gid)
         assert len(parts) == 2
         assert sorted(m for g in parts for m in g.members) == sorted(mixed)
@@ -114,7 +114,7 @@ def test_split_gives_two_parts_shown_first(photo_project_folder):
         assert again[0].id == gid and again[0].members == mixed
         assert not {g.id for g in parts} & {g.id for g in again}
         # A group too small to split is refused with the reason; nothing is logged.
-        small = p.store.replace_open_proposals([dict(members=mixed[:3], trust=0.5, kind="new area")])[0]
+        small = p.store.update_open_proposals((), [dict(members=mixed[:3], trust=0.5, kind="new area")])[0]
         decisions = p.store.decision_count()
         with pytest.raises(ProjectError, match="at least 8"):
             p.split(small)
