@@ -185,11 +185,7 @@ class Store:
 
     # -- opening and the schema --------------------------------------------------------------
     def _connect(self) -> sqlite3.Connection:
-        db = sqlite3.connect(self.path, check_same_thread=False, isolation_level=None, timeout=_BUSY_SECONDS)
-        db.execute("PRAGMA journal_mode=WAL")
-        db.execute("PRAGMA synchronous=NORMAL")  # WAL + NORMAL: durable against app crashes
-        db.execute("PRAGMA foreign_keys=ON")
-        return db
+        return sqlite3.connect(self.path, check_same_thread=False, isolation_level=None, timeout=_BUSY_SECONDS)
 
     def _connect_read_only(self) -> sqlite3.Connection:
         """Read without write access. A WAL database opened read-only needs its -shm file; without one
@@ -258,6 +254,12 @@ class Store:
             # never one of its stores, or lost its content.
             raise StoreError(f"the project store {self.path} holds no Kinfold project (an empty or foreign "
                              "database): it is damaged. Restore it from a backup, or move it away to start afresh.")
+        if not self.read_only:
+            # Only now that the file is known to be a Kinfold store may anything be written to it.
+            db = self._conn()
+            db.execute("PRAGMA journal_mode=WAL")
+            db.execute("PRAGMA synchronous=NORMAL")  # WAL + NORMAL: durable against app crashes
+            db.execute("PRAGMA foreign_keys=ON")
         if version == SCHEMA_VERSION:
             return
         if self.read_only:
