@@ -8,6 +8,7 @@ from collections import Counter
 import numpy as np
 import pytest
 
+from core import project
 from core.project import Project, ProjectError
 
 
@@ -184,3 +185,46 @@ def test_store_schema_version_and_wal(photo_project_folder):
         assert p.store.schema_version() == SCHEMA_VERSION
         # WAL keeps readers (a second `kinfold status`) from blocking on the writer (SQLite docs).
         assert p.store._db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+
+
+def test_group_numbers_stay_until_decided(scanned_demo, tmp_path):
+    """Issue 16: a proposed group keeps its number across proposals, reopening, the CLI and the window,
+    and the first groups do not depend on --limit (the README quick start relies on it)."""
+    def kinfold(*args):
+        r = subprocess.run([sys.executable, "-m", "core.cli", *map(str, args)], capture_output=True, text=True)
+        assert r.returncode == 0, r.stderr
+        return r.stdout
+
+    def shown(groups):
+        return [(g["id"], g["members"]) if isinstance(g, dict) else (g.id, g.members) for g in groups]
+
+    # Fresh copies of one state: the groups formed do not depend on how many are asked for.
+    fresh = []
+    for n in (1, 2, 3, 7):
+        folder = tmp_path / f"fresh{n}"
+        shutil.copytree(scanned_demo, folder)
+        fresh.append(shown(json.loads(kinfold("propose", folder, "--json", "--limit", n))))
+    assert [len(f) for f in fresh] == [1, 2, 3, 7]
+    assert all(f == fresh[-1][: len(f)] for f in fresh)
+    # One folder, asked again and again: the same groups under the same numbers.
+    folder = tmp_path / "fresh7"
+    for n in (1, 2, 3):
+        assert shown(json.loads(kinfold("propose", folder, "--json", "--limit", n))) == fresh[-1][:n]
+    with Project.open(folder) as p:
+        first = p.propose(limit=7)
+        assert shown(first) == fresh[-1]
+        assert shown(p.propose(limit=7)) == shown(first)
+        # Deciding one group leaves the others' numbers alone.
+        p.accept(first[1].id, "drawer part")
+        rest = {g.id: g.members for g in p.propose(limit=project.PROPOSAL_BATCH)}
+        assert all(rest[g.id] == g.members for g in first if g.id != first[1].id)
+        assert first[1].id not in rest
+        before_close = shown(p.propose(limit=project.PROPOSAL_BATCH))
+    # Reopened: the same.
+    with Project.open(folder) as p:
+        assert shown(p.propose(limit=project.PROPOSAL_BATCH)) == before_close
+    # A number shown earlier is accepted by the CLI, and the others keep theirs.
+    status = json.loads(kinfold("accept", folder, first[2].id, "spring", "--json"))
+    assert status["by_label"]["spring"] == len(first[2].members)
+    after = dict(shown(json.loads(kinfold("propose", folder, "--json", "--limit", project.PROPOSAL_BATCH))))
+    assert all(after[i] == m for i, m in before_close if i != first[2].id)
