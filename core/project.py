@@ -388,10 +388,13 @@ class Project:
 
         A proposed group keeps its id until it is decided: open proposals whose photos are all still
         free are kept, and new groups are formed only from the other photos, PROPOSAL_BATCH at a time,
-        then cut to `limit`, so the first groups do not depend on `limit`."""
+        then cut to `limit`, so the first groups do not depend on `limit`. A relearn or restore is
+        the exception: it asks for new groups, so the open ones formed under another version go."""
         if not self._rows or limit <= 0:
             return []
         s = settings or proposals.Settings()
+        model = self.store.active_relearn_version()
+        formed_under = self.store.get_setting("proposals_formed_under", {"version": model})["version"]
         state, label_of, names = self._state_arrays()
         taken = np.zeros(len(self._rows), bool)
         pinned: list[Proposal] = []
@@ -402,7 +405,7 @@ class Project:
             if row.pinned:
                 # Shown with the members still free (the others were decided one by one).
                 idx = [i for i in idx if i is not None and state[i] == proposals.FREE and not taken[i]]
-            elif not idx or any(i is None or state[i] != proposals.FREE or taken[i] for i in idx):
+            elif formed_under != model or not idx or any(i is None or state[i] != proposals.FREE or taken[i] for i in idx):
                 idx = []                              # a member was decided or is gone: the group is void
             if not idx:
                 close.append(row.id)
@@ -427,8 +430,10 @@ class Project:
                             suggested_label=names[gr.suggested_label] if gr.suggested_label is not None else None,
                             confidence=None if gr.confidence is None else round(gr.confidence, 4), kind=gr.kind)
                        for gr in groups]
-        if close or records:
-            ids = self.store.update_open_proposals(close, records)
+        if close or records or formed_under != model:
+            with self.store.transaction():
+                ids = self.store.update_open_proposals(close, records)
+                self.store.set_setting("proposals_formed_under", {"version": model})
             kept.extend(Proposal(i, r["members"], r["trust"], r["suggested_label"], r["confidence"], r["kind"])
                         for i, r in zip(ids, records))
         return (pinned + _ranked(kept, s.explore_every))[:limit]
