@@ -239,7 +239,8 @@ class Store:
                     os.replace(tmp, self.path)
         except (OSError, sqlite3.Error) as exc:
             raise StoreError(f"cannot create the project store at {self.directory}: "
-                             f"{getattr(exc, 'strerror', None) or exc}") from exc
+                             f"{getattr(exc, 'strerror', None) or exc}. Choose a writable store location "
+                             "(store=..., --store).") from exc
         finally:
             for leftover in (tmp, tmp.with_name(tmp.name + "-wal"), tmp.with_name(tmp.name + "-shm")):
                 leftover.unlink(missing_ok=True)
