@@ -14,6 +14,7 @@ Example (runs on the demo folder; the first scan embeds a few hundred photos in 
 """
 from __future__ import annotations
 
+import contextlib
 import functools
 import getpass
 import hashlib
@@ -386,15 +387,21 @@ class Project:
         """The next groups to confirm, best first; split parts (and groups brought back by undo)
         before anything else.
 
-        A proposed group keeps its id until it is decided: open proposals whose photos are all still
-        free are kept, and new groups are formed only from the other photos, PROPOSAL_BATCH at a time,
-        then cut to `limit`, so the first groups do not depend on `limit`. A relearn or restore is
-        the exception: it asks for new groups, so the open ones formed under another version go."""
+        A group once returned keeps its id until it is decided: it stays open while its photos are
+        all still free. New groups are formed only from the other photos, PROPOSAL_BATCH at a time,
+        and the open groups are ordered by their stored figures and then cut to `limit`, so the
+        first groups do not depend on `limit`. Formed groups not returned yet are kept while nothing
+        changes and formed again after the next decision. A relearn or restore asks for new groups:
+        the open ones formed under another version are closed."""
         if not self._rows or limit <= 0:
             return []
         s = settings or proposals.Settings()
-        model = self.store.active_relearn_version()
-        formed_under = self.store.get_setting("proposals_formed_under", {"version": model})["version"]
+        mark = dict(version=self.store.active_relearn_version(), decisions=self.store.decision_count(),
+                    photos=len(self._rows))
+        batch = self.store.get_setting("proposal_batch") or dict(mark=mark, unshown=[])
+        unshown = set(batch["unshown"])
+        new_version = batch["mark"]["version"] != mark["version"]
+        stale = unshown if batch["mark"] != mark else set()
         state, label_of, names = self._state_arrays()
         taken = np.zeros(len(self._rows), bool)
         pinned: list[Proposal] = []
@@ -405,8 +412,9 @@ class Project:
             if row.pinned:
                 # Shown with the members still free (the others were decided one by one).
                 idx = [i for i in idx if i is not None and state[i] == proposals.FREE and not taken[i]]
-            elif formed_under != model or not idx or any(i is None or state[i] != proposals.FREE or taken[i] for i in idx):
-                idx = []                              # a member was decided or is gone: the group is void
+            elif (new_version or row.id in stale or not idx
+                  or any(i is None or state[i] != proposals.FREE or taken[i] for i in idx)):
+                idx = []                 # formed under other figures, or a member was decided or is gone
             if not idx:
                 close.append(row.id)
                 continue
@@ -430,13 +438,16 @@ class Project:
                             suggested_label=names[gr.suggested_label] if gr.suggested_label is not None else None,
                             confidence=None if gr.confidence is None else round(gr.confidence, 4), kind=gr.kind)
                        for gr in groups]
-        if close or records or formed_under != model:
-            with self.store.transaction():
-                ids = self.store.update_open_proposals(close, records)
-                self.store.set_setting("proposals_formed_under", {"version": model})
+        with self.store.transaction() if (close or records) else _nothing():
+            ids = self.store.update_open_proposals(close, records) if (close or records) else []
             kept.extend(Proposal(i, r["members"], r["trust"], r["suggested_label"], r["confidence"], r["kind"])
                         for i, r in zip(ids, records))
-        return (pinned + _ranked(kept, s.explore_every))[:limit]
+            out = (pinned + _ranked(kept, s.explore_every))[:limit]
+            returned = {g.id for g in out}
+            now_unshown = sorted(({g.id for g in kept} & (unshown | set(ids))) - returned)
+            if close or records or batch["mark"] != mark or now_unshown != sorted(unshown):
+                self.store.set_setting("proposal_batch", dict(mark=mark, unshown=now_unshown))
+        return out
 
     @_serialised
     def group(self, group_id: int) -> Proposal:
@@ -699,6 +710,11 @@ class _RelearnView:
 
     def features(self) -> np.ndarray:
         return self._geometry
+
+
+@contextlib.contextmanager
+def _nothing():
+    yield
 
 
 def _ranked(groups: list[Proposal], every: int) -> list[Proposal]:
