@@ -177,7 +177,14 @@ class Store:
             self._migrate()
         except sqlite3.DatabaseError as exc:
             self.close()
-            raise StoreError(f"the project store {self.path} is damaged or not a Kinfold store ({exc}); restore it "
+            text = str(exc)
+            if "locked" in text or "busy" in text:
+                raise StoreError(f"the project store {self.path} is busy in another process ({text}); "
+                                 "try again") from exc
+            if "unable to open" in text:
+                raise StoreError(f"cannot open the project store {self.path} ({text}); check that it can "
+                                 "be read") from exc
+            raise StoreError(f"the project store {self.path} is damaged or not a Kinfold store ({text}); restore it "
                              "from a backup, or move it away to start the project afresh.") from exc
         except BaseException:
             self.close()
