@@ -216,15 +216,17 @@ def test_group_numbers_stay_until_decided(scanned_demo, tmp_path):
         assert shown(p.propose(limit=7)) == shown(first)
         # Deciding one group leaves the others' numbers alone.
         p.accept(first[1].id, "drawer part")
-        rest = {g.id: g.members for g in p.propose(limit=project.PROPOSAL_BATCH)}
+        rest = {g.id: g.members for g in p.propose(limit=20)}
         assert all(rest[g.id] == g.members for g in first if g.id != first[1].id)
         assert first[1].id not in rest
-        before_close = shown(p.propose(limit=project.PROPOSAL_BATCH))
+        before_close = shown(p.propose(limit=20))
     # Reopened: the same.
     with Project.open(folder) as p:
-        assert shown(p.propose(limit=project.PROPOSAL_BATCH)) == before_close
+        assert shown(p.propose(limit=20)) == before_close
     # A number shown earlier is accepted by the CLI, and the others keep theirs.
     status = json.loads(kinfold("accept", folder, first[2].id, "spring", "--json"))
     assert status["by_label"]["spring"] == len(first[2].members)
-    after = dict(shown(json.loads(kinfold("propose", folder, "--json", "--limit", project.PROPOSAL_BATCH))))
+    after = dict(shown(json.loads(kinfold("propose", folder, "--json", "--limit", 100))))
     assert all(after[i] == m for i, m in before_close if i != first[2].id)
+    with Project.open(folder) as p:
+        assert all(p.group(i).members == m and p.store.is_open(i) for i, m in before_close if i != first[2].id)
