@@ -385,9 +385,13 @@ class Project:
 
     # -- proposals ---------------------------------------------------------------------------
     @_serialised
-    def propose(self, limit: int = 20, settings: proposals.Settings | None = None) -> list[Proposal]:
+    def propose(self, limit: int = 20, settings: proposals.Settings | None = None, *,
+                hold: int | None = None) -> list[Proposal]:
         """The next groups to confirm, best first; split parts (and groups brought back by undo)
-        before anything else.
+        before anything else. `hold`: how many of the returned groups are held under their ids
+        (None: all). A caller that shows the first group and only peeks at the next passes hold=1,
+        so the groups it did not show are formed again after the next decision (photos held in
+        open groups cannot join better groups that the decisions make possible).
 
         A group once returned keeps its id until it is decided: it stays open while its photos are
         all still free. Groups are formed PROPOSAL_BATCH at a time from the photos no open group
@@ -475,8 +479,9 @@ class Project:
                     p.id = ids[-p.id - 1]
             new_ids = set(ids)
             shown = queue[:max(want, 0)]
+            held = len(shown) if hold is None else max(hold - len(pinned), 0)
             now = dict(mark=mark, order=[p.id for p in queue],
-                       unshown=[p.id for p in queue[len(shown):] if p.id in unshown or p.id in new_ids])
+                       unshown=[p.id for p in queue[held:] if p.id in unshown or p.id in new_ids])
             if now != saved:
                 self.store.set_setting("proposal_queue", now)
         return (pinned + shown)[:limit]

@@ -230,3 +230,20 @@ def test_group_numbers_stay_until_decided(scanned_demo, tmp_path):
     assert all(after[i] == m for i, m in before_close if i != first[2].id)
     with Project.open(folder) as p:
         assert all(p.group(i).members == m and p.store.is_open(i) for i, m in before_close if i != first[2].id)
+
+
+def test_groups_only_peeked_at_are_formed_again_after_a_decision(photo_project_folder):
+    with Project.open(photo_project_folder) as p:
+        first, *peeked = p.propose(limit=3, hold=1)
+        assert peeked
+        # Asked again before any decision: the very same groups.
+        assert [(g.id, g.members) for g in p.propose(limit=3, hold=1)] == [(first.id, first.members)] + [
+            (g.id, g.members) for g in peeked]
+        p.accept(first.id, "thing")
+        p.propose(limit=3, hold=1)
+        assert not any(p.store.is_open(g.id) for g in peeked)
+        # Held groups (the default) stay open under their ids after a decision.
+        first, *held = p.propose(limit=3)
+        p.accept(first.id, "other")
+        p.propose(limit=3)
+        assert all(p.store.is_open(g.id) and p.group(g.id).members == g.members for g in held)
