@@ -93,7 +93,7 @@ def engine_view(project: Project, call: Callable | None = None, review_label: st
             view.result = call(project)
         except _ENGINE_ERRORS as exc:
             view.error = str(exc)
-    view.groups = project.propose(limit=LOOKAHEAD)
+    view.groups = project.propose(limit=LOOKAHEAD, hold=1)  # the current group keeps its number; the next-up list is a peek
     view.status = project.status()
     if review_label is not None:
         label = review_label if review_label in view.status.by_label else next(iter(view.status.by_label), None)

@@ -89,7 +89,7 @@ def geometry_figures(project: Project, truth: dict[str, str], top: int = 100) ->
     # Over the photos still unlabelled: the relearned head was trained on the others' labels.
     free = project._state_arrays()[0] == FREE
     purity_free = float(hit[free].sum() / max(ok[free].sum(), 1)) if free.any() else float("nan")
-    groups = project.propose(limit=top)
+    groups = project.propose(limit=top, hold=0)
     sizes = [len(gr.members) for gr in groups]
     kept = sum(Counter(truth[m] for m in gr.members).most_common(1)[0][1] for gr in groups)
     return dict(labelled=project.status().labelled, purity10=round(purity, 4),
@@ -116,7 +116,7 @@ def simulate(project: Project, truth: dict[str, str], *, sitting: int = 100, rel
     next_relearn = sitting
     while labelled < len(photos):
         t0 = time.perf_counter()
-        groups = project.propose(limit=3)
+        groups = project.propose(limit=3, hold=1)
         run.propose_seconds.append(time.perf_counter() - t0)
         if not groups:
             break

@@ -127,11 +127,14 @@ def neighbourhood_entropy(x: np.ndarray, temperature: float = 0.1, *, exact_limi
 def mutual_mask(idx: np.ndarray, k: int) -> np.ndarray:
     """mask[i, r] is True when i is also among the k nearest of its r-th neighbour idx[i, r]."""
     n = len(idx)
-    top = idx[:, :k]
+    top = idx[:, :k].astype(np.int64)
     src = np.repeat(np.arange(n, dtype=np.int64), top.shape[1])
-    forward = src * n + top.ravel()
+    valid = top.ravel() >= 0
+    # Pairs are encoded as src * n + neighbour; a padded -1 would encode (src - 1, n - 1), a real
+    # pair, so padding is left out of the forward pairs as well as the answer.
+    forward = (src * n + top.ravel())[valid]
     backward = top.ravel() * n + src
-    return np.isin(backward, forward).reshape(n, -1) & (top >= 0)
+    return (np.isin(backward, forward) & valid).reshape(n, -1)
 
 
 def bursts(sims: np.ndarray, idx: np.ndarray, threshold: float) -> np.ndarray:

@@ -247,6 +247,12 @@ def _rank(g: Group) -> float:
     return -g.extra["expected_yield"]
 
 
+def order(groups: list[Group], every: int = Settings.explore_every) -> list[Group]:
+    """All of `groups` by expected photos per action (`extra["expected_yield"]`), with a new-area group
+    no label reaches at least every `every`-th place; ties keep their order."""
+    return _order([], groups, len(groups), every)
+
+
 def _order(probable: list[Group], explore: list[Group], limit: int, every: int) -> list[Group]:
     rest = sorted(probable + explore, key=_rank)
     out: list[Group] = []

@@ -2,11 +2,22 @@
 log and the current proposals.
 
 Labels are keyed by content fingerprint, so a renamed or moved photo keeps its label. Every write
-method commits its own transaction before it returns, so a decision survives a crash.
+method commits its own transaction before it returns, so a decision survives a crash; transactions
+nest (`with store.transaction():` around several write methods makes them one), so a decision made of
+several writes is all or nothing.
+
+Safe to share between threads: one connection, and every access to it holds one lock.
+
+A new store file is built under a temporary name and linked into place complete, so a store file that
+exists is always a whole store: an empty or foreign file is reported as damaged, never overwritten.
+Without write access (a read-only folder or mount) the store opens read-only: reading works, every
+write raises `StoreError` with the reason.
 """
 from __future__ import annotations
 
 import json
+import os
+import secrets
 import sqlite3
 import threading
 import time
@@ -61,6 +72,7 @@ _MIGRATIONS: list[str] = [
         group_id INTEGER,
         photos TEXT NOT NULL,             -- JSON list of relative paths
         before TEXT NOT NULL,             -- JSON {fingerprint: previous label row or null}, for undo
+                                          -- (kind 'later': {fingerprint: previous deferred time or null})
         undoes INTEGER                    -- for kind 'undo': the decision it reverses
     );
     CREATE TABLE proposals (
@@ -140,50 +152,167 @@ def utc_now() -> str:
 class Store:
     """Thin typed access to the SQLite file. Safe to share between threads (one lock)."""
 
-    def __init__(self, directory: Path):
+    def __init__(self, directory: Path, *, read_only: bool | None = None):
+        """Open (or create) the store in `directory`. `read_only`: None decides from write access."""
         self.directory = Path(directory)
+        self.path = self.directory / STORE_FILE
+        self._lock = threading.RLock()
+        self._depth = 0                   # nesting of open transactions (under the lock)
+        self._db: sqlite3.Connection | None = None
+        existed = self.path.exists()
+        if existed and not self.path.is_file():
+            raise StoreError(f"{self.path} is not a file; move it away so Kinfold can keep its store there")
+        if read_only is None:
+            read_only = existed and not (os.access(self.path, os.W_OK) and os.access(self.directory, os.W_OK))
+        self.read_only = read_only
+        if not existed:
+            if read_only:
+                raise StoreError(f"there is no project store at {self.directory}, and it cannot be created read-only")
+            self._create()
+        elif self.path.stat().st_size == 0:
+            raise StoreError(f"the project store {self.path} is empty (0 bytes): it is damaged. Restore it from a "
+                             "backup, or move it away to start the project afresh.")
+        try:
+            self._db = self._connect_read_only() if read_only else self._connect()
+            self._migrate()
+        except sqlite3.DatabaseError as exc:
+            self.close()
+            text = str(exc)
+            if "locked" in text or "busy" in text:
+                raise StoreError(f"the project store {self.path} is busy in another process ({text}); "
+                                 "try again") from exc
+            if "unable to open" in text:
+                raise StoreError(f"cannot open the project store {self.path} ({text}); check that it can "
+                                 "be read") from exc
+            raise StoreError(f"the project store {self.path} is damaged or not a Kinfold store ({text}); restore it "
+                             "from a backup, or move it away to start the project afresh.") from exc
+        except BaseException:
+            self.close()
+            raise
+
+    # -- opening and the schema --------------------------------------------------------------
+    def _connect(self) -> sqlite3.Connection:
+        return sqlite3.connect(self.path, check_same_thread=False, isolation_level=None, timeout=_BUSY_SECONDS)
+
+    def _connect_read_only(self) -> sqlite3.Connection:
+        """Read without write access. A WAL database opened read-only needs its -shm file; without one
+        (a clean close deletes it) only `immutable=1` opens it, which ignores the -wal file, so that is
+        used only when there is no -wal content to miss."""
+        uri = self.path.resolve().as_uri()
+        db = sqlite3.connect(f"{uri}?mode=ro", uri=True, check_same_thread=False, isolation_level=None)
+        try:
+            db.execute("SELECT count(*) FROM sqlite_master").fetchone()
+            return db
+        except sqlite3.OperationalError:
+            db.close()
+        wal = self.path.with_name(self.path.name + "-wal")
+        if wal.exists() and wal.stat().st_size > 0:
+            raise StoreError(f"the project store {self.path} cannot be read without write access: its last "
+                             f"changes are still in {wal.name}. Open it once where it is writable.")
+        db = sqlite3.connect(f"{uri}?mode=ro&immutable=1", uri=True, check_same_thread=False, isolation_level=None)
+        db.execute("SELECT count(*) FROM sqlite_master").fetchone()
+        return db
+
+    def _create(self) -> None:
+        """Build a new store under a temporary name and link it into place, so the store file never
+        exists half made (a crash or a second process sees either nothing or a whole store)."""
         try:
             self.directory.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             raise StoreError(f"cannot create the project store at {self.directory}: {exc.strerror}. "
                              "Choose a writable store location (store=...).") from exc
-        self.path = self.directory / STORE_FILE
-        self._lock = threading.RLock()
+        _remove_stale_temporaries(self.directory)
+        tmp = self.directory / f".{STORE_FILE}.new-{os.getpid()}-{secrets.token_hex(4)}"
         try:
-            self._db = sqlite3.connect(self.path, check_same_thread=False, isolation_level=None)
-            self._db.execute("PRAGMA journal_mode=WAL")
-            self._db.execute("PRAGMA synchronous=NORMAL")  # WAL + NORMAL: durable against app crashes
-            self._db.execute("PRAGMA foreign_keys=ON")
-        except sqlite3.Error as exc:
-            raise StoreError(f"cannot open the project store {self.path}: {exc}") from exc
-        self._migrate()
-
-    # -- schema ------------------------------------------------------------------------------
-    def _migrate(self) -> None:
-        with self._lock:
-            version = self._db.execute("PRAGMA user_version").fetchone()[0]
-            if version > SCHEMA_VERSION:
-                raise StoreError(f"{self.path} was written by a newer Kinfold (schema {version}, "
-                                 f"this one knows {SCHEMA_VERSION}); upgrade Kinfold to open it.")
-            for v in range(version, SCHEMA_VERSION):
-                with self.transaction() as db:
-                    for stmt in _split_sql(_MIGRATIONS[v]):
+            db = sqlite3.connect(tmp, isolation_level=None)
+            try:
+                db.execute("PRAGMA journal_mode=WAL")
+                db.execute("BEGIN IMMEDIATE")
+                for script in _MIGRATIONS:
+                    for stmt in _split_sql(script):
                         db.execute(stmt)
-                    db.execute(f"PRAGMA user_version={v + 1}")
+                db.execute(f"PRAGMA user_version={SCHEMA_VERSION}")
+                db.execute("COMMIT")
+            finally:
+                db.close()  # the last connection checkpoints the WAL into the file and deletes it
+            try:
+                os.link(tmp, self.path)
+            except FileExistsError:
+                pass  # another process made the store first: use that one
+            except OSError:
+                # No hard links on this file system: rename, which could replace a store made in the
+                # same instant by another process (it would still be a new, empty one).
+                if not self.path.exists():
+                    os.replace(tmp, self.path)
+        except (OSError, sqlite3.Error) as exc:
+            raise StoreError(f"cannot create the project store at {self.directory}: "
+                             f"{getattr(exc, 'strerror', None) or exc}. Choose a writable store location "
+                             "(store=..., --store).") from exc
+        finally:
+            for leftover in (tmp, tmp.with_name(tmp.name + "-wal"), tmp.with_name(tmp.name + "-shm")):
+                leftover.unlink(missing_ok=True)
+
+    def _migrate(self) -> None:
+        version = self.schema_version()
+        if version > SCHEMA_VERSION:
+            raise StoreError(f"{self.path} was written by a newer Kinfold (schema {version}, "
+                             f"this one knows {SCHEMA_VERSION}); upgrade Kinfold to open it.")
+        if version == 0:
+            # Kinfold links only whole stores into place, so an existing file without a schema was
+            # never one of its stores, or lost its content.
+            raise StoreError(f"the project store {self.path} holds no Kinfold project (an empty or foreign "
+                             "database): it is damaged. Restore it from a backup, or move it away to start afresh.")
+        if not self.read_only:
+            # Only now that the file is known to be a Kinfold store may anything be written to it.
+            db = self._conn()
+            db.execute("PRAGMA journal_mode=WAL")
+            db.execute("PRAGMA synchronous=NORMAL")  # WAL + NORMAL: durable against app crashes
+            db.execute("PRAGMA foreign_keys=ON")
+        if version == SCHEMA_VERSION:
+            return
+        if self.read_only:
+            raise StoreError(f"{self.path} was written by an older Kinfold (schema {version}); open it once "
+                             "with write access so it can be upgraded.")
+        # BEGIN IMMEDIATE, then read the version again: of two processes upgrading at once, the second
+        # waits for the first and then finds nothing left to do.
+        with self.transaction() as db:
+            version = db.execute("PRAGMA user_version").fetchone()[0]
+            for v in range(version, SCHEMA_VERSION):
+                for stmt in _split_sql(_MIGRATIONS[v]):
+                    db.execute(stmt)
+                db.execute(f"PRAGMA user_version={v + 1}")
 
     def close(self) -> None:
         with self._lock:
-            self._db.close()
+            if self._db is not None:
+                self._db.close()
+                self._db = None
+
+    def _conn(self) -> sqlite3.Connection:
+        """The connection; the caller holds the lock."""
+        if self._db is None:
+            raise StoreError(f"the project store {self.path} is closed")
+        return self._db
+
+    def _all(self, sql: str, params: Sequence = ()) -> list:
+        with self._lock:
+            return self._conn().execute(sql, params).fetchall()
+
+    def _one(self, sql: str, params: Sequence = ()):
+        with self._lock:
+            return self._conn().execute(sql, params).fetchone()
 
     def transaction(self):
-        return _Transaction(self._db, self._lock)
+        """`with store.transaction() as db:` one transaction (BEGIN IMMEDIATE ... COMMIT, ROLLBACK on
+        error), holding the lock throughout; nested inside another, it is a savepoint of the outer one."""
+        return _Transaction(self)
 
     def schema_version(self) -> int:
-        return self._db.execute("PRAGMA user_version").fetchone()[0]
+        return self._one("PRAGMA user_version")[0]
 
     # -- settings ----------------------------------------------------------------------------
     def get_setting(self, key: str, default=None):
-        row = self._db.execute("SELECT value FROM settings WHERE key=?", (key,)).fetchone()
+        row = self._one("SELECT value FROM settings WHERE key=?", (key,))
         return json.loads(row[0]) if row else default
 
     def set_setting(self, key: str, value) -> None:
@@ -193,13 +322,13 @@ class Store:
     # -- photos ------------------------------------------------------------------------------
     def photos(self) -> list[PhotoRow]:
         with self._lock:
-            rows = self._db.execute("SELECT path, fingerprint, size, mtime_ns, width, height FROM photos "
+            rows = self._conn().execute("SELECT path, fingerprint, size, mtime_ns, width, height FROM photos "
                                     "ORDER BY path").fetchall()
         return [PhotoRow(*r) for r in rows]
 
     def skipped(self) -> dict[str, tuple[int, int, str]]:
         with self._lock:
-            rows = self._db.execute("SELECT path, size, mtime_ns, reason FROM skipped").fetchall()
+            rows = self._conn().execute("SELECT path, size, mtime_ns, reason FROM skipped").fetchall()
         return {p: (s, m, r) for p, s, m, r in rows}
 
     def replace_catalogue(self, photos: Sequence[PhotoRow], skipped: dict[str, tuple[int, int, str]]) -> None:
@@ -214,7 +343,7 @@ class Store:
     # -- embeddings --------------------------------------------------------------------------
     def embedded_fingerprints(self, extractor: str) -> set[str]:
         with self._lock:
-            rows = self._db.execute("SELECT fingerprint FROM embeddings WHERE extractor=?", (extractor,))
+            rows = self._conn().execute("SELECT fingerprint FROM embeddings WHERE extractor=?", (extractor,))
             return {r[0] for r in rows}
 
     def put_embeddings(self, extractor: str, fingerprints: Sequence[str], vectors: np.ndarray) -> None:
@@ -226,7 +355,7 @@ class Store:
     def embeddings(self, extractor: str, fingerprints: Sequence[str]) -> np.ndarray:
         """Rows in the order of `fingerprints`; every fingerprint must be embedded."""
         with self._lock:
-            rows = dict(self._db.execute("SELECT fingerprint, vector FROM embeddings WHERE extractor=?",
+            rows = dict(self._conn().execute("SELECT fingerprint, vector FROM embeddings WHERE extractor=?",
                                          (extractor,)).fetchall())
         missing = [fp for fp in fingerprints if fp not in rows]
         if missing:
@@ -238,16 +367,18 @@ class Store:
     # -- labels and decisions ----------------------------------------------------------------
     def labels(self) -> dict[str, LabelRow]:
         with self._lock:
-            rows = self._db.execute("SELECT fingerprint, state, label, how, annotator, time FROM labels").fetchall()
+            rows = self._conn().execute("SELECT fingerprint, state, label, how, annotator, time FROM labels").fetchall()
         return {r[0]: LabelRow(*r) for r in rows}
 
     def record_decision(self, kind: str, annotator: str, photos: Sequence[str], changes: dict[str, LabelRow | None],
                         label: str | None = None, group_id: int | None = None, undoes: int | None = None,
-                        close_proposals: Iterable[int] = (), rejected: Iterable[str] = ()) -> int:
+                        close_proposals: Iterable[int] = (), rejected: Iterable[str] = (),
+                        before: dict | None = None) -> int:
         """Apply label changes ({fingerprint: new row or None to clear}) and log them, atomically.
-        `rejected`: fingerprints the annotator said are not `label` (taken out of the group)."""
+        `rejected`: fingerprints the annotator said are not `label` (taken out of the group).
+        `before`: what undo needs for a decision that changes no label (kind 'later')."""
         with self.transaction() as db:
-            before = {}
+            before = dict(before or {})
             for fp in changes:
                 r = db.execute("SELECT fingerprint, state, label, how, annotator, time FROM labels "
                                "WHERE fingerprint=?", (fp,)).fetchone()
@@ -277,14 +408,14 @@ class Store:
         Undo walks back: an undo is never itself undone."""
         marks = ",".join("?" * len(kinds))
         with self._lock:
-            r = self._db.execute(
+            r = self._conn().execute(
                 f"SELECT id, kind, before, group_id FROM decisions d WHERE kind IN ({marks}) AND NOT EXISTS "
                 "(SELECT 1 FROM decisions u WHERE u.undoes = d.id) ORDER BY id DESC LIMIT 1", tuple(kinds)).fetchone()
         return None if r is None else (r[0], r[1], json.loads(r[2]), r[3])
 
     def rejections(self) -> dict[str, set[str]]:
         with self._lock:
-            rows = self._db.execute("SELECT fingerprint, label FROM rejections").fetchall()
+            rows = self._conn().execute("SELECT fingerprint, label FROM rejections").fetchall()
         out: dict[str, set[str]] = {}
         for fp, lab in rows:
             out.setdefault(fp, set()).add(lab)
@@ -292,11 +423,11 @@ class Store:
 
     def decision_count(self) -> int:
         with self._lock:
-            return self._db.execute("SELECT COUNT(*) FROM decisions").fetchone()[0]
+            return self._conn().execute("SELECT COUNT(*) FROM decisions").fetchone()[0]
 
     def decisions(self) -> list[dict]:
         with self._lock:
-            rows = self._db.execute("SELECT id, kind, label, annotator, time, group_id, photos, undoes "
+            rows = self._conn().execute("SELECT id, kind, label, annotator, time, group_id, photos, undoes "
                                     "FROM decisions ORDER BY id").fetchall()
         return [dict(id=r[0], kind=r[1], label=r[2], annotator=r[3], time=r[4], group_id=r[5],
                      photos=json.loads(r[6]), undoes=r[7]) for r in rows]
@@ -309,10 +440,11 @@ class Store:
             db.execute("UPDATE proposals SET open=1, pinned=1 WHERE id=?", (group_id,))
 
     # -- proposals ---------------------------------------------------------------------------
-    def replace_open_proposals(self, groups: Sequence[dict]) -> list[int]:
-        """Close every unpinned open proposal and store `groups`; returns their new ids."""
+    def update_open_proposals(self, close: Iterable[int], groups: Sequence[dict]) -> list[int]:
+        """Close the open proposals `close` (no longer valid) and store `groups`; returns their new
+        ids. Every other open proposal keeps its id."""
         with self.transaction() as db:
-            db.execute("UPDATE proposals SET open=0 WHERE open=1 AND pinned=0")
+            db.executemany("UPDATE proposals SET open=0 WHERE id=?", [(i,) for i in close])
             ids = []
             for g in groups:
                 cur = db.execute("INSERT INTO proposals(members, trust, suggested_label, confidence, kind, pinned) "
@@ -337,7 +469,7 @@ class Store:
 
     def proposal(self, group_id: int) -> ProposalRow | None:
         with self._lock:
-            r = self._db.execute("SELECT id, members, trust, suggested_label, confidence, kind, pinned "
+            r = self._conn().execute("SELECT id, members, trust, suggested_label, confidence, kind, pinned "
                                  "FROM proposals WHERE id=?", (group_id,)).fetchone()
         return _proposal_row(r) if r else None
 
@@ -346,23 +478,38 @@ class Store:
         if pinned_only:
             q += " AND pinned=1"
         with self._lock:
-            rows = self._db.execute(q + " ORDER BY pinned DESC, id").fetchall()
+            rows = self._conn().execute(q + " ORDER BY pinned DESC, id").fetchall()
         return [_proposal_row(r) for r in rows]
 
     def is_open(self, group_id: int) -> bool:
         with self._lock:
-            r = self._db.execute("SELECT open FROM proposals WHERE id=?", (group_id,)).fetchone()
+            r = self._conn().execute("SELECT open FROM proposals WHERE id=?", (group_id,)).fetchone()
         return bool(r and r[0])
 
     # -- deferred ----------------------------------------------------------------------------
-    def defer(self, fingerprints: Iterable[str]) -> None:
+    def defer(self, fingerprints: Iterable[str]) -> dict[str, float | None]:
+        """Leave photos for later; returns their previous deferred times (None: not deferred), for undo."""
         now = time.time()
         with self.transaction() as db:
-            db.executemany("INSERT OR REPLACE INTO deferred VALUES (?, ?)", [(fp, now) for fp in fingerprints])
+            previous = {}
+            for fp in fingerprints:
+                r = db.execute("SELECT time FROM deferred WHERE fingerprint=?", (fp,)).fetchone()
+                previous[fp] = r[0] if r else None
+            db.executemany("INSERT OR REPLACE INTO deferred VALUES (?, ?)", [(fp, now) for fp in previous])
+            return previous
+
+    def restore_deferred(self, previous: dict[str, float | None]) -> None:
+        """Put deferred times back as `defer` found them."""
+        with self.transaction() as db:
+            for fp, t in previous.items():
+                if t is None:
+                    db.execute("DELETE FROM deferred WHERE fingerprint=?", (fp,))
+                else:
+                    db.execute("INSERT OR REPLACE INTO deferred VALUES (?, ?)", (fp, t))
 
     def deferred(self) -> dict[str, float]:
         with self._lock:
-            return dict(self._db.execute("SELECT fingerprint, time FROM deferred").fetchall())
+            return dict(self._conn().execute("SELECT fingerprint, time FROM deferred").fetchall())
 
     # -- relearned versions ------------------------------------------------------------------
     def add_relearn_version(self, extractor: str, settings: dict, figures: dict, state: bytes) -> int:
@@ -375,14 +522,14 @@ class Store:
 
     def relearn_versions(self) -> list[dict]:
         with self._lock:
-            rows = self._db.execute("SELECT id, time, extractor, settings, figures, active FROM relearn_versions "
+            rows = self._conn().execute("SELECT id, time, extractor, settings, figures, active FROM relearn_versions "
                                     "ORDER BY id").fetchall()
         return [dict(id=r[0], time=r[1], extractor=r[2], settings=json.loads(r[3]), figures=json.loads(r[4]),
                      active=bool(r[5])) for r in rows]
 
     def relearn_state(self, version: int) -> bytes:
         with self._lock:
-            r = self._db.execute("SELECT state FROM relearn_versions WHERE id=?", (version,)).fetchone()
+            r = self._conn().execute("SELECT state FROM relearn_versions WHERE id=?", (version,)).fetchone()
         if r is None:
             raise StoreError(f"no relearned version {version}")
         return r[0]
@@ -397,7 +544,7 @@ class Store:
 
     def active_relearn_version(self) -> int | None:
         with self._lock:
-            r = self._db.execute("SELECT id FROM relearn_versions WHERE active=1").fetchone()
+            r = self._conn().execute("SELECT id FROM relearn_versions WHERE active=1").fetchone()
         return r[0] if r else None
 
 
@@ -411,24 +558,67 @@ def _split_sql(script: str) -> list[str]:
     return [s.strip() for s in script.split(";") if s.strip()]
 
 
-class _Transaction:
-    """`with store.transaction() as db:` — BEGIN IMMEDIATE ... COMMIT, ROLLBACK on error."""
+def _remove_stale_temporaries(directory: Path) -> None:
+    """Delete stores left half made by a process that died while creating one."""
+    for tmp in directory.glob(f".{STORE_FILE}.new-*"):
+        try:
+            pid = int(tmp.name.split(".new-")[1].split("-")[0])
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            tmp.unlink(missing_ok=True)
+        except (ValueError, IndexError, OSError):
+            pass  # not ours to judge, or the process lives
 
-    def __init__(self, db: sqlite3.Connection, lock: threading.RLock):
-        self._db, self._lock = db, lock
+
+_BUSY_SECONDS = 30.0    # how long a write waits for another process's transaction before giving up
+
+
+class _Transaction:
+    """BEGIN IMMEDIATE ... COMMIT (ROLLBACK on error) holding the store's lock; inside another
+    transaction of the same thread, a SAVEPOINT that joins it."""
+
+    def __init__(self, store: Store):
+        self._store = store
 
     def __enter__(self) -> sqlite3.Connection:
-        self._lock.acquire()
+        st = self._store
+        st._lock.acquire()
         try:
-            self._db.execute("BEGIN IMMEDIATE")
+            db = st._conn()
+            if st.read_only:
+                raise StoreError(f"the project store {st.directory} is read-only (no write access): reading "
+                                 "(status, export) works, changing the project does not")
+            if st._depth == 0:
+                try:
+                    db.execute("BEGIN IMMEDIATE")
+                except sqlite3.OperationalError as exc:
+                    raise StoreError(f"the project store {st.path} is busy or cannot be written ({exc}); "
+                                     "try again") from exc
+            else:
+                db.execute(f"SAVEPOINT s{st._depth}")
+            st._depth += 1
         except BaseException:
-            self._lock.release()
+            st._lock.release()
             raise
-        return self._db
+        return db
 
     def __exit__(self, exc_type, exc, tb):
+        st = self._store
         try:
-            self._db.execute("ROLLBACK" if exc_type else "COMMIT")
+            st._depth -= 1
+            db = st._conn()
+            if st._depth > 0:
+                if exc_type:
+                    db.execute(f"ROLLBACK TO s{st._depth}")
+                db.execute(f"RELEASE s{st._depth}")
+            elif exc_type:
+                db.execute("ROLLBACK")
+            else:
+                try:
+                    db.execute("COMMIT")
+                except sqlite3.Error as err:
+                    db.execute("ROLLBACK")
+                    raise StoreError(f"could not save to the project store {st.path}: {err}") from err
         finally:
-            self._lock.release()
+            st._lock.release()
         return False

@@ -66,6 +66,28 @@ def test_mutual_mask_and_bursts():
     assert bursts(sims, idx, 0.95).tolist() == [0, 0, -1, -1]
 
 
+def _mutual_by_definition(idx, k):
+    rows = [set(int(j) for j in r[:k] if j >= 0) for r in idx]
+    return [[bool(j >= 0 and i in rows[j]) for j in r[:k]] for i, r in enumerate(idx)]
+
+
+def test_mutual_mask_ignores_padded_neighbours():
+    # Photo 2 lists 1 but 1 does not list 2; photo 2's padding (-1) once encoded as the pair (1, 2)
+    # (2 * 3 - 1 == 1 * 3 + 2) and made 1 look mutual with 2.
+    idx = np.array([[1, 2], [0, -1], [1, -1]])
+    assert mutual_mask(idx, 2).tolist() == [[True, False], [True, False], [False, False]]
+    # Random padded lists against the definition.
+    rng = np.random.default_rng(0)
+    for n in (2, 3, 5, 9):
+        for _ in range(50):
+            k = int(rng.integers(1, n + 1))
+            idx = np.full((n, k), -1)
+            for i in range(n):
+                others = rng.permutation([j for j in range(n) if j != i])[: int(rng.integers(0, min(k, n - 1) + 1))]
+                idx[i, : len(others)] = others
+            assert mutual_mask(idx, k).tolist() == _mutual_by_definition(idx, k)
+
+
 def test_graph_on_digits_entropy_tracks_purity(digits):
     # The neighbourhood-entropy rule (a rule of the field): low entropy, class-consistent neighbours.
     x, y = digits

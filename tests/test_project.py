@@ -8,6 +8,7 @@ from collections import Counter
 import numpy as np
 import pytest
 
+from core import project
 from core.project import Project, ProjectError
 
 
@@ -101,7 +102,7 @@ def test_split_gives_two_parts_shown_first(photo_project_folder):
         photos = p.photos()
         mixed = [q for q in photos if truth_of(q) in ("chelsea", "rocket")]
         # Make a mixed group the way the engine would offer one: through a stored proposal.
-        gid = p.store.replace_open_proposals([dict(members=mixed, trust=0.5, kind="new area")])[0]
+        gid = p.store.update_open_proposals((), [dict(members=mixed, trust=0.5, kind="new area")])[0]
         parts = p.split(gid)
         assert len(parts) == 2
         assert sorted(m for g in parts for m in g.members) == sorted(mixed)
@@ -114,7 +115,7 @@ def test_split_gives_two_parts_shown_first(photo_project_folder):
         assert again[0].id == gid and again[0].members == mixed
         assert not {g.id for g in parts} & {g.id for g in again}
         # A group too small to split is refused with the reason; nothing is logged.
-        small = p.store.replace_open_proposals([dict(members=mixed[:3], trust=0.5, kind="new area")])[0]
+        small = p.store.update_open_proposals((), [dict(members=mixed[:3], trust=0.5, kind="new area")])[0]
         decisions = p.store.decision_count()
         with pytest.raises(ProjectError, match="at least 8"):
             p.split(small)
@@ -184,3 +185,65 @@ def test_store_schema_version_and_wal(photo_project_folder):
         assert p.store.schema_version() == SCHEMA_VERSION
         # WAL keeps readers (a second `kinfold status`) from blocking on the writer (SQLite docs).
         assert p.store._db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+
+
+def test_group_numbers_stay_until_decided(scanned_demo, tmp_path):
+    """Issue 16: a proposed group keeps its number across proposals, reopening, the CLI and the window,
+    and the first groups do not depend on --limit (the README quick start relies on it)."""
+    def kinfold(*args):
+        r = subprocess.run([sys.executable, "-m", "core.cli", *map(str, args)], capture_output=True, text=True)
+        assert r.returncode == 0, r.stderr
+        return r.stdout
+
+    def shown(groups):
+        return [(g["id"], g["members"]) if isinstance(g, dict) else (g.id, g.members) for g in groups]
+
+    # Fresh copies of one state: the groups formed do not depend on how many are asked for.
+    fresh = []
+    for n in (1, 2, 3, 7):
+        folder = tmp_path / f"fresh{n}"
+        shutil.copytree(scanned_demo, folder)
+        fresh.append(shown(json.loads(kinfold("propose", folder, "--json", "--limit", n))))
+    assert [len(f) for f in fresh] == [1, 2, 3, 7]
+    assert all(f == fresh[-1][: len(f)] for f in fresh)
+    # One folder, asked again and again: the same groups under the same numbers.
+    folder = tmp_path / "fresh7"
+    for n in (1, 2, 3):
+        assert shown(json.loads(kinfold("propose", folder, "--json", "--limit", n))) == fresh[-1][:n]
+    with Project.open(folder) as p:
+        first = p.propose(limit=7)
+        assert shown(first) == fresh[-1]
+        assert shown(p.propose(limit=7)) == shown(first)
+        # Deciding one group leaves the others' numbers alone.
+        p.accept(first[1].id, "drawer part")
+        rest = {g.id: g.members for g in p.propose(limit=20)}
+        assert all(rest[g.id] == g.members for g in first if g.id != first[1].id)
+        assert first[1].id not in rest
+        before_close = shown(p.propose(limit=20))
+    # Reopened: the same.
+    with Project.open(folder) as p:
+        assert shown(p.propose(limit=20)) == before_close
+    # A number shown earlier is accepted by the CLI, and the others keep theirs.
+    status = json.loads(kinfold("accept", folder, first[2].id, "spring", "--json"))
+    assert status["by_label"]["spring"] == len(first[2].members)
+    after = dict(shown(json.loads(kinfold("propose", folder, "--json", "--limit", 100))))
+    assert all(after[i] == m for i, m in before_close if i != first[2].id)
+    with Project.open(folder) as p:
+        assert all(p.group(i).members == m and p.store.is_open(i) for i, m in before_close if i != first[2].id)
+
+
+def test_groups_only_peeked_at_are_formed_again_after_a_decision(photo_project_folder):
+    with Project.open(photo_project_folder) as p:
+        first, *peeked = p.propose(limit=3, hold=1)
+        assert peeked
+        # Asked again before any decision: the very same groups.
+        assert [(g.id, g.members) for g in p.propose(limit=3, hold=1)] == [(first.id, first.members)] + [
+            (g.id, g.members) for g in peeked]
+        p.accept(first.id, "thing")
+        p.propose(limit=3, hold=1)
+        assert not any(p.store.is_open(g.id) for g in peeked)
+        # Held groups (the default) stay open under their ids after a decision.
+        first, *held = p.propose(limit=3)
+        p.accept(first.id, "other")
+        p.propose(limit=3)
+        assert all(p.store.is_open(g.id) and p.group(g.id).members == g.members for g in held)
