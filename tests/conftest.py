@@ -64,3 +64,12 @@ def scanned_demo(tmp_path_factory):
     with Project.open(dest, annotator="tester") as p:
         p.scan()
     return dest
+
+
+@pytest.fixture
+def demo_folder(scanned_demo, tmp_path):
+    """A private copy of the scanned demo folder, store included: a test that decides, proposes (open
+    groups keep their numbers in the store) or rescans must not change what later tests start from."""
+    dest = tmp_path / "sample_images"
+    shutil.copytree(scanned_demo, dest, symlinks=True)
+    return dest

@@ -14,16 +14,16 @@ from .conftest import ROOT
 TRUTH = load_demo_truth(ROOT / "resources" / "demo_truth.csv")
 
 
-def test_scan_skips_exactly_the_broken_and_non_image_files(scanned_demo):
-    with Project.open(scanned_demo) as p:
+def test_scan_skips_exactly_the_broken_and_non_image_files(demo_folder):
+    with Project.open(demo_folder) as p:
         rep = p.scan()
     skipped = {path for path, _ in rep.skipped}
     assert skipped == {p for p, c in TRUTH.items() if c in ("broken", "non_image")}
     assert rep.photos == sum(c not in ("broken", "non_image") for c in TRUTH.values())
 
 
-def test_bursts_are_found_and_single_class(scanned_demo):
-    with Project.open(scanned_demo) as p:
+def test_bursts_are_found_and_single_class(demo_folder):
+    with Project.open(demo_folder) as p:
         g = p.graph()
         photos = p.photos()
     ids = [b for b in np.unique(g.burst) if b >= 0]
@@ -32,8 +32,8 @@ def test_bursts_are_found_and_single_class(scanned_demo):
         assert len({TRUTH[photos[i]] for i in np.nonzero(g.burst == b)[0]}) == 1
 
 
-def test_bursts_travel_together(scanned_demo):
-    with Project.open(scanned_demo) as p:
+def test_bursts_travel_together(demo_folder):
+    with Project.open(demo_folder) as p:
         g = p.graph()
         photos = p.photos()
         groups = p.propose(limit=200)
@@ -43,8 +43,8 @@ def test_bursts_travel_together(scanned_demo):
         assert len({where.get(m) for m in members}) == 1
 
 
-def test_label_a_few_groups_and_export_loads_in_pycocotools(scanned_demo, tmp_path):
-    with Project.open(scanned_demo) as p:
+def test_label_a_few_groups_and_export_loads_in_pycocotools(demo_folder, tmp_path):
+    with Project.open(demo_folder) as p:
         for _ in range(5):
             gr = p.propose(limit=1)[0]
             classes = [TRUTH[m] for m in gr.members]

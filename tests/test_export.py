@@ -455,16 +455,18 @@ def test_export_recognises_its_own_files(tmp_path):
         export_csv(tmp_path / "fifo.csv", photos)
 
 
-def test_export_outside_the_demo_folder_still_works(scanned_demo, tmp_path, monkeypatch):
+def test_export_outside_the_demo_folder_still_works(demo_folder, tmp_path, monkeypatch):
     from core.project import Project
 
-    monkeypatch.chdir(tmp_path)  # relative destinations, as in README's quick start
-    with Project.open(scanned_demo, annotator="tester") as p:
+    work = tmp_path / "work"
+    work.mkdir()
+    monkeypatch.chdir(work)  # relative destinations, as in README's quick start
+    with Project.open(demo_folder, annotator="tester") as p:
         p.label(p.photos()[:5], "washer")
         written = p.export(csv="labels.csv", coco="labels.json", folders="out", split=(0.8, 0.2))
         again = p.export(csv="labels.csv", coco="labels.json", folders="out", split=(0.8, 0.2))
     assert written == again and written["csv"] == 5
-    assert sorted(entries(tmp_path)) == ["labels.csv", "labels.json", "out"]
+    assert sorted(entries(work)) == ["labels.csv", "labels.json", "out"]
 
 
 def _tree(root):

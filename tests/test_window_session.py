@@ -69,7 +69,17 @@ def type_text(text):
 
 
 def settle(qtbot, w, timeout=60_000):
+    """Wait for the engine thread, then look the current group over as a careful person does (an
+    accept asks first while some members were never on screen; tests/test_grid_layout.py checks that)."""
     qtbot.waitUntil(w.idle, timeout=timeout)
+    grid = w.group_page.grid
+    if w.stack.currentWidget() is w.work and w.current() is not None:
+        bar = grid.verticalScrollBar()
+        for value in range(0, bar.maximum() + bar.pageStep(), max(bar.pageStep(), 1)):
+            bar.setValue(value)
+            qtbot.wait(20)
+        qtbot.waitUntil(lambda: not grid.unseen_paths(), timeout=timeout)
+        bar.setValue(0)
 
 
 def answer_next_question(choose):
