@@ -58,7 +58,7 @@ class ProjectError(Exception):
 @dataclass
 class ScanReport:
     photos: int                                   # photos ready to propose
-    new: int
+    new: int                                      # new photos ready (files left out are in skipped)
     changed: int
     removed: int
     embedded: int                                 # photos embedded by this scan
@@ -295,7 +295,9 @@ class Project:
             self._load_catalogue()
         shown = [(p, v[2]) for p, v in skipped.items()]
         shown += [(p, f"{reason} (tried again at the next scan)") for p, reason in retry.items()]
-        return ScanReport(photos=len(self._rows), new=len(cat.new), changed=len(cat.changed),
+        ready = {r.path for r in photos}  # new and changed count photos, not files later left out
+        return ScanReport(photos=len(self._rows), new=sum(p in ready for p in cat.new),
+                          changed=sum(p in ready for p in cat.changed),
                           removed=len(cat.removed), embedded=embedded, skipped=sorted(shown),
                           cancelled=cancelled, seconds=time.perf_counter() - t0)
 

@@ -247,3 +247,15 @@ def test_groups_only_peeked_at_are_formed_again_after_a_decision(photo_project_f
         p.accept(first.id, "other")
         p.propose(limit=3)
         assert all(p.store.is_open(g.id) and p.group(g.id).members == g.members for g in held)
+
+
+def test_fresh_scan_counts_new_photos_not_files_left_out(tmp_path):
+    """'345 photos ready (346 new …)' was reported: a file found new and then left out (a truncated
+    JPEG) counted as new. New counts photos ready; the file is listed among the skipped."""
+    from .conftest import _photo_folder
+
+    folder = _photo_folder(tmp_path / "photos")              # 30 photos, a truncated JPEG, a text file
+    with Project.open(folder, annotator="tester") as p:
+        rep = p.scan()
+    assert rep.new == rep.photos == 30
+    assert {path for path, _ in rep.skipped} == {"b/broken.jpg", "notes.txt"}
