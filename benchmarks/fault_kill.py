@@ -45,7 +45,6 @@ from __future__ import annotations
 
 import argparse
 import hashlib
-import inspect
 import json
 import os
 import random
@@ -70,7 +69,20 @@ VERBS = ("scan", "label", "accept", "split", "undo", "later", "relearn", "export
 DECISION_VERBS = ("label", "accept", "split", "undo", "later", "clear")
 LABELS = ("hex nut", "washer", "coil spring", "spur gear", "fuse", "key blank")
 EXPORTS = {"csv": "labels.csv", "coco": "labels.coco.json", "folders": "classes"}
+# What Kinfold keeps in its store folder for good (core/store.py, core/project.py): the store with its
+# WAL files, the folder lock, and one neighbour-graph cache graph-<16 hex>.npz.
 STORE_FILES = {"kinfold.sqlite", "kinfold.sqlite-wal", "kinfold.sqlite-shm", "lock"}
+_GRAPH_CACHE = re.compile(r"graph-[0-9a-f]{16}\.npz")
+# Kinfold's temporaries, by what made them; anything else found is listed as "unknown".
+_TEMPORARY_KINDS = (
+    (re.compile(r"\.kinfold\.sqlite\.new-\d+-[0-9a-f]+(-wal|-shm)?$"), "a new store being made"),
+    (re.compile(r"graph-\d+-\d+\.tmp\.npz$"), "a graph cache being written"),
+    (re.compile(r"^\..*\.kinfold-(tmp|old|oldcut)-[0-9a-f]{8}-\d+-[0-9a-z]{8}$"), "an export's temporary"),
+)
+
+
+def temporary_kind(name: str) -> str:
+    return next((what for rx, what in _TEMPORARY_KINDS if rx.search(name)), "unknown")
 
 
 # ------------------------------------------------------------------ export digests (shared)
@@ -129,15 +141,10 @@ def export_digest(path: Path, kind: str, normal: bool = False) -> str | None:
 
 
 def run_export(p, dests: dict[str, Path]) -> dict:
-    """CSV, COCO and class folders in that order, as `kinfold export --csv --coco --folders` does.
-    Passes overwrite=True where the method takes it (a later Kinfold refuses to replace files it
-    cannot tell are its own)."""
-    out = {}
-    for kind, method in (("csv", p.export_csv), ("coco", p.export_coco), ("folders", p.export_folders)):
-        kw = {"overwrite": True} if "overwrite" in inspect.signature(method).parameters else {}
-        r = method(str(dests[kind]), **kw)
-        out[kind] = r if isinstance(r, (int, dict)) else str(r)
-    return out
+    """CSV, COCO and class folders in one call, as `kinfold export --csv --coco --folders --overwrite`
+    does: all or nothing across the formats."""
+    r = p.export(csv=str(dests["csv"]), coco=str(dests["coco"]), folders=str(dests["folders"]), overwrite=True)
+    return {k: v if isinstance(v, (int, dict)) else str(v) for k, v in r.items()}
 
 
 # ------------------------------------------------------------------ the driver (killed process)
@@ -161,6 +168,20 @@ def _max_ids(p) -> tuple[int, int]:
                      for t in ("decisions", "proposals"))
     finally:
         db.close()
+
+
+def _state_of(p, fps) -> dict:
+    """Each photo's label row (state, label) or None, whether it is left for later, and the open
+    groups, read with plain SQL at the moment the targeted call begins."""
+    db = sqlite3.connect(f"file:{p.store.path}?mode=ro", uri=True)
+    try:
+        labels = {r[0]: [r[1], r[2]] for r in db.execute("SELECT fingerprint, state, label FROM labels")}
+        deferred = {r[0] for r in db.execute("SELECT fingerprint FROM deferred")}
+        open_groups = sorted(r[0] for r in db.execute("SELECT id FROM proposals WHERE open=1"))
+    finally:
+        db.close()
+    return dict(labels={fp: labels.get(fp) for fp in fps}, deferred=sorted(set(fps) & deferred),
+                open_groups=open_groups)
 
 
 def _paths_of_label(p, label: str) -> list[str]:
@@ -226,8 +247,8 @@ class _Steps:
     Killing before a chosen step hits the short windows between two transactions, or between two
     renames, as often as any other moment, which a clock rarely manages."""
 
-    FILE_OPS = ((os, "replace"), (os, "rename"), (os, "unlink"), (os, "remove"), (os, "rmdir"),
-                (shutil, "rmtree"), (tempfile, "mkstemp"), (tempfile, "mkdtemp"))
+    FILE_OPS = ((os, "replace"), (os, "rename"), (os, "link"), (os, "unlink"), (os, "remove"), (os, "rmdir"),
+                (os, "mkdir"), (shutil, "rmtree"), (tempfile, "mkstemp"), (tempfile, "mkdtemp"))
     _LITERALS = re.compile(r"X'[0-9A-Fa-f]*'|'(?:[^']|'')*'|\b\d+(?:\.\d+)?\b")
 
     def __init__(self):
@@ -278,6 +299,14 @@ class _Steps:
                 finally:
                     self.inside = False
             setattr(module, name, wrapped)
+        real_open = os.open
+
+        def os_open(path, flags, *args, **kwargs):   # a file created (an export's temporary)
+            if flags & os.O_CREAT and not self.inside:
+                self._seen.clear()
+                self.step("os.open(O_CREAT)")
+            return real_open(path, flags, *args, **kwargs)
+        os.open = os_open
 
 
 def driver(spec: dict) -> None:
@@ -346,6 +375,8 @@ def driver(spec: dict) -> None:
     else:
         raise SystemExit(f"unknown verb {verb}")
     max_dec, max_prop = _max_ids(p)
+    fps = info.get("fps") or list((info.get("target") or {}).get("before") or {})
+    info["at_begin"] = _state_of(p, fps)
     log.note("begin", verb=verb, max_decision=max_dec, max_proposal=max_prop, **info)
     print("BEGIN", flush=True)
     steps.kill_at = spec.get("kill_at_step")
@@ -361,7 +392,7 @@ def driver(spec: dict) -> None:
     steps.armed = False
     seconds = time.perf_counter() - t0
     extra: dict = {}
-    if verb in ("label", "accept"):
+    if verb in ("label", "accept", "later"):
         extra = dict(decision=result)
     elif verb == "split":
         extra = dict(parts=[dict(id=g.id, members=g.members) for g in result])
@@ -542,15 +573,17 @@ class Checker:
                     return f"undo of decision {target}: photo {fp[:8]} is {s['labels'].get(fp)}, not {want}"
             return None
         if verb == "later":
-            undone = any(d["kind"] == "undo" and i > after and dec.get(d["undoes"], {}).get("group") == e["group"]
-                         for i, d in dec.items())
-            if undone:   # a Kinfold that logs `later` can undo it: the photos are back in the pool
-                return None
+            d = dec.get(e["decision"])
+            if d is None or d["kind"] != "later" or d["group"] != e["group"]:
+                return f"later decision {e['decision']} on group {e['group']} is not in the log"
+            if any(x["kind"] == "undo" and x["undoes"] == e["decision"] for x in dec.values()):
+                return None   # undone: the photos are back in the pool
+            if set(d["before"]) != set(e["fps"]):
+                return f"later decision {e['decision']} does not list the group's photos for undo"
             kept = [fp for fp in e["fps"] if fp not in s["deferred"] and not self._changed_after(s, fp, after)]
             if kept:
                 return f"later of group {e['group']}: {len(kept)} of {len(e['fps'])} photos are not left for later"
-            reopened = any(i > after for i in dec)
-            if s["props"].get(e["group"], {}).get("open") and not reopened:
+            if s["props"].get(e["group"], {}).get("open"):
                 return f"group {e['group']} left for later is still open"
             return None
         if verb == "relearn":
@@ -561,37 +594,92 @@ class Checker:
 
     # -- a killed call: all or nothing? ---------------------------------------------------------
     def half_done(self, b: dict, s: dict) -> str | None:
+        """A killed call is all or nothing: either its decision is logged with every effect, or
+        nothing of it is in the store (labels, photos left for later, groups as at its start)."""
         verb, dec, props = b["verb"], s["dec"], s["props"]
         new = {i: d for i, d in dec.items() if i > b["max_decision"]}
+        at = b["at_begin"]
+        was_open = set(at["open_groups"])
+
+        def is_open(gid) -> bool:
+            return bool(props.get(gid, {}).get("open"))
+
+        def labels_as(want: dict) -> list[str]:
+            """Photos whose label row is not `want` ({fp: [state, label] or None})."""
+            return [fp[:8] for fp, w in want.items()
+                    if (None if w is None else tuple(w[:2])) != s["labels"].get(fp)]
+
+        def deferred_as(fps, want: set) -> list[str]:
+            return [fp[:8] for fp in fps if (fp in s["deferred"]) != (fp in want)]
+
+        def untouched() -> str | None:
+            """The call is not logged: nothing of it may be in the store."""
+            wrong = labels_as(at["labels"])
+            wrong_d = deferred_as(at["labels"], set(at["deferred"]))
+            reopened = [g for g in at["open_groups"] if not is_open(g)]
+            if wrong or wrong_d or reopened:
+                return (f"{verb} not logged, yet labels changed for {wrong}, photos left for later changed for "
+                        f"{wrong_d}, groups closed {reopened[:5]}")
+            return None
+
+        if verb == "label":
+            logged = [d for d in new.values() if d["kind"] == "label" and d["label"] == b["label"]]
+            if not logged:
+                why = untouched()
+                return why and f"label half done: {why}"
+            wrong = labels_as({fp: ["labelled", b["label"]] for fp in b["fps"]})
+            return f"label logged but photos {wrong} do not carry {b['label']!r}" if wrong else None
+        if verb == "accept":
+            logged = [i for i, d in new.items() if d["kind"] == "accept" and d["group"] == b["group"]]
+            if not logged:
+                why = untouched()
+                return why and f"accept of group {b['group']} half done: {why}"
+            members = dict(zip(b["members"], b["fps"]))
+            want = {fp: ["labelled", b["label"]] for m, fp in members.items()
+                    if m not in b["drop"] and at["labels"].get(fp) is None}
+            wrong = labels_as(want)
+            unrejected = [fp[:8] for m, fp in members.items()
+                          if m in b["drop"] and (fp, b["label"], logged[0]) not in s["rejections"]]
+            if wrong or unrejected or is_open(b["group"]):
+                return (f"accept of group {b['group']} half done: logged, yet photos {wrong} are not labelled, "
+                        f"{unrejected} taken out are not recorded, the group open={is_open(b['group'])}")
+            return None
         if verb == "split":
             logged = any(d["kind"] == "split" and d["group"] == b["group"] for d in new.values())
-            parts = [i for i, r in props.items() if i > b["max_proposal"] and r["kind"] == "split part"]
-            closed = not props.get(b["group"], {}).get("open", True)
+            parts = [i for i, r in props.items() if i > b["max_proposal"] and r["kind"] == "split part" and r["open"]]
+            closed = not is_open(b["group"])
             if logged == bool(parts) == closed:
                 return None
             return (f"split of group {b['group']} half done: decision logged={logged}, parts stored={bool(parts)}, "
                     f"group closed={closed}")
         if verb == "later":
-            deferred = [fp for fp in b["fps"] if fp in s["deferred"]]
-            closed = not props.get(b["group"], {}).get("open", True)
-            if (len(deferred) == len(set(b["fps"])) and closed) or (not deferred and not closed):
-                return None
-            return (f"later of group {b['group']} half done: {len(deferred)} of {len(set(b['fps']))} photos left "
-                    f"for later, group closed={closed}")
+            logged = [d for d in new.values() if d["kind"] == "later" and d["group"] == b["group"]]
+            if not logged:
+                why = untouched()
+                return why and f"later of group {b['group']} half done: {why}"
+            wrong = deferred_as(b["fps"], set(b["fps"]))
+            if wrong or is_open(b["group"]):
+                return (f"later of group {b['group']} half done: logged, yet photos {wrong} are not left for "
+                        f"later and the group open={is_open(b['group'])}")
+            return None
         if verb == "undo" and b.get("target"):
             t = b["target"]
             logged = any(d["kind"] == "undo" and d["undoes"] == t["id"] for d in new.values())
-            if t["kind"] in ("accept", "split") and t["group"] is not None:
-                reopened = props.get(t["group"], {}).get("open", False)
-                if logged != reopened:
-                    return (f"undo of {t['kind']} {t['id']} half done: undo logged={logged}, "
-                            f"group {t['group']} reopened={reopened}")
+            if not logged:
+                why = untouched()
+                if why is None and t["group"] is not None and t["kind"] in ("accept", "split", "later") \
+                        and is_open(t["group"]) and t["group"] not in was_open:
+                    why = f"group {t['group']} reopened"
+                return why and f"undo of {t['kind']} {t['id']} half done: {why}"
+            if t["kind"] == "later":
+                wrong = deferred_as(t["before"], {fp for fp, prev in t["before"].items() if prev is not None})
+            else:
+                wrong = labels_as(t["before"])
+            reopened = t["group"] is None or t["kind"] not in ("accept", "split", "later") or is_open(t["group"])
+            if wrong or not reopened:
+                return (f"undo of {t['kind']} {t['id']} half done: logged, yet photos {wrong} are not as before "
+                        f"and group {t['group']} reopened={reopened}")
             return None
-        if verb == "accept":
-            logged = any(d["kind"] == "accept" and d["group"] == b["group"] for d in new.values())
-            closed = not props.get(b["group"], {}).get("open", True)
-            if logged != closed:
-                return f"accept of group {b['group']} half done: logged={logged}, group closed={closed}"
         return None
 
     # -- exports -------------------------------------------------------------------------------------
@@ -636,8 +724,7 @@ class Checker:
         out = []
         for p in sorted(self.store_dir.iterdir()) if self.store_dir.is_dir() else []:
             name = p.name
-            is_cache = name.startswith("graph-") and name.endswith(".npz") and len(name) == len("graph-") + 16 + 4
-            if name not in STORE_FILES and not is_cache:
+            if name not in STORE_FILES and not _GRAPH_CACHE.fullmatch(name):
                 out.append(str(p.relative_to(self.work)))
         if self.export_dir.is_dir():
             wanted = set(EXPORTS.values())
@@ -965,8 +1052,8 @@ def report(fig: Figures, rerun: str) -> str:
     listing("integrity failures", fig.integrity_failures)
     listing("half-done decisions", fig.half)
     listing("partial exports", fig.partial_exports)
-    listing("leftover temporaries (path: round after which the next run left it)",
-            (f"{k}: {v}" for k, v in fig.leftover_temporaries.items()))
+    listing("leftover temporaries (path [what made it]: round after which the next run left it)",
+            (f"{k} [{temporary_kind(Path(k).name)}]: {v}" for k, v in fig.leftover_temporaries.items()))
     listing("next-run failures", fig.next_run_failures)
     listing("notes", fig.notes, 30)
     lines.append(f"rerun: python -m benchmarks.fault_kill {rerun}")
