@@ -66,6 +66,7 @@ if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
 VERBS = ("scan", "label", "accept", "split", "undo", "later", "relearn", "export")
+CLI_VERBS = ("accept", "export")      # also killed as `python -m core.cli VERB ...` subprocesses
 DECISION_VERBS = ("label", "accept", "split", "undo", "later", "clear")
 LABELS = ("hex nut", "washer", "coil spring", "spur gear", "fuse", "key blank")
 EXPORTS = {"csv": "labels.csv", "coco": "labels.coco.json", "folders": "classes"}
@@ -285,7 +286,9 @@ class _Steps:
             db.set_trace_callback(self._sql)
             return db
         sqlite3.connect = connect
-        for module, name in self.FILE_OPS:
+        from core import export as export_mod   # its one-step swap of two folders is a file operation too
+
+        for module, name in self.FILE_OPS + ((export_mod, "_exchange"),):
             real = getattr(module, name)
 
             def wrapped(*args, _real=real, _name=f"{module.__name__}.{name}", **kwargs):
@@ -415,6 +418,29 @@ def driver(spec: dict) -> None:
         time.sleep(3600)  # wait for the kill: the process is killed after the call too
 
 
+def cli_driver(spec: dict) -> int:
+    """`python -m core.cli ARGS` as it runs for a user, with its steps counted from the start of the
+    process (store statements and file operations, as in the driver) and, with `kill_at_step`,
+    a SIGKILL just before one of them. The count goes to `steps_file` when the command ends."""
+    import runpy
+
+    steps = _Steps()
+    steps.install()
+    steps.kill_at = spec.get("kill_at_step")
+    steps.armed = True
+    sys.argv = [str(ROOT / "core" / "cli.py"), *spec["argv"]]
+    code = 0
+    try:
+        runpy.run_module("core.cli", run_name="__main__", alter_sys=True)
+    except SystemExit as exc:
+        code = exc.code if isinstance(exc.code, int) else 1
+    finally:
+        steps.armed = False
+        with open(spec["steps_file"], "w", encoding="utf-8") as f:
+            json.dump(dict(steps=steps.n, names=steps.names), f)
+    return code
+
+
 # ------------------------------------------------------------------ the checker (this process)
 
 @dataclass
@@ -481,6 +507,8 @@ class Checker:
         self.estimate: dict[str, float] = dict.fromkeys(VERBS, 0.002) | dict(scan=4.0, relearn=2.0, export=0.1,
                                                                             split=0.02)
         self.steps: dict[str, int] = dict.fromkeys(VERBS, 8) | dict(scan=18, export=30)
+        self.estimate |= {"cli accept": 2.0, "cli export": 2.5}
+        self.steps |= {"cli accept": 20, "cli export": 40}
         self.step_names: dict[str, list[str]] = {}
         self.prev_export: dict[str, str | None] = {}
         self.returned: list[dict] = []     # every returned call so far (rechecked after every kill)
@@ -792,6 +820,126 @@ class Checker:
         for p in originals:
             os.utime(p, (now, now))
 
+    # -- the command line --------------------------------------------------------------------------
+    def _cli_prepare(self, rnd: int, verb: str) -> tuple[list[str], dict]:
+        """The command's arguments and its begin event (what the store held when it was started).
+        For `accept` a group is picked here, after ordinary decisions like the driver's."""
+        from core.project import Project
+
+        rng = random.Random(f"{self.seed}/cli/{rnd}")
+        info: dict = {}
+        folder = str(self.folder)
+        with Project.open(self.folder, annotator="fault-kill") as p:
+            if verb == "accept":
+                log = _Log(str(self.log_path), rnd)
+                _free_up(p, rng, log)
+                g = _pick_group(p, rng)
+                if g is None:
+                    raise RuntimeError("no group to accept")
+                drop = rng.sample(g.members[1:], min(len(g.members) - 1, rng.randint(0, 2)))
+                label = g.suggested_label or rng.choice(LABELS)
+                info = dict(group=g.id, members=g.members, fps=[_fp(p, m) for m in g.members], drop=drop,
+                            label=label)
+                argv = ["accept", folder, str(g.id), label, "--annotator", "fault-kill"]
+                argv += ["--drop", *drop] if drop else []
+            else:
+                argv = ["export", folder, "--csv", str(self.dests["csv"]), "--coco", str(self.dests["coco"]),
+                        "--folders", str(self.dests["folders"]), "--overwrite"]
+            max_dec, max_prop = _max_ids(p)
+            info["at_begin"] = _state_of(p, info.get("fps", []))
+        begin = dict(round=rnd, event="begin", verb=verb, max_decision=max_dec, max_proposal=max_prop, **info)
+        return argv, begin
+
+    def _cli_spawn(self, argv: list[str], kill_at_step: int | None, counted: bool):
+        env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+        err = open(self.stderr_path, "a")
+        err.write(f"--- kinfold {' '.join(argv[:1])}\n")
+        err.flush()
+        if counted:
+            spec = dict(argv=argv, kill_at_step=kill_at_step, steps_file=str(self.work / "cli-steps.json"))
+            cmd = [sys.executable, "-m", "benchmarks.fault_kill", "--cli-driver", json.dumps(spec)]
+        else:
+            cmd = [sys.executable, "-m", "core.cli", *argv]     # exactly what a user runs
+        return subprocess.Popen(cmd, cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=err)
+
+    def calibrate_cli(self) -> None:
+        """Each command once, not killed, its steps counted: the estimates for its kills."""
+        for i, verb in enumerate(CLI_VERBS):
+            rnd = -100 - i
+            argv, begin = self._cli_prepare(rnd, verb)
+            t0 = time.perf_counter()
+            rc = self._cli_spawn(argv, None, True).wait(timeout=600)
+            seconds = time.perf_counter() - t0
+            counted = json.loads((self.work / "cli-steps.json").read_text())
+            name = f"cli {verb}"
+            self.estimate[name], self.steps[name], self.step_names[name] = seconds, counted["steps"], counted["names"]
+            self.fig.durations[name].append(seconds)
+            if rc != 0:
+                self.fig.notes.append(f"calibration kinfold {verb} exited {rc} (see {self.stderr_path})")
+            else:
+                self._cli_returned(rnd, verb, begin)
+            self.next_run(rnd)
+
+    def _cli_returned(self, rnd: int, verb: str, begin: dict) -> dict:
+        """The command exited 0: what it did, found in the store (counted lost when it is not)."""
+        e = dict(begin, event="returned", key=(rnd, "cli"))
+        if verb == "accept":
+            s = self._snapshot()
+            found = [i for i, d in s["dec"].items()
+                     if i > begin["max_decision"] and d["kind"] == "accept" and d["group"] == begin["group"]]
+            self.fig.returned_decisions.add(e["key"])
+            if not found:
+                self.fig.lost[e["key"]] = f"round {rnd}: kinfold accept {begin['group']} exited 0, no decision logged"
+                return e
+            e.update(decision=found[0], max_decision_after=max(s["dec"]))
+        else:
+            e.update(digests={k: export_digest(d, k) for k, d in self.dests.items()})
+            self.fig.other_returned[verb] += 1
+        self.returned.append(e)
+        return e
+
+    def cli_round(self, rnd: int, verb: str, fraction: float, mode: str) -> None:
+        """Kill `kinfold accept` or `kinfold export` (the command line as a subprocess): by the clock
+        (`python -m core.cli`, a random share of its last measured run) or before one of its steps."""
+        f, name = self.fig, f"cli {verb}"
+        started = time.perf_counter()
+        before_temps = set(self.temporaries())
+        try:
+            argv, begin = self._cli_prepare(rnd, verb)
+        except RuntimeError as exc:
+            f.notes.append(f"round {rnd} {name}: {exc}")
+            return
+        self.record_returned(self._events(rnd))      # the ordinary decisions made first
+        if mode in ("step", "sweep"):
+            kill_at = int(fraction if mode == "sweep" else fraction * (self.steps.get(name, 0) + 1))
+            names = self.step_names.get(name, [])
+            what = f"before step {kill_at}/{self.steps.get(name, 0)}" + (
+                f" ({names[kill_at]})" if kill_at < len(names) else " (after the last)")
+            proc = self._cli_spawn(argv, kill_at, True)
+            rc = proc.wait(timeout=600)
+        else:
+            delay = fraction * self.estimate.get(name, 1.5)
+            what = f"at {delay * 1000:.0f} ms"
+            proc = self._cli_spawn(argv, None, False)
+            try:
+                rc = proc.wait(timeout=delay)
+            except subprocess.TimeoutExpired:
+                os.kill(proc.pid, signal.SIGKILL)
+                rc = proc.wait()
+        f.kills[name] += 1
+        f.modes[(name, "step" if mode == "sweep" else mode)] += 1
+        returned = error = None
+        if rc == 0:
+            f.after_return[name] += 1
+            returned = self._cli_returned(rnd, verb, begin)
+        elif rc == -signal.SIGKILL:
+            f.in_call[name] += 1
+        else:
+            f.raised[name] += 1
+            error = dict(message=f"exit status {rc}")
+            f.notes.append(f"round {rnd} {name}: the command refused (exit status {rc}; see {self.stderr_path})")
+        self._check(rnd, verb, name, begin, returned, error, what, before_temps, started)
+
     # -- one round ---------------------------------------------------------------------------------
     def spawn(self, rnd: int, verb: str, *, exit_after: bool = False, kill_at_step: int | None = None,
               kill_at_file: float | None = None):
@@ -911,20 +1059,24 @@ class Checker:
                 f.scan_phase["embedding" if read else "hashing"] += 1
         self._learn(events)
         self.record_returned(events)
+        self._check(rnd, verb, verb, begin, returned, error, what, before_temps, started)
 
-        # Checks on the store exactly as the kill left it.
+    def _check(self, rnd: int, verb: str, name: str, begin: dict, returned: dict | None, error: dict | None,
+               what: str, before_temps: set, started: float) -> None:
+        """Checks on the store and the exports exactly as the kill left them, then the next run."""
+        f = self.fig
         temps = set(self.temporaries()) - before_temps
-        f.temporaries_after_kill += [f"round {rnd} ({verb}): {t}" for t in sorted(temps)]
+        f.temporaries_after_kill += [f"round {rnd} ({name}): {t}" for t in sorted(temps)]
         ok = self.integrity()
         if ok != "ok":
-            f.integrity_failures.append(f"round {rnd} ({verb}): {ok}")
+            f.integrity_failures.append(f"round {rnd} ({name}): {ok}")
         s = self._snapshot()
         for e in self.returned:
             if e["verb"] in DECISION_VERBS or e["verb"] == "relearn":
                 why = self.missing(e, s)
                 if why:
                     if e["verb"] in DECISION_VERBS:
-                        f.lost.setdefault(e["key"], f"round {rnd} ({verb}) found: {why}")
+                        f.lost.setdefault(e["key"], f"round {rnd} ({name}) found: {why}")
                     elif why not in f.other_lost:
                         f.other_lost.append(why)
         if returned and verb == "scan":
@@ -935,15 +1087,15 @@ class Checker:
         if not returned and not error:
             why = self.half_done(begin, s)
             if why:
-                f.half.append(f"round {rnd}: {why} [killed {what}]")
+                f.half.append(f"round {rnd} ({name}): {why} [killed {what}]")
         self.check_exports(rnd, verb, returned if verb == "export" else None, what)
 
         self.next_run(rnd)
         for t in self.temporaries():
-            f.leftover_temporaries.setdefault(t, f"round {rnd} ({verb}, killed {what})")
+            f.leftover_temporaries.setdefault(t, f"round {rnd} ({name}, killed {what})")
         if self.verbose:
             state = "error" if error else "after return" if returned else "in call"
-            print(f"round {rnd:3d} {verb:8s} {what:>44s}  {state:12s} "
+            print(f"round {rnd:3d} {name:11s} {what:>44s}  {state:12s} "
                   f"lost {len(f.lost)} half {len(f.half)} partial {len(f.partial_exports)} "
                   f"temps {len(f.leftover_temporaries)}  ({time.perf_counter() - started:.1f} s)", flush=True)
 
@@ -989,10 +1141,12 @@ def prepare(work: Path, source: Path, scanned: Path | None) -> None:
 
 def run(kills: int = 100, seed: int = 0, work: Path | None = None, source: Path = ROOT / "sample_images",
         scanned: Path | None = None, added: int = 24, verbose: bool = True, calibrate: bool = True,
-        verbs=VERBS, sweep: bool = False) -> Figures:
+        verbs=VERBS, sweep: bool = False, cli_kills: int = 10, cli_verbs=CLI_VERBS) -> Figures:
     """The whole test; `calibrate=False` skips timing each verb first (its first kill then uses a
     rough guess of the duration and of the steps). `sweep` replaces the random plan: each verb of
-    `verbs` is killed once before each of its steps, in order (the steps counted in calibration)."""
+    `verbs` is killed once before each of its steps, in order (the steps counted in calibration).
+    Then `cli_kills` kills of the command line (`cli_verbs` in turn, by clock and at a step by
+    turns; with `sweep`, each of them before each of its steps)."""
     work = Path(work) if work else Path(tempfile.mkdtemp(prefix="kinfold-fault-"))
     t0 = time.perf_counter()
     prepare(work, source, scanned)
@@ -1002,24 +1156,32 @@ def run(kills: int = 100, seed: int = 0, work: Path | None = None, source: Path 
     if verbose:
         print("calibration (s): " + ", ".join(f"{v} {c.estimate.get(v, float('nan')):.3f}" for v in VERBS),
               flush=True)
+    if cli_verbs and (cli_kills or sweep) and calibrate:
+        c.calibrate_cli()
     if sweep:
         rounds = [(v, k, "sweep") for v in verbs for k in range(c.steps[v] + 1)]
+        cli_rounds = [(v, k, "sweep") for v in cli_verbs for k in range(c.steps[f"cli {v}"] + 1)]
     else:
         rounds = plan(kills, seed, verbs)
+        rng = random.Random(f"{seed}/cli")
+        cli_rounds = [(cli_verbs[i % len(cli_verbs)], rng.random(), ("clock", "step")[(i + i // len(cli_verbs)) % 2])
+                      for i in range(cli_kills if cli_verbs else 0)]
     for rnd, (verb, fraction, mode) in enumerate(rounds):
         c.round(rnd, verb, fraction, mode)
+    for rnd, (verb, fraction, mode) in enumerate(cli_rounds, start=len(rounds)):
+        c.cli_round(rnd, verb, fraction, mode)
     c.fig.notes.append(f"work folder {work}; {time.perf_counter() - t0:.0f} s in all")
     return c.fig
 
 
 def report(fig: Figures, rerun: str) -> str:
     lines = [f"Kinfold fault test: {sum(fig.kills.values())} SIGKILLs ({rerun})", "",
-             f"{'verb':9s} {'kills':>5s} {'by clock':>9s} {'at a step':>10s} {'at a file':>10s} {'in call':>8s} "
+             f"{'verb':11s} {'kills':>3s} {'by clock':>9s} {'at a step':>10s} {'at a file':>10s} {'in call':>8s} "
              f"{'after return':>13s} {'refused':>8s} {'median s':>9s}"]
-    for v in VERBS:
+    for v in VERBS + tuple(f"cli {v}" for v in CLI_VERBS):
         d = sorted(fig.durations.get(v, []))
         med = f"{d[len(d) // 2]:.3f}" if d else "-"
-        lines.append(f"{v:9s} {fig.kills[v]:5d} {fig.modes[(v, 'clock')]:9d} {fig.modes[(v, 'step')]:10d} "
+        lines.append(f"{v:11s} {fig.kills[v]:3d} {fig.modes[(v, 'clock')]:9d} {fig.modes[(v, 'step')]:10d} "
                      f"{fig.modes[(v, 'file')]:10d} {fig.in_call[v]:8d} {fig.after_return[v]:13d} {fig.raised[v]:8d} "
                      f"{med:>9s}")
     lines.append(f"scans killed before all files were read and hashed: {fig.scan_phase['hashing']}, while "
@@ -1071,21 +1233,32 @@ def main(argv=None) -> int:
     ap.add_argument("--verbs", default=",".join(VERBS), help="kill only these verbs (comma-separated)")
     ap.add_argument("--sweep", action="store_true",
                     help="instead of --kills random kills: kill each verb once before each of its steps")
+    ap.add_argument("--cli-kills", type=int, default=10,
+                    help="then kill `python -m core.cli accept/export` this many times (default 10)")
+    ap.add_argument("--cli-verbs", default=",".join(CLI_VERBS), help="the commands killed (comma-separated)")
     ap.add_argument("--quiet", action="store_true")
     ap.add_argument("--driver", help=argparse.SUPPRESS)
+    ap.add_argument("--cli-driver", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.driver:
         driver(json.loads(args.driver))
         return 0
+    if args.cli_driver:
+        return cli_driver(json.loads(args.cli_driver))
     verbs = tuple(v.strip() for v in args.verbs.split(",") if v.strip())
     unknown = sorted(set(verbs) - set(VERBS))
     if unknown:
         ap.error(f"unknown verb(s) {', '.join(unknown)}; choose from {', '.join(VERBS)}")
+    cli_verbs = tuple(v.strip() for v in args.cli_verbs.split(",") if v.strip())
+    if set(cli_verbs) - set(CLI_VERBS):
+        ap.error(f"--cli-verbs: choose from {', '.join(CLI_VERBS)}")
     fig = run(args.kills, args.seed, args.work, args.source, args.scanned, args.added, not args.quiet,
-              verbs=verbs, sweep=args.sweep)
-    rerun = "--sweep" if args.sweep else f"--kills {args.kills} --seed {args.seed}"
+              verbs=verbs, sweep=args.sweep, cli_kills=args.cli_kills, cli_verbs=cli_verbs)
+    rerun = "--sweep" if args.sweep else f"--kills {args.kills} --seed {args.seed} --cli-kills {args.cli_kills}"
     if verbs != VERBS:
         rerun += f" --verbs {','.join(verbs)}"
+    if cli_verbs != CLI_VERBS:
+        rerun += f" --cli-verbs {','.join(cli_verbs)}"
     print(report(fig, rerun), flush=True)
     bad = (fig.lost or fig.other_lost or fig.integrity_failures or fig.half or fig.partial_exports
            or fig.leftover_temporaries or fig.next_run_failures)
