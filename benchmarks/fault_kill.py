@@ -1,9 +1,10 @@
 """Kill Kinfold with SIGKILL at random moments in every verb, then check that nothing was lost.
 
-    python -m benchmarks.fault_kill --kills 100 --seed 0        # the full run (~8-10 min on 2 cores)
+    python -m benchmarks.fault_kill --kills 100 --seed 0        # the full run (~10 min on 2 cores)
     python -m benchmarks.fault_kill --kills 12 --seed 0         # every verb at least once (~2 min)
     python -m benchmarks.fault_kill --sweep                     # each verb killed before each of its steps
     python -m benchmarks.fault_kill --sweep --verbs export      # one verb only
+    python -m benchmarks.fault_kill --kills 0 --cli-kills 20    # the command line only
 
 One project (a copy of the demo folder, sample_images/) is kept going across all kills, so damage
 accumulates the way it would for a person whose machine keeps crashing. Each round:
@@ -21,6 +22,11 @@ accumulates the way it would for a person whose machine keeps crashing. Each rou
      transactions or two renames are hit as often as any other moment;
    - "file" (scans): the driver SIGKILLs itself once a random share of the files has been read and
      hashed (the scan's first stage takes about 2% of its time, so a clock rarely lands in it).
+   After the --kills rounds come --cli-kills rounds (default 10) of the command line as a user runs
+   it: `kinfold accept FOLDER GROUP LABEL [--drop ...]` and `kinfold export FOLDER --csv --coco
+   --folders --overwrite` by turns, killed by the clock (`python -m core.cli ...`, a random share of
+   its last run, start-up included) or before a random step of the whole process (the same command
+   run through `runpy` with the steps counted); exit status 0 counts as returned.
    Before each scan, new photos are added (they must be embedded), two earlier ones are changed,
    one removed, and every original gets a new modification time (so it is read and hashed again).
 3. Checks, on the store as the kill left it (plain sqlite3, not Kinfold's code):
@@ -30,9 +36,9 @@ accumulates the way it would for a person whose machine keeps crashing. Each rou
      wholly absent (a "half decision" otherwise);
    - `PRAGMA integrity_check` is ok;
    - the previous export (CSV, COCO, class folders) is byte-identical, or replaced by a complete
-     newer one (equal to what exporting the same store again gives); a kill between two formats
-     leaves one new and one old file, each whole: counted apart ("mixing two exports"), since
-     separate destinations cannot be replaced in one step;
+     newer one (equal to what exporting the same store again gives), never missing; a kill between
+     two formats leaves one new and one old file, each whole: counted apart ("mixing two exports"),
+     since separate destinations cannot be replaced in one step (README, "Exports follow these rules");
    then the next run: open, scan, propose and export to the same destinations must work, and
    afterwards no temporary file may be left in the store folder or beside the export destinations.
 
