@@ -24,7 +24,7 @@ accumulates the way it would for a person whose machine keeps crashing. Each rou
      hashed (the scan's first stage takes about 2% of its time, so a clock rarely lands in it).
    After the --kills rounds come --cli-kills rounds (default 10) of the command line as a user runs
    it: `kinfold accept FOLDER GROUP LABEL [--drop ...]` and `kinfold export FOLDER --csv --coco
-   --folders --overwrite` by turns, killed by the clock (`python -m core.cli ...`, a random share of
+   --folders` (no --overwrite: what earlier kills left must be recognised as Kinfold's) by turns, killed by the clock (`python -m core.cli ...`, a random share of
    its last run, start-up included) or before a random step of the whole process (the same command
    run through `runpy` with the steps counted); exit status 0 counts as returned.
    Before each scan, new photos are added (they must be embedded), two earlier ones are changed,
@@ -39,7 +39,8 @@ accumulates the way it would for a person whose machine keeps crashing. Each rou
      newer one (equal to what exporting the same store again gives), never missing; a kill between
      two formats leaves one new and one old file, each whole: counted apart ("mixing two exports"),
      since separate destinations cannot be replaced in one step (README, "Exports follow these rules");
-   then the next run: open, scan, propose and export to the same destinations must work, and
+   then the next run: open, scan, propose and export (without overwrite=True) to the same
+   destinations must work, and
    afterwards no temporary file may be left in the store folder or beside the export destinations.
 
 The kill lands inside the call, or during close/exit when the call was faster than its last measured
@@ -147,10 +148,10 @@ def export_digest(path: Path, kind: str, normal: bool = False) -> str | None:
         return None
 
 
-def run_export(p, dests: dict[str, Path]) -> dict:
-    """CSV, COCO and class folders in one call, as `kinfold export --csv --coco --folders --overwrite`
+def run_export(p, dests: dict[str, Path], overwrite: bool = True) -> dict:
+    """CSV, COCO and class folders in one call, as `kinfold export --csv --coco --folders [--overwrite]`
     does: all or nothing across the formats."""
-    r = p.export(csv=str(dests["csv"]), coco=str(dests["coco"]), folders=str(dests["folders"]), overwrite=True)
+    r = p.export(csv=str(dests["csv"]), coco=str(dests["coco"]), folders=str(dests["folders"]), overwrite=overwrite)
     return {k: v if isinstance(v, (int, dict)) else str(v) for k, v in r.items()}
 
 
@@ -781,7 +782,8 @@ class Checker:
                 step = "propose"
                 p.propose(limit=10)
                 step = "export"
-                run_export(p, self.dests)
+                # Without overwrite: whatever a kill left must still be recognised as Kinfold's own.
+                run_export(p, self.dests, overwrite=False)
         except Exception as exc:
             self.fig.next_run_failures.append(f"round {rnd}: {step}: {type(exc).__name__}: {exc}")
         self.prev_export = {k: export_digest(d, k) for k, d in self.dests.items()}
@@ -850,7 +852,7 @@ class Checker:
                 argv += ["--drop", *drop] if drop else []
             else:
                 argv = ["export", folder, "--csv", str(self.dests["csv"]), "--coco", str(self.dests["coco"]),
-                        "--folders", str(self.dests["folders"]), "--overwrite"]
+                        "--folders", str(self.dests["folders"])]
             max_dec, max_prop = _max_ids(p)
             info["at_begin"] = _state_of(p, info.get("fps", []))
         begin = dict(round=rnd, event="begin", verb=verb, max_decision=max_dec, max_proposal=max_prop, **info)
