@@ -875,6 +875,7 @@ class Checker:
         for i, verb in enumerate(CLI_VERBS):
             rnd = -100 - i
             argv, begin = self._cli_prepare(rnd, verb)
+            self.record_returned(self._events(rnd))      # the ordinary decisions made first
             t0 = time.perf_counter()
             rc = self._cli_spawn(argv, None, True).wait(timeout=600)
             seconds = time.perf_counter() - t0
