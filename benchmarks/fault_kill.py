@@ -959,8 +959,10 @@ class Checker:
         err = open(self.stderr_path, "a")
         err.write(f"--- round {rnd} {verb}\n")
         err.flush()
+        # Unbuffered: a buffered reader could take BEGIN and DONE in one read, and select() would
+        # then wait for a line already read.
         return subprocess.Popen([sys.executable, "-m", "benchmarks.fault_kill", "--driver", json.dumps(spec)],
-                                cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=err, text=True)
+                                cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=err, bufsize=0)
 
     def _events(self, rnd: int) -> list[dict]:
         out = []
@@ -977,7 +979,7 @@ class Checker:
     @staticmethod
     def _wait_line(proc, timeout: float) -> str | None:
         ready, _, _ = select.select([proc.stdout], [], [], timeout)
-        return proc.stdout.readline().strip() if ready else None
+        return proc.stdout.readline().decode(errors="replace").strip() if ready else None   # byte by byte
 
     def _learn(self, events: list[dict]) -> None:
         for e in events:
@@ -994,7 +996,7 @@ class Checker:
             if verb == "scan":
                 self.change_folder(rnd)
             proc = self.spawn(rnd, verb, exit_after=True)
-            out, _ = proc.communicate(timeout=900)
+            out = proc.communicate(timeout=900)[0].decode(errors="replace")
             events = self._events(rnd)
             self._learn(events)
             self.record_returned(events)
