@@ -296,7 +296,9 @@ class _Steps:
         from core import export as export_mod   # its one-step swap of two folders is a file operation too
 
         for module, name in self.FILE_OPS + ((export_mod, "_exchange"),):
-            real = getattr(module, name)
+            real = getattr(module, name, None)
+            if real is None:   # an older Kinfold without it
+                continue
 
             def wrapped(*args, _real=real, _name=f"{module.__name__}.{name}", **kwargs):
                 if self.inside:   # rmtree's own unlinks are part of one step
