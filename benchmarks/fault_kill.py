@@ -515,9 +515,9 @@ class Checker:
         # Seconds and steps of each verb's last returned call (rough guesses until one returned).
         self.estimate: dict[str, float] = dict.fromkeys(VERBS, 0.002) | dict(scan=4.0, relearn=2.0, export=0.1,
                                                                             split=0.02)
-        self.steps: dict[str, int] = dict.fromkeys(VERBS, 8) | dict(scan=18, export=30)
+        self.steps: dict[str, int] = dict.fromkeys(VERBS, 10) | dict(scan=21, export=18)
         self.estimate |= {"cli accept": 2.0, "cli export": 2.5}
-        self.steps |= {"cli accept": 20, "cli export": 40}
+        self.steps |= {"cli accept": 25, "cli export": 27}
         self.step_names: dict[str, list[str]] = {}
         self.prev_export: dict[str, str | None] = {}
         self.returned: list[dict] = []     # every returned call so far (rechecked after every kill)
