@@ -1,8 +1,8 @@
 """Kill Kinfold with SIGKILL at random moments in every verb, then check that nothing was lost.
 
-    python -m benchmarks.fault_kill --kills 100 --seed 0        # the full run (~10 min on 2 cores)
+    python -m benchmarks.fault_kill --kills 100 --seed 0        # the full run, + 10 CLI kills (~5-8 min, 2 cores)
     python -m benchmarks.fault_kill --kills 12 --seed 0         # every verb at least once (~2 min)
-    python -m benchmarks.fault_kill --sweep                     # each verb killed before each of its steps
+    python -m benchmarks.fault_kill --sweep                     # each verb and command killed before each step (~7 min)
     python -m benchmarks.fault_kill --sweep --verbs export      # one verb only
     python -m benchmarks.fault_kill --kills 0 --cli-kills 20    # the command line only
 
