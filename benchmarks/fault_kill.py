@@ -1,9 +1,10 @@
 """Kill Kinfold with SIGKILL at random moments in every verb, then check that nothing was lost.
 
-    python -m benchmarks.fault_kill --kills 100 --seed 0        # the full run (~8-10 min on 2 cores)
+    python -m benchmarks.fault_kill --kills 100 --seed 0        # the full run, + 10 CLI kills (~5-8 min, 2 cores)
     python -m benchmarks.fault_kill --kills 12 --seed 0         # every verb at least once (~2 min)
-    python -m benchmarks.fault_kill --sweep                     # each verb killed before each of its steps
+    python -m benchmarks.fault_kill --sweep                     # each verb and command killed before each step (~7 min)
     python -m benchmarks.fault_kill --sweep --verbs export      # one verb only
+    python -m benchmarks.fault_kill --kills 0 --cli-kills 20    # the command line only
 
 One project (a copy of the demo folder, sample_images/) is kept going across all kills, so damage
 accumulates the way it would for a person whose machine keeps crashing. Each round:
@@ -21,6 +22,11 @@ accumulates the way it would for a person whose machine keeps crashing. Each rou
      transactions or two renames are hit as often as any other moment;
    - "file" (scans): the driver SIGKILLs itself once a random share of the files has been read and
      hashed (the scan's first stage takes about 2% of its time, so a clock rarely lands in it).
+   After the --kills rounds come --cli-kills rounds (default 10) of the command line as a user runs
+   it: `kinfold accept FOLDER GROUP LABEL [--drop ...]` and `kinfold export FOLDER --csv --coco
+   --folders` (no --overwrite: what earlier kills left must be recognised as Kinfold's) by turns, killed by the clock (`python -m core.cli ...`, a random share of
+   its last run, start-up included) or before a random step of the whole process (the same command
+   run through `runpy` with the steps counted); exit status 0 counts as returned.
    Before each scan, new photos are added (they must be embedded), two earlier ones are changed,
    one removed, and every original gets a new modification time (so it is read and hashed again).
 3. Checks, on the store as the kill left it (plain sqlite3, not Kinfold's code):
@@ -30,10 +36,11 @@ accumulates the way it would for a person whose machine keeps crashing. Each rou
      wholly absent (a "half decision" otherwise);
    - `PRAGMA integrity_check` is ok;
    - the previous export (CSV, COCO, class folders) is byte-identical, or replaced by a complete
-     newer one (equal to what exporting the same store again gives); a kill between two formats
-     leaves one new and one old file, each whole: counted apart ("mixing two exports"), since
-     separate destinations cannot be replaced in one step;
-   then the next run: open, scan, propose and export to the same destinations must work, and
+     newer one (equal to what exporting the same store again gives), never missing; a kill between
+     two formats leaves one new and one old file, each whole: counted apart ("mixing two exports"),
+     since separate destinations cannot be replaced in one step (README, "Exports follow these rules");
+   then the next run: open, scan, propose and export (without overwrite=True) to the same
+   destinations must work, and
    afterwards no temporary file may be left in the store folder or beside the export destinations.
 
 The kill lands inside the call, or during close/exit when the call was faster than its last measured
@@ -45,7 +52,6 @@ from __future__ import annotations
 
 import argparse
 import hashlib
-import inspect
 import json
 import os
 import random
@@ -67,10 +73,24 @@ if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
 VERBS = ("scan", "label", "accept", "split", "undo", "later", "relearn", "export")
+CLI_VERBS = ("accept", "export")      # also killed as `python -m core.cli VERB ...` subprocesses
 DECISION_VERBS = ("label", "accept", "split", "undo", "later", "clear")
 LABELS = ("hex nut", "washer", "coil spring", "spur gear", "fuse", "key blank")
 EXPORTS = {"csv": "labels.csv", "coco": "labels.coco.json", "folders": "classes"}
+# What Kinfold keeps in its store folder for good (core/store.py, core/project.py): the store with its
+# WAL files, the folder lock, and one neighbour-graph cache graph-<16 hex>.npz.
 STORE_FILES = {"kinfold.sqlite", "kinfold.sqlite-wal", "kinfold.sqlite-shm", "lock"}
+_GRAPH_CACHE = re.compile(r"graph-[0-9a-f]{16}\.npz")
+# Kinfold's temporaries, by what made them; anything else found is listed as "unknown".
+_TEMPORARY_KINDS = (
+    (re.compile(r"\.kinfold\.sqlite\.new-\d+-[0-9a-f]+(-wal|-shm)?$"), "a new store being made"),
+    (re.compile(r"graph-\d+-\d+\.tmp\.npz$"), "a graph cache being written"),
+    (re.compile(r"^\..*\.kinfold-(tmp|old|oldcut)-[0-9a-f]{8}-\d+-[0-9a-z]{8}$"), "an export's temporary"),
+)
+
+
+def temporary_kind(name: str) -> str:
+    return next((what for rx, what in _TEMPORARY_KINDS if rx.search(name)), "unknown")
 
 
 # ------------------------------------------------------------------ export digests (shared)
@@ -128,16 +148,11 @@ def export_digest(path: Path, kind: str, normal: bool = False) -> str | None:
         return None
 
 
-def run_export(p, dests: dict[str, Path]) -> dict:
-    """CSV, COCO and class folders in that order, as `kinfold export --csv --coco --folders` does.
-    Passes overwrite=True where the method takes it (a later Kinfold refuses to replace files it
-    cannot tell are its own)."""
-    out = {}
-    for kind, method in (("csv", p.export_csv), ("coco", p.export_coco), ("folders", p.export_folders)):
-        kw = {"overwrite": True} if "overwrite" in inspect.signature(method).parameters else {}
-        r = method(str(dests[kind]), **kw)
-        out[kind] = r if isinstance(r, (int, dict)) else str(r)
-    return out
+def run_export(p, dests: dict[str, Path], overwrite: bool = True) -> dict:
+    """CSV, COCO and class folders in one call, as `kinfold export --csv --coco --folders [--overwrite]`
+    does: all or nothing across the formats."""
+    r = p.export(csv=str(dests["csv"]), coco=str(dests["coco"]), folders=str(dests["folders"]), overwrite=overwrite)
+    return {k: v if isinstance(v, (int, dict)) else str(v) for k, v in r.items()}
 
 
 # ------------------------------------------------------------------ the driver (killed process)
@@ -161,6 +176,20 @@ def _max_ids(p) -> tuple[int, int]:
                      for t in ("decisions", "proposals"))
     finally:
         db.close()
+
+
+def _state_of(p, fps) -> dict:
+    """Each photo's label row (state, label) or None, whether it is left for later, and the open
+    groups, read with plain SQL at the moment the targeted call begins."""
+    db = sqlite3.connect(f"file:{p.store.path}?mode=ro", uri=True)
+    try:
+        labels = {r[0]: [r[1], r[2]] for r in db.execute("SELECT fingerprint, state, label FROM labels")}
+        deferred = {r[0] for r in db.execute("SELECT fingerprint FROM deferred")}
+        open_groups = sorted(r[0] for r in db.execute("SELECT id FROM proposals WHERE open=1"))
+    finally:
+        db.close()
+    return dict(labels={fp: labels.get(fp) for fp in fps}, deferred=sorted(set(fps) & deferred),
+                open_groups=open_groups)
 
 
 def _paths_of_label(p, label: str) -> list[str]:
@@ -226,8 +255,8 @@ class _Steps:
     Killing before a chosen step hits the short windows between two transactions, or between two
     renames, as often as any other moment, which a clock rarely manages."""
 
-    FILE_OPS = ((os, "replace"), (os, "rename"), (os, "unlink"), (os, "remove"), (os, "rmdir"),
-                (shutil, "rmtree"), (tempfile, "mkstemp"), (tempfile, "mkdtemp"))
+    FILE_OPS = ((os, "replace"), (os, "rename"), (os, "link"), (os, "unlink"), (os, "remove"), (os, "rmdir"),
+                (os, "mkdir"), (shutil, "rmtree"), (tempfile, "mkstemp"), (tempfile, "mkdtemp"))
     _LITERALS = re.compile(r"X'[0-9A-Fa-f]*'|'(?:[^']|'')*'|\b\d+(?:\.\d+)?\b")
 
     def __init__(self):
@@ -264,8 +293,12 @@ class _Steps:
             db.set_trace_callback(self._sql)
             return db
         sqlite3.connect = connect
-        for module, name in self.FILE_OPS:
-            real = getattr(module, name)
+        from core import export as export_mod   # its one-step swap of two folders is a file operation too
+
+        for module, name in self.FILE_OPS + ((export_mod, "_exchange"),):
+            real = getattr(module, name, None)
+            if real is None:   # an older Kinfold without it
+                continue
 
             def wrapped(*args, _real=real, _name=f"{module.__name__}.{name}", **kwargs):
                 if self.inside:   # rmtree's own unlinks are part of one step
@@ -278,6 +311,14 @@ class _Steps:
                 finally:
                     self.inside = False
             setattr(module, name, wrapped)
+        real_open = os.open
+
+        def os_open(path, flags, *args, **kwargs):   # a file created (an export's temporary)
+            if flags & os.O_CREAT and not self.inside:
+                self._seen.clear()
+                self.step("os.open(O_CREAT)")
+            return real_open(path, flags, *args, **kwargs)
+        os.open = os_open
 
 
 def driver(spec: dict) -> None:
@@ -346,6 +387,8 @@ def driver(spec: dict) -> None:
     else:
         raise SystemExit(f"unknown verb {verb}")
     max_dec, max_prop = _max_ids(p)
+    fps = info.get("fps") or list((info.get("target") or {}).get("before") or {})
+    info["at_begin"] = _state_of(p, fps)
     log.note("begin", verb=verb, max_decision=max_dec, max_proposal=max_prop, **info)
     print("BEGIN", flush=True)
     steps.kill_at = spec.get("kill_at_step")
@@ -361,7 +404,7 @@ def driver(spec: dict) -> None:
     steps.armed = False
     seconds = time.perf_counter() - t0
     extra: dict = {}
-    if verb in ("label", "accept"):
+    if verb in ("label", "accept", "later"):
         extra = dict(decision=result)
     elif verb == "split":
         extra = dict(parts=[dict(id=g.id, members=g.members) for g in result])
@@ -382,6 +425,29 @@ def driver(spec: dict) -> None:
     print("DONE", flush=True)
     if not spec.get("exit"):
         time.sleep(3600)  # wait for the kill: the process is killed after the call too
+
+
+def cli_driver(spec: dict) -> int:
+    """`python -m core.cli ARGS` as it runs for a user, with its steps counted from the start of the
+    process (store statements and file operations, as in the driver) and, with `kill_at_step`,
+    a SIGKILL just before one of them. The count goes to `steps_file` when the command ends."""
+    import runpy
+
+    steps = _Steps()
+    steps.install()
+    steps.kill_at = spec.get("kill_at_step")
+    steps.armed = True
+    sys.argv = [str(ROOT / "core" / "cli.py"), *spec["argv"]]
+    code = 0
+    try:
+        runpy.run_module("core.cli", run_name="__main__", alter_sys=True)
+    except SystemExit as exc:
+        code = exc.code if isinstance(exc.code, int) else 1
+    finally:
+        steps.armed = False
+        with open(spec["steps_file"], "w", encoding="utf-8") as f:
+            json.dump(dict(steps=steps.n, names=steps.names), f)
+    return code
 
 
 # ------------------------------------------------------------------ the checker (this process)
@@ -449,7 +515,9 @@ class Checker:
         # Seconds and steps of each verb's last returned call (rough guesses until one returned).
         self.estimate: dict[str, float] = dict.fromkeys(VERBS, 0.002) | dict(scan=4.0, relearn=2.0, export=0.1,
                                                                             split=0.02)
-        self.steps: dict[str, int] = dict.fromkeys(VERBS, 8) | dict(scan=18, export=30)
+        self.steps: dict[str, int] = dict.fromkeys(VERBS, 10) | dict(scan=21, export=18)
+        self.estimate |= {"cli accept": 2.0, "cli export": 2.5}
+        self.steps |= {"cli accept": 25, "cli export": 27}
         self.step_names: dict[str, list[str]] = {}
         self.prev_export: dict[str, str | None] = {}
         self.returned: list[dict] = []     # every returned call so far (rechecked after every kill)
@@ -542,15 +610,17 @@ class Checker:
                     return f"undo of decision {target}: photo {fp[:8]} is {s['labels'].get(fp)}, not {want}"
             return None
         if verb == "later":
-            undone = any(d["kind"] == "undo" and i > after and dec.get(d["undoes"], {}).get("group") == e["group"]
-                         for i, d in dec.items())
-            if undone:   # a Kinfold that logs `later` can undo it: the photos are back in the pool
-                return None
+            d = dec.get(e["decision"])
+            if d is None or d["kind"] != "later" or d["group"] != e["group"]:
+                return f"later decision {e['decision']} on group {e['group']} is not in the log"
+            if any(x["kind"] == "undo" and x["undoes"] == e["decision"] for x in dec.values()):
+                return None   # undone: the photos are back in the pool
+            if set(d["before"]) != set(e["fps"]):
+                return f"later decision {e['decision']} does not list the group's photos for undo"
             kept = [fp for fp in e["fps"] if fp not in s["deferred"] and not self._changed_after(s, fp, after)]
             if kept:
                 return f"later of group {e['group']}: {len(kept)} of {len(e['fps'])} photos are not left for later"
-            reopened = any(i > after for i in dec)
-            if s["props"].get(e["group"], {}).get("open") and not reopened:
+            if s["props"].get(e["group"], {}).get("open"):
                 return f"group {e['group']} left for later is still open"
             return None
         if verb == "relearn":
@@ -561,37 +631,92 @@ class Checker:
 
     # -- a killed call: all or nothing? ---------------------------------------------------------
     def half_done(self, b: dict, s: dict) -> str | None:
+        """A killed call is all or nothing: either its decision is logged with every effect, or
+        nothing of it is in the store (labels, photos left for later, groups as at its start)."""
         verb, dec, props = b["verb"], s["dec"], s["props"]
         new = {i: d for i, d in dec.items() if i > b["max_decision"]}
+        at = b["at_begin"]
+        was_open = set(at["open_groups"])
+
+        def is_open(gid) -> bool:
+            return bool(props.get(gid, {}).get("open"))
+
+        def labels_as(want: dict) -> list[str]:
+            """Photos whose label row is not `want` ({fp: [state, label] or None})."""
+            return [fp[:8] for fp, w in want.items()
+                    if (None if w is None else tuple(w[:2])) != s["labels"].get(fp)]
+
+        def deferred_as(fps, want: set) -> list[str]:
+            return [fp[:8] for fp in fps if (fp in s["deferred"]) != (fp in want)]
+
+        def untouched() -> str | None:
+            """The call is not logged: nothing of it may be in the store."""
+            wrong = labels_as(at["labels"])
+            wrong_d = deferred_as(at["labels"], set(at["deferred"]))
+            reopened = [g for g in at["open_groups"] if not is_open(g)]
+            if wrong or wrong_d or reopened:
+                return (f"{verb} not logged, yet labels changed for {wrong}, photos left for later changed for "
+                        f"{wrong_d}, groups closed {reopened[:5]}")
+            return None
+
+        if verb == "label":
+            logged = [d for d in new.values() if d["kind"] == "label" and d["label"] == b["label"]]
+            if not logged:
+                why = untouched()
+                return why and f"label half done: {why}"
+            wrong = labels_as({fp: ["labelled", b["label"]] for fp in b["fps"]})
+            return f"label logged but photos {wrong} do not carry {b['label']!r}" if wrong else None
+        if verb == "accept":
+            logged = [i for i, d in new.items() if d["kind"] == "accept" and d["group"] == b["group"]]
+            if not logged:
+                why = untouched()
+                return why and f"accept of group {b['group']} half done: {why}"
+            members = dict(zip(b["members"], b["fps"]))
+            want = {fp: ["labelled", b["label"]] for m, fp in members.items()
+                    if m not in b["drop"] and at["labels"].get(fp) is None}
+            wrong = labels_as(want)
+            unrejected = [fp[:8] for m, fp in members.items()
+                          if m in b["drop"] and (fp, b["label"], logged[0]) not in s["rejections"]]
+            if wrong or unrejected or is_open(b["group"]):
+                return (f"accept of group {b['group']} half done: logged, yet photos {wrong} are not labelled, "
+                        f"{unrejected} taken out are not recorded, the group open={is_open(b['group'])}")
+            return None
         if verb == "split":
             logged = any(d["kind"] == "split" and d["group"] == b["group"] for d in new.values())
-            parts = [i for i, r in props.items() if i > b["max_proposal"] and r["kind"] == "split part"]
-            closed = not props.get(b["group"], {}).get("open", True)
+            parts = [i for i, r in props.items() if i > b["max_proposal"] and r["kind"] == "split part" and r["open"]]
+            closed = not is_open(b["group"])
             if logged == bool(parts) == closed:
                 return None
             return (f"split of group {b['group']} half done: decision logged={logged}, parts stored={bool(parts)}, "
                     f"group closed={closed}")
         if verb == "later":
-            deferred = [fp for fp in b["fps"] if fp in s["deferred"]]
-            closed = not props.get(b["group"], {}).get("open", True)
-            if (len(deferred) == len(set(b["fps"])) and closed) or (not deferred and not closed):
-                return None
-            return (f"later of group {b['group']} half done: {len(deferred)} of {len(set(b['fps']))} photos left "
-                    f"for later, group closed={closed}")
+            logged = [d for d in new.values() if d["kind"] == "later" and d["group"] == b["group"]]
+            if not logged:
+                why = untouched()
+                return why and f"later of group {b['group']} half done: {why}"
+            wrong = deferred_as(b["fps"], set(b["fps"]))
+            if wrong or is_open(b["group"]):
+                return (f"later of group {b['group']} half done: logged, yet photos {wrong} are not left for "
+                        f"later and the group open={is_open(b['group'])}")
+            return None
         if verb == "undo" and b.get("target"):
             t = b["target"]
             logged = any(d["kind"] == "undo" and d["undoes"] == t["id"] for d in new.values())
-            if t["kind"] in ("accept", "split") and t["group"] is not None:
-                reopened = props.get(t["group"], {}).get("open", False)
-                if logged != reopened:
-                    return (f"undo of {t['kind']} {t['id']} half done: undo logged={logged}, "
-                            f"group {t['group']} reopened={reopened}")
+            if not logged:
+                why = untouched()
+                if why is None and t["group"] is not None and t["kind"] in ("accept", "split", "later") \
+                        and is_open(t["group"]) and t["group"] not in was_open:
+                    why = f"group {t['group']} reopened"
+                return why and f"undo of {t['kind']} {t['id']} half done: {why}"
+            if t["kind"] == "later":
+                wrong = deferred_as(t["before"], {fp for fp, prev in t["before"].items() if prev is not None})
+            else:
+                wrong = labels_as(t["before"])
+            reopened = t["group"] is None or t["kind"] not in ("accept", "split", "later") or is_open(t["group"])
+            if wrong or not reopened:
+                return (f"undo of {t['kind']} {t['id']} half done: logged, yet photos {wrong} are not as before "
+                        f"and group {t['group']} reopened={reopened}")
             return None
-        if verb == "accept":
-            logged = any(d["kind"] == "accept" and d["group"] == b["group"] for d in new.values())
-            closed = not props.get(b["group"], {}).get("open", True)
-            if logged != closed:
-                return f"accept of group {b['group']} half done: logged={logged}, group closed={closed}"
         return None
 
     # -- exports -------------------------------------------------------------------------------------
@@ -636,8 +761,7 @@ class Checker:
         out = []
         for p in sorted(self.store_dir.iterdir()) if self.store_dir.is_dir() else []:
             name = p.name
-            is_cache = name.startswith("graph-") and name.endswith(".npz") and len(name) == len("graph-") + 16 + 4
-            if name not in STORE_FILES and not is_cache:
+            if name not in STORE_FILES and not _GRAPH_CACHE.fullmatch(name):
                 out.append(str(p.relative_to(self.work)))
         if self.export_dir.is_dir():
             wanted = set(EXPORTS.values())
@@ -660,7 +784,8 @@ class Checker:
                 step = "propose"
                 p.propose(limit=10)
                 step = "export"
-                run_export(p, self.dests)
+                # Without overwrite: whatever a kill left must still be recognised as Kinfold's own.
+                run_export(p, self.dests, overwrite=False)
         except Exception as exc:
             self.fig.next_run_failures.append(f"round {rnd}: {step}: {type(exc).__name__}: {exc}")
         self.prev_export = {k: export_digest(d, k) for k, d in self.dests.items()}
@@ -705,6 +830,127 @@ class Checker:
         for p in originals:
             os.utime(p, (now, now))
 
+    # -- the command line --------------------------------------------------------------------------
+    def _cli_prepare(self, rnd: int, verb: str) -> tuple[list[str], dict]:
+        """The command's arguments and its begin event (what the store held when it was started).
+        For `accept` a group is picked here, after ordinary decisions like the driver's."""
+        from core.project import Project
+
+        rng = random.Random(f"{self.seed}/cli/{rnd}")
+        info: dict = {}
+        folder = str(self.folder)
+        with Project.open(self.folder, annotator="fault-kill") as p:
+            if verb == "accept":
+                log = _Log(str(self.log_path), rnd)
+                _free_up(p, rng, log)
+                g = _pick_group(p, rng)
+                if g is None:
+                    raise RuntimeError("no group to accept")
+                drop = rng.sample(g.members[1:], min(len(g.members) - 1, rng.randint(0, 2)))
+                label = g.suggested_label or rng.choice(LABELS)
+                info = dict(group=g.id, members=g.members, fps=[_fp(p, m) for m in g.members], drop=drop,
+                            label=label)
+                argv = ["accept", folder, str(g.id), label, "--annotator", "fault-kill"]
+                argv += ["--drop", *drop] if drop else []
+            else:
+                argv = ["export", folder, "--csv", str(self.dests["csv"]), "--coco", str(self.dests["coco"]),
+                        "--folders", str(self.dests["folders"])]
+            max_dec, max_prop = _max_ids(p)
+            info["at_begin"] = _state_of(p, info.get("fps", []))
+        begin = dict(round=rnd, event="begin", verb=verb, max_decision=max_dec, max_proposal=max_prop, **info)
+        return argv, begin
+
+    def _cli_spawn(self, argv: list[str], kill_at_step: int | None, counted: bool):
+        env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+        err = open(self.stderr_path, "a")
+        err.write(f"--- kinfold {' '.join(argv[:1])}\n")
+        err.flush()
+        if counted:
+            spec = dict(argv=argv, kill_at_step=kill_at_step, steps_file=str(self.work / "cli-steps.json"))
+            cmd = [sys.executable, "-m", "benchmarks.fault_kill", "--cli-driver", json.dumps(spec)]
+        else:
+            cmd = [sys.executable, "-m", "core.cli", *argv]     # exactly what a user runs
+        return subprocess.Popen(cmd, cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=err)
+
+    def calibrate_cli(self) -> None:
+        """Each command once, not killed, its steps counted: the estimates for its kills."""
+        for i, verb in enumerate(CLI_VERBS):
+            rnd = -100 - i
+            argv, begin = self._cli_prepare(rnd, verb)
+            self.record_returned(self._events(rnd))      # the ordinary decisions made first
+            t0 = time.perf_counter()
+            rc = self._cli_spawn(argv, None, True).wait(timeout=600)
+            seconds = time.perf_counter() - t0
+            counted = json.loads((self.work / "cli-steps.json").read_text())
+            name = f"cli {verb}"
+            self.estimate[name], self.steps[name], self.step_names[name] = seconds, counted["steps"], counted["names"]
+            self.fig.durations[name].append(seconds)
+            if rc != 0:
+                self.fig.notes.append(f"calibration kinfold {verb} exited {rc} (see {self.stderr_path})")
+            else:
+                self._cli_returned(rnd, verb, begin)
+            self.next_run(rnd)
+
+    def _cli_returned(self, rnd: int, verb: str, begin: dict) -> dict:
+        """The command exited 0: what it did, found in the store (counted lost when it is not)."""
+        e = dict(begin, event="returned", key=(rnd, "cli"))
+        if verb == "accept":
+            s = self._snapshot()
+            found = [i for i, d in s["dec"].items()
+                     if i > begin["max_decision"] and d["kind"] == "accept" and d["group"] == begin["group"]]
+            self.fig.returned_decisions.add(e["key"])
+            if not found:
+                self.fig.lost[e["key"]] = f"round {rnd}: kinfold accept {begin['group']} exited 0, no decision logged"
+                return e
+            e.update(decision=found[0], max_decision_after=max(s["dec"]))
+        else:
+            e.update(digests={k: export_digest(d, k) for k, d in self.dests.items()})
+            self.fig.other_returned[verb] += 1
+        self.returned.append(e)
+        return e
+
+    def cli_round(self, rnd: int, verb: str, fraction: float, mode: str) -> None:
+        """Kill `kinfold accept` or `kinfold export` (the command line as a subprocess): by the clock
+        (`python -m core.cli`, a random share of its last measured run) or before one of its steps."""
+        f, name = self.fig, f"cli {verb}"
+        started = time.perf_counter()
+        before_temps = set(self.temporaries())
+        try:
+            argv, begin = self._cli_prepare(rnd, verb)
+        except RuntimeError as exc:
+            f.notes.append(f"round {rnd} {name}: {exc}")
+            return
+        self.record_returned(self._events(rnd))      # the ordinary decisions made first
+        if mode in ("step", "sweep"):
+            kill_at = int(fraction if mode == "sweep" else fraction * (self.steps.get(name, 0) + 1))
+            names = self.step_names.get(name, [])
+            what = f"before step {kill_at}/{self.steps.get(name, 0)}" + (
+                f" ({names[kill_at]})" if kill_at < len(names) else " (after the last)")
+            proc = self._cli_spawn(argv, kill_at, True)
+            rc = proc.wait(timeout=600)
+        else:
+            delay = fraction * self.estimate.get(name, 1.5)
+            what = f"at {delay * 1000:.0f} ms"
+            proc = self._cli_spawn(argv, None, False)
+            try:
+                rc = proc.wait(timeout=delay)
+            except subprocess.TimeoutExpired:
+                os.kill(proc.pid, signal.SIGKILL)
+                rc = proc.wait()
+        f.kills[name] += 1
+        f.modes[(name, "step" if mode == "sweep" else mode)] += 1
+        returned = error = None
+        if rc == 0:
+            f.after_return[name] += 1
+            returned = self._cli_returned(rnd, verb, begin)
+        elif rc == -signal.SIGKILL:
+            f.in_call[name] += 1
+        else:
+            f.raised[name] += 1
+            error = dict(message=f"exit status {rc}")
+            f.notes.append(f"round {rnd} {name}: the command refused (exit status {rc}; see {self.stderr_path})")
+        self._check(rnd, verb, name, begin, returned, error, what, before_temps, started)
+
     # -- one round ---------------------------------------------------------------------------------
     def spawn(self, rnd: int, verb: str, *, exit_after: bool = False, kill_at_step: int | None = None,
               kill_at_file: float | None = None):
@@ -715,8 +961,10 @@ class Checker:
         err = open(self.stderr_path, "a")
         err.write(f"--- round {rnd} {verb}\n")
         err.flush()
+        # Unbuffered: a buffered reader could take BEGIN and DONE in one read, and select() would
+        # then wait for a line already read.
         return subprocess.Popen([sys.executable, "-m", "benchmarks.fault_kill", "--driver", json.dumps(spec)],
-                                cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=err, text=True)
+                                cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=err, bufsize=0)
 
     def _events(self, rnd: int) -> list[dict]:
         out = []
@@ -733,7 +981,7 @@ class Checker:
     @staticmethod
     def _wait_line(proc, timeout: float) -> str | None:
         ready, _, _ = select.select([proc.stdout], [], [], timeout)
-        return proc.stdout.readline().strip() if ready else None
+        return proc.stdout.readline().decode(errors="replace").strip() if ready else None   # byte by byte
 
     def _learn(self, events: list[dict]) -> None:
         for e in events:
@@ -750,7 +998,7 @@ class Checker:
             if verb == "scan":
                 self.change_folder(rnd)
             proc = self.spawn(rnd, verb, exit_after=True)
-            out, _ = proc.communicate(timeout=900)
+            out = proc.communicate(timeout=900)[0].decode(errors="replace")
             events = self._events(rnd)
             self._learn(events)
             self.record_returned(events)
@@ -824,20 +1072,24 @@ class Checker:
                 f.scan_phase["embedding" if read else "hashing"] += 1
         self._learn(events)
         self.record_returned(events)
+        self._check(rnd, verb, verb, begin, returned, error, what, before_temps, started)
 
-        # Checks on the store exactly as the kill left it.
+    def _check(self, rnd: int, verb: str, name: str, begin: dict, returned: dict | None, error: dict | None,
+               what: str, before_temps: set, started: float) -> None:
+        """Checks on the store and the exports exactly as the kill left them, then the next run."""
+        f = self.fig
         temps = set(self.temporaries()) - before_temps
-        f.temporaries_after_kill += [f"round {rnd} ({verb}): {t}" for t in sorted(temps)]
+        f.temporaries_after_kill += [f"round {rnd} ({name}): {t}" for t in sorted(temps)]
         ok = self.integrity()
         if ok != "ok":
-            f.integrity_failures.append(f"round {rnd} ({verb}): {ok}")
+            f.integrity_failures.append(f"round {rnd} ({name}): {ok}")
         s = self._snapshot()
         for e in self.returned:
             if e["verb"] in DECISION_VERBS or e["verb"] == "relearn":
                 why = self.missing(e, s)
                 if why:
                     if e["verb"] in DECISION_VERBS:
-                        f.lost.setdefault(e["key"], f"round {rnd} ({verb}) found: {why}")
+                        f.lost.setdefault(e["key"], f"round {rnd} ({name}) found: {why}")
                     elif why not in f.other_lost:
                         f.other_lost.append(why)
         if returned and verb == "scan":
@@ -848,15 +1100,15 @@ class Checker:
         if not returned and not error:
             why = self.half_done(begin, s)
             if why:
-                f.half.append(f"round {rnd}: {why} [killed {what}]")
+                f.half.append(f"round {rnd} ({name}): {why} [killed {what}]")
         self.check_exports(rnd, verb, returned if verb == "export" else None, what)
 
         self.next_run(rnd)
         for t in self.temporaries():
-            f.leftover_temporaries.setdefault(t, f"round {rnd} ({verb}, killed {what})")
+            f.leftover_temporaries.setdefault(t, f"round {rnd} ({name}, killed {what})")
         if self.verbose:
             state = "error" if error else "after return" if returned else "in call"
-            print(f"round {rnd:3d} {verb:8s} {what:>44s}  {state:12s} "
+            print(f"round {rnd:3d} {name:11s} {what:>44s}  {state:12s} "
                   f"lost {len(f.lost)} half {len(f.half)} partial {len(f.partial_exports)} "
                   f"temps {len(f.leftover_temporaries)}  ({time.perf_counter() - started:.1f} s)", flush=True)
 
@@ -902,10 +1154,12 @@ def prepare(work: Path, source: Path, scanned: Path | None) -> None:
 
 def run(kills: int = 100, seed: int = 0, work: Path | None = None, source: Path = ROOT / "sample_images",
         scanned: Path | None = None, added: int = 24, verbose: bool = True, calibrate: bool = True,
-        verbs=VERBS, sweep: bool = False) -> Figures:
+        verbs=VERBS, sweep: bool = False, cli_kills: int = 10, cli_verbs=CLI_VERBS) -> Figures:
     """The whole test; `calibrate=False` skips timing each verb first (its first kill then uses a
     rough guess of the duration and of the steps). `sweep` replaces the random plan: each verb of
-    `verbs` is killed once before each of its steps, in order (the steps counted in calibration)."""
+    `verbs` is killed once before each of its steps, in order (the steps counted in calibration).
+    Then `cli_kills` kills of the command line (`cli_verbs` in turn, by clock and at a step by
+    turns; with `sweep`, each of them before each of its steps)."""
     work = Path(work) if work else Path(tempfile.mkdtemp(prefix="kinfold-fault-"))
     t0 = time.perf_counter()
     prepare(work, source, scanned)
@@ -915,24 +1169,32 @@ def run(kills: int = 100, seed: int = 0, work: Path | None = None, source: Path 
     if verbose:
         print("calibration (s): " + ", ".join(f"{v} {c.estimate.get(v, float('nan')):.3f}" for v in VERBS),
               flush=True)
+    if cli_verbs and (cli_kills or sweep) and calibrate:
+        c.calibrate_cli()
     if sweep:
         rounds = [(v, k, "sweep") for v in verbs for k in range(c.steps[v] + 1)]
+        cli_rounds = [(v, k, "sweep") for v in cli_verbs for k in range(c.steps[f"cli {v}"] + 1)]
     else:
         rounds = plan(kills, seed, verbs)
+        rng = random.Random(f"{seed}/cli")
+        cli_rounds = [(cli_verbs[i % len(cli_verbs)], rng.random(), ("clock", "step")[(i + i // len(cli_verbs)) % 2])
+                      for i in range(cli_kills if cli_verbs else 0)]
     for rnd, (verb, fraction, mode) in enumerate(rounds):
         c.round(rnd, verb, fraction, mode)
+    for rnd, (verb, fraction, mode) in enumerate(cli_rounds, start=len(rounds)):
+        c.cli_round(rnd, verb, fraction, mode)
     c.fig.notes.append(f"work folder {work}; {time.perf_counter() - t0:.0f} s in all")
     return c.fig
 
 
 def report(fig: Figures, rerun: str) -> str:
     lines = [f"Kinfold fault test: {sum(fig.kills.values())} SIGKILLs ({rerun})", "",
-             f"{'verb':9s} {'kills':>5s} {'by clock':>9s} {'at a step':>10s} {'at a file':>10s} {'in call':>8s} "
+             f"{'verb':11s} {'kills':>3s} {'by clock':>9s} {'at a step':>10s} {'at a file':>10s} {'in call':>8s} "
              f"{'after return':>13s} {'refused':>8s} {'median s':>9s}"]
-    for v in VERBS:
+    for v in VERBS + tuple(f"cli {v}" for v in CLI_VERBS):
         d = sorted(fig.durations.get(v, []))
         med = f"{d[len(d) // 2]:.3f}" if d else "-"
-        lines.append(f"{v:9s} {fig.kills[v]:5d} {fig.modes[(v, 'clock')]:9d} {fig.modes[(v, 'step')]:10d} "
+        lines.append(f"{v:11s} {fig.kills[v]:3d} {fig.modes[(v, 'clock')]:9d} {fig.modes[(v, 'step')]:10d} "
                      f"{fig.modes[(v, 'file')]:10d} {fig.in_call[v]:8d} {fig.after_return[v]:13d} {fig.raised[v]:8d} "
                      f"{med:>9s}")
     lines.append(f"scans killed before all files were read and hashed: {fig.scan_phase['hashing']}, while "
@@ -965,8 +1227,8 @@ def report(fig: Figures, rerun: str) -> str:
     listing("integrity failures", fig.integrity_failures)
     listing("half-done decisions", fig.half)
     listing("partial exports", fig.partial_exports)
-    listing("leftover temporaries (path: round after which the next run left it)",
-            (f"{k}: {v}" for k, v in fig.leftover_temporaries.items()))
+    listing("leftover temporaries (path [what made it]: round after which the next run left it)",
+            (f"{k} [{temporary_kind(Path(k).name)}]: {v}" for k, v in fig.leftover_temporaries.items()))
     listing("next-run failures", fig.next_run_failures)
     listing("notes", fig.notes, 30)
     lines.append(f"rerun: python -m benchmarks.fault_kill {rerun}")
@@ -984,21 +1246,32 @@ def main(argv=None) -> int:
     ap.add_argument("--verbs", default=",".join(VERBS), help="kill only these verbs (comma-separated)")
     ap.add_argument("--sweep", action="store_true",
                     help="instead of --kills random kills: kill each verb once before each of its steps")
+    ap.add_argument("--cli-kills", type=int, default=10,
+                    help="then kill `python -m core.cli accept/export` this many times (default 10)")
+    ap.add_argument("--cli-verbs", default=",".join(CLI_VERBS), help="the commands killed (comma-separated)")
     ap.add_argument("--quiet", action="store_true")
     ap.add_argument("--driver", help=argparse.SUPPRESS)
+    ap.add_argument("--cli-driver", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.driver:
         driver(json.loads(args.driver))
         return 0
+    if args.cli_driver:
+        return cli_driver(json.loads(args.cli_driver))
     verbs = tuple(v.strip() for v in args.verbs.split(",") if v.strip())
     unknown = sorted(set(verbs) - set(VERBS))
     if unknown:
         ap.error(f"unknown verb(s) {', '.join(unknown)}; choose from {', '.join(VERBS)}")
+    cli_verbs = tuple(v.strip() for v in args.cli_verbs.split(",") if v.strip())
+    if set(cli_verbs) - set(CLI_VERBS):
+        ap.error(f"--cli-verbs: choose from {', '.join(CLI_VERBS)}")
     fig = run(args.kills, args.seed, args.work, args.source, args.scanned, args.added, not args.quiet,
-              verbs=verbs, sweep=args.sweep)
-    rerun = "--sweep" if args.sweep else f"--kills {args.kills} --seed {args.seed}"
+              verbs=verbs, sweep=args.sweep, cli_kills=args.cli_kills, cli_verbs=cli_verbs)
+    rerun = "--sweep" if args.sweep else f"--kills {args.kills} --seed {args.seed} --cli-kills {args.cli_kills}"
     if verbs != VERBS:
         rerun += f" --verbs {','.join(verbs)}"
+    if cli_verbs != CLI_VERBS:
+        rerun += f" --cli-verbs {','.join(cli_verbs)}"
     print(report(fig, rerun), flush=True)
     bad = (fig.lost or fig.other_lost or fig.integrity_failures or fig.half or fig.partial_exports
            or fig.leftover_temporaries or fig.next_run_failures)

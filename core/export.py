@@ -17,6 +17,12 @@ Rules every export follows (README, "The command line", says the same for users)
   previous export moved aside while the new one is put in place). Each export first removes the
   stale ones beside its destinations: those whose writing process is dead (another machine's: a
   day old); a stale ``-old-`` whose destination is missing is put back instead.
+- A crash never leaves a destination missing or half written: a file is replaced by one rename
+  (the previous one hard-linked aside first), a class-folder tree by one atomic exchange where
+  the system has it (Linux: ``renameat2``), else by two renames whose gap the next export closes
+  (the ``-old-`` rule above). Separate destinations cannot change in one step, though: a crash
+  while several formats are being put in place (a few milliseconds) can leave some formats new
+  and the rest from the previous export, each whole; the next export writes them all again.
 - Files and folders are created with the process umask.
 
 >>> photos = [LabelledPhoto("drawer/a.jpg", "washer", "group", "ana",
@@ -712,11 +718,47 @@ class _Target:
     placed: bool = False
 
 
+def _exchange_call():
+    """libc's renameat2 where it exists (Linux, glibc 2.28+), else None."""
+    try:
+        import ctypes
+
+        fn = ctypes.CDLL(None, use_errno=True).renameat2
+    except (OSError, AttributeError, ImportError):
+        return None
+    fn.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    fn.restype = ctypes.c_int
+    return fn
+
+
+_RENAMEAT2 = _exchange_call()
+_AT_FDCWD, _RENAME_EXCHANGE = -100, 2
+
+
+def _exchange(a: Path, b: Path) -> bool:
+    """Swap two existing paths in one step (so a killed export never leaves the class folders
+    missing); False where the system or the disk cannot, and the caller swaps by two renames."""
+    if _RENAMEAT2 is None:
+        return False
+    if _RENAMEAT2(_AT_FDCWD, os.fsencode(a), _AT_FDCWD, os.fsencode(b), _RENAME_EXCHANGE) == 0:
+        return True
+    import ctypes
+
+    err = ctypes.get_errno()
+    if err in (errno.ENOSYS, errno.EINVAL, errno.EOPNOTSUPP, getattr(errno, "ENOTSUP", errno.EOPNOTSUPP)):
+        return False
+    raise OSError(err, os.strerror(err), os.fspath(b))
+
+
 def _commit(targets: list[_Target]) -> None:
     """Put every finished temporary in place; on any failure put every destination back."""
     t = None
     try:
         for t in targets:
+            if t.is_dir and os.path.isdir(t.dest) and not os.path.islink(t.dest) and _exchange(t.tmp, t.dest):
+                t.old = t.tmp     # the previous tree now has the temporary's name (removed below,
+                t.placed = True   # or as a stale temporary if this process is killed first)
+                continue
             if os.path.lexists(t.dest):
                 old = _temp_path(t.dest, "old")
                 if t.is_dir or os.path.islink(t.dest):
@@ -755,6 +797,8 @@ def _roll_back(t: _Target) -> None:
         if t.placed:
             if t.old is None:
                 _remove(t.dest)
+            elif t.is_dir and _exchange(t.old, t.dest):
+                _remove(t.old)
             elif t.is_dir:
                 junk = _temp_path(t.dest, "tmp")
                 os.rename(t.dest, junk)

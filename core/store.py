@@ -172,6 +172,10 @@ class Store:
         elif self.path.stat().st_size == 0:
             raise StoreError(f"the project store {self.path} is empty (0 bytes): it is damaged. Restore it from a "
                              "backup, or move it away to start the project afresh.")
+        elif not read_only:
+            # A process killed between linking its new store into place and removing the temporary
+            # name left that name behind; only this check, at every open, ever sees it again.
+            _remove_stale_temporaries(self.directory)
         try:
             self._db = self._connect_read_only() if read_only else self._connect()
             self._migrate()

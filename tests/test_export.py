@@ -629,6 +629,7 @@ if when == "writing":                      # half the tree written
         return kill() if len(calls) == 5 else real_place(*args)
     export._place = place
 else:                                      # the previous export moved aside, the new one not in
+    export._exchange = lambda a, b: False  # the two-rename swap of a system without an atomic exchange
     def rename(src, dst):
         real_rename(src, dst)
         if ".kinfold-old-" in str(dst):

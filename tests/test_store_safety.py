@@ -217,6 +217,36 @@ def test_a_new_store_is_created_whole(tmp_path):
     assert sorted(p.name for p in (tmp_path / "t").iterdir()) == [STORE_FILE]
 
 
+_KILLED_CREATION = r"""
+import os, signal, sys
+from pathlib import Path
+from core import store
+real_unlink = Path.unlink
+
+def unlink(self, *args, **kwargs):   # the store is linked into place; its temporary not yet removed
+    if ".new-" in self.name:
+        os.kill(os.getpid(), signal.SIGKILL)
+    return real_unlink(self, *args, **kwargs)
+
+Path.unlink = unlink
+store.Store(Path(sys.argv[1]))
+"""
+
+
+def test_store_creation_killed_after_linking_leaves_no_temporary(tmp_path):
+    """SIGKILL between linking a new store into place and removing its temporary name: the next open
+    (of the store that now exists) removes the temporary."""
+    d = tmp_path / "s"
+    env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parent.parent))
+    proc = subprocess.run([sys.executable, "-c", _KILLED_CREATION, str(d)], env=env, capture_output=True, timeout=60)
+    assert proc.returncode == -9, proc.stderr
+    assert any(".new-" in p.name for p in d.iterdir())     # the kill left it
+    st = Store(d)
+    assert st.schema_version() == SCHEMA_VERSION
+    st.close()
+    assert sorted(p.name for p in d.iterdir()) == [STORE_FILE]
+
+
 # -- 9. two processes opening a new store at once ---------------------------------------------
 def _open_in_step(directories, barrier, results):
     for d in directories:
