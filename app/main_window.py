@@ -477,6 +477,19 @@ class MainWindow(QMainWindow):
             self._busy()
         return True
 
+    def keyPressEvent(self, event):
+        """A key no widget took. While the window is not active, Qt's window shortcuts do not fire: an X
+        server without a window manager sends keys to the window under the pointer yet never makes it
+        active. The key's action is triggered here then, as its shortcut would have been; an active
+        window never gets here with a shortcut's key (Qt's shortcut map takes it first)."""
+        if not self.isActiveWindow():
+            action = self._shortcut(event.key(), event.modifiers())
+            if action is not None:
+                event.accept()
+                action.trigger()
+                return
+        super().keyPressEvent(event)
+
     def _is_own_popup(self, win) -> bool:
         return any(win is f.completer().popup() for f in (self.group_page.label, self.review_page.new_label))
 

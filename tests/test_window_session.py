@@ -158,6 +158,57 @@ def test_return_from_the_field_and_from_the_grid(qtbot, window, demo):
     store.close()
 
 
+def test_keys_act_when_the_window_is_not_active(qtbot, window, demo):
+    """An X server without a window manager sends keys to the window under the pointer but never makes
+    it active, so Qt's window shortcuts do not fire (tests/test_real_window.py's "pointer" case). The
+    grid's Space, Return and a decision's shortcut must still act: another window is made active here,
+    and keys go through QTest to this window's focus widget (QTest tries the shortcut map first, as X
+    delivery does, and it finds no match for an inactive window)."""
+    from PySide6.QtWidgets import QWidget
+
+    w = window
+    open_and_wait(qtbot, w, demo)
+    store, fp = reader(demo)
+    grid = w.group_page.grid
+    qtbot.waitUntil(lambda: not grid.unseen_paths(), timeout=20_000)
+    other = QWidget()
+    qtbot.addWidget(other)
+    other.show()
+    other.activateWindow()
+    qtbot.waitUntil(lambda: QApplication.activeWindow() is other)
+    grid.setFocus()
+
+    def key(k, mods=NO):
+        QTest.keyClick(w.focusWidget(), k, mods)   # where X delivers it: this window's focus widget
+
+    g = w.current()
+    key(Qt.Key.Key_Right)
+    key(Qt.Key.Key_Space)
+    assert w.group_model.taken_out() == [g.members[1]]
+    for ch in "hex nut":
+        QTest.keyClicks(w.focusWidget(), ch)
+    assert w.focusWidget() is w.group_page.label and w.group_page.label.text() == "hex nut"
+    key(Qt.Key.Key_Return)
+    settle(qtbot, w)
+    assert label_of(store, fp, g.members[1]) is None
+    assert {label_of(store, fp, m) for m in g.members if m != g.members[1]} == {("labelled", "hex nut")}
+
+    # Return from the grid (the focus goes back there after an accept), then Ctrl+L on the next group.
+    g = w.current()
+    assert w.focusWidget() is grid and QApplication.activeWindow() is other
+    w.group_page.label.setText("washer")
+    qtbot.waitUntil(lambda: not grid.unseen_paths(), timeout=20_000)
+    key(Qt.Key.Key_Return)
+    settle(qtbot, w)
+    assert {label_of(store, fp, m) for m in g.members} == {("labelled", "washer")}
+    g = w.current()
+    key(Qt.Key.Key_L, CTRL)
+    settle(qtbot, w)
+    assert [d["kind"] for d in store.decisions()] == ["accept", "accept"]
+    assert set(store.deferred()) == {fp[m] for m in g.members} and w.current().id != g.id   # left for later
+    store.close()
+
+
 def test_return_with_the_completion_popup_open(qtbot, window, demo):
     w = window
     open_and_wait(qtbot, w, demo)
