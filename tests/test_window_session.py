@@ -68,8 +68,20 @@ def type_text(text):
         QTest.keyClicks(target(), ch)
 
 
+def drawn(w) -> bool:
+    """Every photo card inside the group grid's viewport has been drawn with its picture: what a careful
+    person waits for before deciding (an accept asks first about members never on screen)."""
+    grid = w.group_page.grid
+    if w.stack.currentWidget() is not w.work or not grid.isVisible():
+        return True
+    view, model = grid.viewport().rect(), grid.photo_model()
+    unseen = set(grid.unseen_paths())
+    return not any(p in unseen and view.contains(grid.visualRect(model.index(i)))
+                   for i, p in enumerate(model.paths))
+
+
 def settle(qtbot, w, timeout=60_000):
-    qtbot.waitUntil(w.idle, timeout=timeout)
+    qtbot.waitUntil(lambda: w.idle() and drawn(w), timeout=timeout)
 
 
 def answer_next_question(choose):
@@ -558,11 +570,13 @@ class Annotator:
         raise AssertionError(f"the keyboard cannot reach member {row}")
 
     def sweep(self):
-        """Look over the whole group, top to bottom, as a person does before accepting."""
+        """Look over the whole group, top to bottom, as a person does before accepting: each screenful is
+        looked at once it is drawn."""
         grid = self.w.group_page.grid
         self.key(Qt.Key.Key_Home)
         last = -1
         while grid.currentIndex().row() != last:
+            self.qtbot.waitUntil(lambda: drawn(self.w), timeout=20_000)
             last = grid.currentIndex().row()
             self.key(Qt.Key.Key_Down)
 
