@@ -113,8 +113,17 @@ def run(folder: Path, truth: dict[str, str], actions_wanted: int, sitting: int, 
         QTest.keyClick(w.windowHandle(), k, mods)
 
     def next_group_ready(before: int):
-        """The window showed a new group and takes the next decision (or has nothing left to show)."""
-        return lambda: shown[0] > before and (w.current() is None or w.actions["accept"].isEnabled())
+        """The window showed a new group, has nothing in flight, and takes the next decision (or has
+        nothing left to show)."""
+        return lambda: shown[0] > before and w.idle() and (w.current() is None or w.actions["accept"].isEnabled())
+
+    def drawn() -> bool:
+        """Every card inside the grid's viewport has been drawn with its picture (what a careful person
+        waits for before looking on or deciding)."""
+        grid, model = w.group_page.grid, w.group_model
+        view, unseen = grid.viewport().rect(), set(grid.unseen_paths())
+        return not any(p in unseen and view.contains(grid.visualRect(model.index(i)))
+                       for i, p in enumerate(model.paths))
 
     def script():
         """The annotator, as a generator: it yields a condition to wait for (checked every ~1 ms)."""
@@ -162,6 +171,18 @@ def run(folder: Path, truth: dict[str, str], actions_wanted: int, sitting: int, 
                     log.append(dict(kind="take out", start=t0, end=time.perf_counter()))
                     actions += 1
                     counts["taken_out"] += 1
+                # Look over the whole group before accepting, a screenful at a time (Home, then Down to the
+                # last row), so the accept does not stop to ask about photos never on screen.
+                key(Qt.Key.Key_Home)
+                last = -1
+                while True:
+                    yield drawn
+                    if not grid.unseen_paths() or grid.currentIndex().row() == last:
+                        break
+                    last = grid.currentIndex().row()
+                    key(Qt.Key.Key_Down)
+                if grid.unseen_paths():
+                    raise RuntimeError(f"{len(grid.unseen_paths())} photos of group {g.id} never came on screen")
                 if w.group_page.label.text().strip() != m:
                     t0 = time.perf_counter()
                     for ch in m:
