@@ -395,7 +395,7 @@ def test_gui_stays_responsive_during_a_real_scan(qtbot, window, demo_source, tmp
     assert shown.overall.text() == "Step 3 of 3"                    # finding groups once the scan ended
     assert f"{report.embedded} embedded" in shown.step_lines[1].text()
     # The closing line is shown with the first groups, once the engine thread has formed them.
-    qtbot.waitUntil(lambda: window.idle() and window.group_page.message.text().strip(), timeout=SCAN_TIMEOUT_MS)
+    qtbot.waitUntil(lambda: window.idle() and bool(window.group_page.message.text().strip()), timeout=SCAN_TIMEOUT_MS)
     note = window.group_page.message.text()
     assert note.startswith(f"{report.photos} photos ready ({report.embedded} embedded now")
     assert report.photos == window.project.status().photos

@@ -465,19 +465,19 @@ def test_the_export_dialog_stays_until_its_worker_has_ended(qtbot, window, demo,
     press(Qt.Key.Key_Return)
     settle(qtbot, w)
     started, release = threading.Event(), threading.Event()
-    original = w.project.export_csv
+    original = w.project.export
 
-    def slow_csv(path):
+    def slow_export(**kwargs):
         started.set()
         release.wait(5)
-        return original(path)
+        return original(**kwargs)
 
-    w.project.export_csv = slow_csv
+    w.project.export = slow_export
     press(Qt.Key.Key_E, CTRL)
     dlg = w.last_export
     dlg.destination.setText(str(tmp_path / "out"))
     dlg.run.click()
-    assert started.wait(10)                         # the worker is writing the CSV now
+    assert started.wait(10)                         # the worker is exporting now
     dlg.reject()
     qtbot.wait(100)
     assert dlg.isVisible() and dlg.running()        # still there while its worker runs
