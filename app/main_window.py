@@ -15,6 +15,7 @@ group nobody has seen. Mouse clicks meanwhile are refused with a message for the
 from __future__ import annotations
 
 import dataclasses
+import gc
 import importlib
 from dataclasses import dataclass
 from pathlib import Path
@@ -386,6 +387,11 @@ class MainWindow(QMainWindow):
             return engine_view(project, replay=replay)
 
         def done(view):
+            # What is loaded by now (the engine's modules and caches, Qt's, torch's) lives as long as
+            # the folder: moved out of the cyclic collector's reach, so its full passes (150-650 ms
+            # holding the interpreter lock, measured by benchmarks.window_stall --profile) do not
+            # freeze the window in the middle of a session. Cheap; repeated after each relearn.
+            gc.freeze()
             self.group_page.busy.hide()
             self.stack.setCurrentWidget(self.work)
             if view.curve is not None:
