@@ -132,6 +132,7 @@ class MainWindow(QMainWindow):
         self.last_preview = None
         self.last_export = None
         self.relearn_seconds: float | None = None   # time budget handed to the engine (None: its default)
+        self.accepted_as: dict[int, str] = {}       # group id -> the label it was accepted under here
         self.setWindowTitle("Kinfold")
         self.setStyleSheet(theme.STYLE)
         self.resize(1280, 820)
@@ -327,6 +328,7 @@ class MainWindow(QMainWindow):
         self.groups = []
         self.status = None
         self.curve = Curve()
+        self.accepted_as = {}
         self.group_model.set_photos([])
         self.review_model.set_photos([])
         self.setWindowTitle("Kinfold")
@@ -642,6 +644,7 @@ class MainWindow(QMainWindow):
         page.label.close_popup()
 
         def done(view):
+            self.accepted_as[g.id] = label   # an undo brings the group back with this label in the field
             page.say(f"Labelled {photos(kept)} “{label}”" +
                      (f"; {len(drop)} taken out went back to the pool." if drop else "."))
 
@@ -708,6 +711,11 @@ class MainWindow(QMainWindow):
                 # A split changes no label; what comes back is the whole group, shown first again.
                 n = len(view.groups[0].members) if view.groups else 0
                 where.say(f"Undid the split: the whole group ({photos(n)}) is back.")
+            elif undone["kind"] == "accept" and view.groups and view.groups[0].id in self.accepted_as \
+                    and where is self.group_page:
+                # The group is shown again: its label goes back in the field, ready to correct and accept.
+                self.group_page.label.reset(self.accepted_as[view.groups[0].id])
+                where.say(f"Undid the last accept ({photos(undone['photos'])}); its label is back in the field.")
             else:
                 where.say(f"Undid the last {undone['kind'].replace('_', ' ')} ({photos(undone['photos'])}).")
 

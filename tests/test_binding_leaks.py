@@ -91,6 +91,7 @@ def _probe(tmp: Path) -> None:
     _emit(binding=f"PySide6 {PySide6.__version__}", python=sys.version.split()[0])
     app = QApplication([sys.argv[0]])
 
+    from app.history import Curve
     from app.pages import LabelField
     from app.photo_grid import OUT_ROLE, PhotoGrid, PhotoModel
     from app.side_panel import SidePanel
@@ -137,9 +138,9 @@ def _probe(tmp: Path) -> None:
     status = Status(photos=10, labelled=3, set_aside=1, unlabelled=6, by_label={"washer": 3}, actions=2,
                     skipped=0)
     upcoming = [Proposal(7, ["p0.png", "p1.png"], 0.9, None, None, "new area")]
-    _measure("SidePanel.show_state", lambda: panel.show_state(status, upcoming, [(0, 0), (2, 3)]))
+    _measure("SidePanel.show_state", lambda: panel.show_state(status, upcoming, Curve([(0, 0), (2, 3)])))
     empty = Status(photos=10, labelled=0, set_aside=0, unlabelled=10, by_label={}, actions=0, skipped=0)
-    panel.show_state(empty, [], [(0, 0)])
+    panel.show_state(empty, [], Curve())
     no_labels = panel.labels.model().index(0, 0)
     _measure("side panel labels data() UserRole None", lambda: no_labels.data(role.UserRole))
     _measure("side panel item.data() None", lambda: panel.labels.item(0).data(role.UserRole))

@@ -221,6 +221,32 @@ def test_keys_act_when_the_window_is_not_active(qtbot, window, demo):
     store.close()
 
 
+def test_undoing_an_accept_brings_its_label_back(qtbot, window, demo):
+    """Ctrl+Z after an accept shows the group again with the label it was accepted under in the field,
+    so a correction (take a photo out, Return) needs no retyping."""
+    w = window
+    open_and_wait(qtbot, w, demo)
+    store, fp = reader(demo)
+    g = w.current()
+    focus(w.group_page.grid)
+    type_text("hex nut")
+    press(Qt.Key.Key_Return)
+    settle(qtbot, w)
+    assert w.current().id != g.id
+    press(Qt.Key.Key_Z, CTRL)
+    settle(qtbot, w)
+    assert [d["kind"] for d in store.decisions()] == ["accept", "undo"]
+    assert w.current().id == g.id and w.group_page.label.text() == "hex nut"
+    assert "label is back" in w.group_page.message.text()
+    press(Qt.Key.Key_Right)
+    press(Qt.Key.Key_Space)                     # the correction: one photo out, then Return
+    press(Qt.Key.Key_Return)
+    settle(qtbot, w)
+    d = store.decisions()[-1]
+    assert d["kind"] == "accept" and d["label"] == "hex nut" and sorted(d["photos"]) == sorted(g.members[:1] + g.members[2:])
+    store.close()
+
+
 def test_return_with_the_completion_popup_open(qtbot, window, demo):
     w = window
     open_and_wait(qtbot, w, demo)
