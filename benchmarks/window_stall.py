@@ -6,6 +6,11 @@ popups as a window system has them), while a 5 ms QTimer heartbeat runs on the G
     python -m benchmarks.window_stall                          # 10,000 photos, 300 actions (the figure)
     python -m benchmarks.window_stall --n 2000 --actions 100   # quick
 
+The annotator acts as a careful person: before each accept it looks the group over (Home, then Down
+a screenful at a time, each once drawn) so no photo is labelled unseen and the window's unseen-photo
+question never stops it, and it waits for `window.idle()` (nothing in flight, no key held) between
+actions. `--profile K` samples every thread's stack to say where the K longest stalls went.
+
 Prints the longest gap between heartbeats (target under 100 ms) and their 99th percentile, for the
 session and for opening the folder, the longest gaps with the action they fell in, the median action
 round trip (key press until the window shows the result), peak memory (ru_maxrss) and the command.
