@@ -1,5 +1,10 @@
 """Export: CSV, COCO JSON and/or class folders (optionally split train/val/test) into one destination
-folder, written in a worker; the dialog then says what was written."""
+folder, as one all-or-nothing export on the engine thread; the dialog then says what was written.
+
+When the engine refuses because the export would replace something Kinfold did not write (a file of
+the user's, a folder that is not an earlier export), nothing is written; the dialog shows the
+one-line reason and offers the explicit choice ("Replace labels.csv"), which exports again with
+overwrite=True. The choice holds for that one export only."""
 from __future__ import annotations
 
 from pathlib import Path
@@ -8,6 +13,7 @@ from PySide6.QtWidgets import (QCheckBox, QDialog, QDoubleSpinBox, QFileDialog, 
                                QLabel, QLineEdit, QPushButton, QRadioButton, QVBoxLayout, QWidget)
 
 from app.jobs import Job, JobProgress
+from core.export import ExportError, ExportRefused
 
 CSV_NAME, COCO_NAME, FOLDERS_NAME = "labels.csv", "labels.coco.json", "classes"
 
@@ -37,24 +43,41 @@ def export_report(written: dict) -> str:
 
 
 def run_export(project, destination: Path, csv: bool, coco: bool, folders: bool, split, mode: str,
-               progress, cancel) -> dict:
-    steps = [s for s, on in (("csv", csv), ("coco", coco), ("folders", folders)) if on]
+               overwrite: bool = False) -> dict:
+    """One export of the chosen formats into `destination`, all or nothing (`Project.export`). Returns
+    what was written ({"csv": {"path", "rows"}, ...}), or {"refused": ExportRefused} when it would
+    replace something Kinfold did not write (nothing is changed; `overwrite=True` goes ahead)."""
+    paths = {"csv": destination / CSV_NAME if csv else None, "coco": destination / COCO_NAME if coco else None,
+             "folders": destination / FOLDERS_NAME if folders else None}
+    # The destination folder itself is made here (its parent must exist), and removed again if the
+    # export writes nothing, so a refused export leaves no trace.
+    made = not destination.exists()
+    if made:
+        try:
+            destination.mkdir()
+        except FileNotFoundError:
+            raise ExportError(f"Cannot export to {destination}: the folder {destination.parent} does not "
+                              "exist; create it first or choose another destination.") from None
+        except OSError as exc:
+            raise ExportError(f"Cannot export to {destination}: {exc.strerror or exc}") from None
+    try:
+        result = project.export(**paths, split=split, mode=mode, overwrite=overwrite)
+    except BaseException as exc:
+        if made:
+            try:
+                destination.rmdir()
+            except OSError:
+                pass
+        if isinstance(exc, ExportRefused):
+            return {"refused": exc}
+        raise
     written: dict = {}
-    destination.mkdir(parents=True, exist_ok=True)
-    for i, step in enumerate(steps):
-        if cancel():
-            break
-        progress(i, len(steps), f"writing {step}")
-        if step == "csv":
-            path = destination / CSV_NAME
-            written["csv"] = {"path": str(path), "rows": project.export_csv(path)}
-        elif step == "coco":
-            path = destination / COCO_NAME
-            written["coco"] = {"path": str(path), **project.export_coco(path)}
-        else:
-            path = destination / FOLDERS_NAME
-            written["folders"] = {"path": str(path), "counts": project.export_folders(path, split=split, mode=mode)}
-    progress(len(steps), len(steps), "done")
+    if "csv" in result:
+        written["csv"] = {"path": str(paths["csv"]), "rows": result["csv"]}
+    if "coco" in result:
+        written["coco"] = {"path": str(paths["coco"]), **result["coco"]}
+    if "folders" in result:
+        written["folders"] = {"path": str(paths["folders"]), "counts": result["folders"]}
     return written
 
 
@@ -93,6 +116,11 @@ class ExportDialog(QDialog):
         self.run = QPushButton("Export")
         self.run.setObjectName("primary")
         self.run.setDefault(True)
+        # The explicit choice after a refusal; never the default button, so Return cannot replace a file.
+        self.replace = QPushButton()
+        self.replace.setAutoDefault(False)
+        self.replace.hide()
+        self.refused: ExportRefused | None = None
         close = QPushButton("Close")
 
         dest_row = QHBoxLayout()
@@ -123,6 +151,7 @@ class ExportDialog(QDialog):
         form.addRow("Photos as", mode_row)
         buttons = QHBoxLayout()
         buttons.addStretch(1)
+        buttons.addWidget(self.replace)
         buttons.addWidget(close)
         buttons.addWidget(self.run)
         lay = QVBoxLayout(self)
@@ -132,10 +161,17 @@ class ExportDialog(QDialog):
         lay.addLayout(buttons)
 
         choose.clicked.connect(self._choose)
-        self.run.clicked.connect(self.start)
+        self.run.clicked.connect(lambda: self.start())
+        self.replace.clicked.connect(lambda: self.start(overwrite=True))
         close.clicked.connect(self.reject)
         self.folders.toggled.connect(self._sync)
         self.split.toggled.connect(self._sync)
+        # A refusal is about the destination and formats it was given: any change withdraws the offer.
+        self.destination.textChanged.connect(self._withdraw)
+        for box in (self.csv, self.coco, self.folders, self.split, self.link, self.copy):
+            box.toggled.connect(self._withdraw)
+        for spin in self.fractions:
+            spin.valueChanged.connect(self._withdraw)
         self._sync()
 
     def _sync(self) -> None:
@@ -150,7 +186,14 @@ class ExportDialog(QDialog):
         if d:
             self.destination.setText(d)
 
-    def start(self) -> Job | None:
+    def _withdraw(self) -> None:
+        if self.refused is not None:
+            self.refused = None
+            self.replace.hide()
+            self.report.setText("")
+
+    def start(self, overwrite: bool = False) -> Job | None:
+        """Export what is chosen; `overwrite`: the user chose to replace what was refused."""
         if self.running():
             return None
         if not (self.csv.isChecked() or self.coco.isChecked() or self.folders.isChecked()):
@@ -163,17 +206,31 @@ class ExportDialog(QDialog):
         split = (tuple(s.value() for s in self.fractions)
                  if self.folders.isChecked() and self.split.isChecked() else None)
         args = (self.project, Path(text).expanduser(), self.csv.isChecked(), self.coco.isChecked(),
-                self.folders.isChecked(), split, "copy" if self.copy.isChecked() else "link")
-        self.job = Job("exporting", lambda progress, cancel: run_export(*args, progress, cancel), self)
+                self.folders.isChecked(), split, "copy" if self.copy.isChecked() else "link", overwrite)
+        self.job = Job("exporting", lambda progress, cancel: run_export(*args), self)
         self.progress.show()
         self.progress.attach(self.job)
+        self.progress.cancel_button.setEnabled(False)  # one all-or-nothing write: nothing to stop halfway
         self.run.setEnabled(False)
-        self.report.setText("")
+        self.replace.hide()
+        self.refused = None
+        self.report.setText("Writing " + ", ".join(n for n, box in (("the CSV table", self.csv),
+                                                                    ("the COCO file", self.coco),
+                                                                    ("the class folders", self.folders))
+                                                   if box.isChecked()) + "…")
         self.job.finished.connect(self._finished)
         self.job.failed.connect(self._failed)
         return self.job.start()
 
     def _finished(self, written: dict) -> None:
+        if "refused" in written:
+            self.refused = written["refused"]
+            self.report.setText(f"⚠  {self.refused.reason}. Nothing was written.")
+            self.replace.setText(self.refused.offer)
+            self.replace.setToolTip(str(self.refused))
+            self.replace.setVisible(not getattr(self, "_closing", False))
+            self._ended()
+            return
         self.written = written
         self.report.setText("Written:\n" + export_report(written))
         self._ended()
@@ -181,23 +238,21 @@ class ExportDialog(QDialog):
             self.on_written(written)
 
     def _failed(self, message: str) -> None:
-        self.report.setText(f"⚠  {message}\nNothing else was changed.")
+        self.report.setText(f"⚠  {message}" + ("" if "nothing was changed" in message else " Nothing was written."))
         self._ended()
 
     def running(self) -> bool:
         return self.job is not None and not self.job.wait(0)
 
     def reject(self) -> None:
-        """Close, or (while writing) stop after the current step and close once the worker has ended:
-        the dialog never goes away with its worker still running."""
+        """Close, or (while writing) close once the export has ended: the dialog never goes away with
+        its worker still running, and an export is never left half done."""
         if not self.running():
             super().reject()
             return
-        self.job.cancel()
         self._closing = True
         self.run.setEnabled(False)
-        self.progress.cancel_button.setEnabled(False)
-        self.report.setText("Stopping after the current step…")
+        self.report.setText("Closing once the export has finished…")
 
     def _ended(self) -> None:
         self.progress.hide()

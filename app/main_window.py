@@ -15,6 +15,7 @@ group nobody has seen. Mouse clicks meanwhile are refused with a message for the
 from __future__ import annotations
 
 import dataclasses
+import gc
 import importlib
 from dataclasses import dataclass
 from pathlib import Path
@@ -131,6 +132,7 @@ class MainWindow(QMainWindow):
         self.last_preview = None
         self.last_export = None
         self.relearn_seconds: float | None = None   # time budget handed to the engine (None: its default)
+        self.accepted_as: dict[int, str] = {}       # group id -> the label it was accepted under here
         self.setWindowTitle("Kinfold")
         self.setStyleSheet(theme.STYLE)
         self.resize(1280, 820)
@@ -326,6 +328,7 @@ class MainWindow(QMainWindow):
         self.groups = []
         self.status = None
         self.curve = Curve()
+        self.accepted_as = {}
         self.group_model.set_photos([])
         self.review_model.set_photos([])
         self.setWindowTitle("Kinfold")
@@ -386,6 +389,11 @@ class MainWindow(QMainWindow):
             return engine_view(project, replay=replay)
 
         def done(view):
+            # What is loaded by now (the engine's modules and caches, Qt's, torch's) lives as long as
+            # the folder: moved out of the cyclic collector's reach, so its full passes (150-650 ms
+            # holding the interpreter lock, measured by benchmarks.window_stall --profile) do not
+            # freeze the window in the middle of a session. Cheap; repeated after each relearn.
+            gc.freeze()
             self.group_page.busy.hide()
             self.stack.setCurrentWidget(self.work)
             if view.curve is not None:
@@ -476,6 +484,19 @@ class MainWindow(QMainWindow):
         if etype == QEvent.Type.MouseButtonPress:
             self._busy()
         return True
+
+    def keyPressEvent(self, event):
+        """A key no widget took. While the window is not active, Qt's window shortcuts do not fire: an X
+        server without a window manager sends keys to the window under the pointer yet never makes it
+        active. The key's action is triggered here then, as its shortcut would have been; an active
+        window never gets here with a shortcut's key (Qt's shortcut map takes it first)."""
+        if not self.isActiveWindow():
+            action = self._shortcut(event.key(), event.modifiers())
+            if action is not None:
+                event.accept()
+                action.trigger()
+                return
+        super().keyPressEvent(event)
 
     def _is_own_popup(self, win) -> bool:
         return any(win is f.completer().popup() for f in (self.group_page.label, self.review_page.new_label))
@@ -623,6 +644,7 @@ class MainWindow(QMainWindow):
         page.label.close_popup()
 
         def done(view):
+            self.accepted_as[g.id] = label   # an undo brings the group back with this label in the field
             page.say(f"Labelled {photos(kept)} “{label}”" +
                      (f"; {len(drop)} taken out went back to the pool." if drop else "."))
 
@@ -689,6 +711,11 @@ class MainWindow(QMainWindow):
                 # A split changes no label; what comes back is the whole group, shown first again.
                 n = len(view.groups[0].members) if view.groups else 0
                 where.say(f"Undid the split: the whole group ({photos(n)}) is back.")
+            elif undone["kind"] == "accept" and view.groups and view.groups[0].id in self.accepted_as \
+                    and where is self.group_page:
+                # The group is shown again: its label goes back in the field, ready to correct and accept.
+                self.group_page.label.reset(self.accepted_as[view.groups[0].id])
+                where.say(f"Undid the last accept ({photos(undone['photos'])}); its label is back in the field.")
             else:
                 where.say(f"Undid the last {undone['kind'].replace('_', ' ')} ({photos(undone['photos'])}).")
 

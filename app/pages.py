@@ -305,8 +305,9 @@ class ScanProgress(JobProgress):
     @staticmethod
     def _embed_result(done: int, total: int, message: str) -> str | None:
         """The engine's closing words for the embedding ("done: 345 embedded, 1 could not be read"),
-        when they speak for the whole scan: the engine embeds in chunks, and a chunk's closing words
-        count that chunk only."""
+        when they speak for the whole scan: their figures must add up to the count shown (the engine
+        embeds in chunks and counts across them; words that count less are not passed off as the
+        scan's)."""
         if not message.startswith(("done:", "cancelled:")):
             return None
         numbers = [int(w) for w in message.replace(",", " ").split() if w.isdigit()]

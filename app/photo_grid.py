@@ -350,4 +350,10 @@ class PhotoGrid(QListView):
         if text and text.isprintable() and not text.isspace() and text != "?" and mods == Qt.KeyboardModifier.NoModifier:
             self.typed.emit(text)
             return
+        if text == "?" or (event.key() == Qt.Key.Key_Space
+                           and self.selectionMode() == QAbstractItemView.SelectionMode.NoSelection):
+            # The window's keys (help, take out) rather than the list's type-to-find: when no shortcut
+            # took them (the window not active), they go on up to the window.
+            event.ignore()
+            return
         super().keyPressEvent(event)

@@ -6,6 +6,11 @@ popups as a window system has them), while a 5 ms QTimer heartbeat runs on the G
     python -m benchmarks.window_stall                          # 10,000 photos, 300 actions (the figure)
     python -m benchmarks.window_stall --n 2000 --actions 100   # quick
 
+The annotator acts as a careful person: before each accept it looks the group over (Home, then Down
+a screenful at a time, each once drawn) so no photo is labelled unseen and the window's unseen-photo
+question never stops it, and it waits for `window.idle()` (nothing in flight, no key held) between
+actions. `--profile K` samples every thread's stack to say where the K longest stalls went.
+
 Prints the longest gap between heartbeats (target under 100 ms) and their 99th percentile, for the
 session and for opening the folder, the longest gaps with the action they fell in, the median action
 round trip (key press until the window shows the result), peak memory (ru_maxrss) and the command.
@@ -82,7 +87,71 @@ def percentile(values: list[float], q: float) -> float:
     return s[min(len(s) - 1, max(0, round(q / 100 * (len(s) - 1))))] if s else float("nan")
 
 
-def run(folder: Path, truth: dict[str, str], actions_wanted: int, sitting: int, size=(1280, 820)) -> dict:
+class Sampler:
+    """--profile: a thread that notes, every ~2 ms, where each thread is (its innermost frames), so the
+    longest stalls can be attributed. A sampler that could not run for a while shows a thread holding
+    the interpreter lock in C code."""
+
+    def __init__(self, every: float = 0.002):
+        import threading
+
+        self.every, self.samples, self.gui = every, [], threading.get_ident()
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._loop, daemon=True)
+
+    def start(self):
+        self._thread.start()
+
+    def stop(self):
+        self._stop.set()
+        self._thread.join()
+
+    def _loop(self):
+        import threading
+
+        me = threading.get_ident()
+        while not self._stop.wait(self.every):
+            now = time.perf_counter()
+            stacks = {}
+            for ident, frame in sys._current_frames().items():
+                if ident == me:
+                    continue
+                where = []
+                while frame is not None and len(where) < 40:
+                    where.append(f"{Path(frame.f_code.co_filename).name}:{frame.f_lineno} {frame.f_code.co_name}")
+                    frame = frame.f_back
+                stacks["gui" if ident == self.gui else "other"] = stacks.get("gui" if ident == self.gui else "other", []) + [where]
+            self.samples.append((now, stacks))
+
+    def report(self, start: float, end: float, depth: int = 8) -> str:
+        from collections import Counter
+
+        inside = [(t, st) for t, st in self.samples if start <= t <= end]
+        times = [start] + [t for t, _ in inside] + [end]
+        longest_hole = max(b - a for a, b in zip(times, times[1:])) * 1000
+        gui = Counter(" < ".join(st["gui"][0][:depth]) for _, st in inside if st.get("gui"))
+        other = Counter(" < ".join(w[:4]) for _, st in inside for w in st.get("other", [])
+                        if not any("wait" in f or "_loop" in f for f in w[:1]))
+        lines = [f"    {len(inside)} samples; longest time with no sample (the lock held in C code): "
+                 f"{longest_hole:.0f} ms"]
+        # Where each thread was just before and just after that hole: the one holding the lock
+        # returns from its long call right after it.
+        stamps = [t for t, _ in self.samples]
+        hole = max(range(1, len(stamps)), key=lambda i: stamps[i] - stamps[i - 1] if start <= stamps[i] <= end + 0.05
+                   else -1, default=None)
+        if hole is not None:
+            for when, (_, st) in (("before", self.samples[hole - 1]), ("after", self.samples[hole])):
+                for name, stacks in st.items():
+                    for w in stacks:
+                        if name == "gui" or not any("wait" in f or "_loop" in f for f in w[:1]):
+                            lines.append(f"    {when} the hole, {name}: " + " < ".join(w[:depth + 4]))
+        lines += [f"    gui  {n:3d}x {where}" for where, n in gui.most_common(4)]
+        lines += [f"    other {n:3d}x {where}" for where, n in other.most_common(3)]
+        return "\n".join(lines)
+
+
+def run(folder: Path, truth: dict[str, str], actions_wanted: int, sitting: int, size=(1280, 820),
+        sampler: Sampler | None = None) -> dict:
     os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     from PySide6.QtCore import QSettings, Qt, QTimer
     from PySide6.QtTest import QTest
@@ -113,8 +182,17 @@ def run(folder: Path, truth: dict[str, str], actions_wanted: int, sitting: int, 
         QTest.keyClick(w.windowHandle(), k, mods)
 
     def next_group_ready(before: int):
-        """The window showed a new group and takes the next decision (or has nothing left to show)."""
-        return lambda: shown[0] > before and (w.current() is None or w.actions["accept"].isEnabled())
+        """The window showed a new group, has nothing in flight, and takes the next decision (or has
+        nothing left to show)."""
+        return lambda: shown[0] > before and w.idle() and (w.current() is None or w.actions["accept"].isEnabled())
+
+    def drawn() -> bool:
+        """Every card inside the grid's viewport has been drawn with its picture (what a careful person
+        waits for before looking on or deciding)."""
+        grid, model = w.group_page.grid, w.group_model
+        view, unseen = grid.viewport().rect(), set(grid.unseen_paths())
+        return not any(p in unseen and view.contains(grid.visualRect(model.index(i)))
+                       for i, p in enumerate(model.paths))
 
     def script():
         """The annotator, as a generator: it yields a condition to wait for (checked every ~1 ms)."""
@@ -162,6 +240,18 @@ def run(folder: Path, truth: dict[str, str], actions_wanted: int, sitting: int, 
                     log.append(dict(kind="take out", start=t0, end=time.perf_counter()))
                     actions += 1
                     counts["taken_out"] += 1
+                # Look over the whole group before accepting, a screenful at a time (Home, then Down to the
+                # last row), so the accept does not stop to ask about photos never on screen.
+                key(Qt.Key.Key_Home)
+                last = -1
+                while True:
+                    yield drawn
+                    if not grid.unseen_paths() or grid.currentIndex().row() == last:
+                        break
+                    last = grid.currentIndex().row()
+                    key(Qt.Key.Key_Down)
+                if grid.unseen_paths():
+                    raise RuntimeError(f"{len(grid.unseen_paths())} photos of group {g.id} never came on screen")
                 if w.group_page.label.text().strip() != m:
                     t0 = time.perf_counter()
                     for ch in m:
@@ -212,6 +302,8 @@ def run(folder: Path, truth: dict[str, str], actions_wanted: int, sitting: int, 
     driver.setInterval(1)
     driver.timeout.connect(pump)
     heart.start()
+    if sampler is not None:
+        sampler.start()
     driver.start()
     app.exec()
     driver.stop()
@@ -220,6 +312,8 @@ def run(folder: Path, truth: dict[str, str], actions_wanted: int, sitting: int, 
     w.close()
     out["close_s"] = time.perf_counter() - t0
     shutil.rmtree(tmp, ignore_errors=True)
+    if sampler is not None:
+        sampler.stop()
     out.update(beats=beats, log=log, marks=marks)
     return out
 
@@ -245,6 +339,8 @@ def main(argv=None) -> int:
     ap.add_argument("--n", type=int, default=10000, help="Fashion-MNIST test photos (default 10000)")
     ap.add_argument("--actions", type=int, default=300)
     ap.add_argument("--sitting", type=int, default=100, help="relearn every this many actions (0: never)")
+    ap.add_argument("--profile", type=int, default=0, metavar="K",
+                    help="sample every thread's stack and say where the K longest stalls were spent")
     ap.add_argument("--work", default=str(Path.home() / ".cache" / "kinfold-bench" / "window"))
     args = ap.parse_args(argv)
     command = "python -m benchmarks.window_stall " + " ".join(sys.argv[1:] if argv is None else argv)
@@ -255,7 +351,8 @@ def main(argv=None) -> int:
     fresh_store(folder, base)
     print(f"prepared {args.n} photos and their store in {time.perf_counter() - t0:.0f} s ({folder})", flush=True)
     load_before = os.getloadavg()[0]
-    r = run(folder, truth, args.actions, args.sitting)
+    sampler = Sampler() if args.profile else None
+    r = run(folder, truth, args.actions, args.sitting, sampler=sampler)
     marks, log = r["marks"], r["log"]
     if "error" in r:
         print("STOPPED:", r["error"])
@@ -287,6 +384,10 @@ def main(argv=None) -> int:
     print(f"99th percentile of heartbeat gaps: {p99:.1f} ms; gaps over {TARGET_MS:.0f} ms: "
           f"{sum(g > TARGET_MS for g, _ in session)}")
     print("longest stalls: " + ", ".join(f"{g:.0f} ms ({during(t)})" for g, t in sorted(session, reverse=True)[:6]))
+    if sampler is not None:
+        for g, t in sorted(session, reverse=True)[:args.profile]:
+            print(f"  stall of {g:.0f} ms ({during(t)}), where the threads were:")
+            print(sampler.report(t - g / 1000, t))
     if opening:
         print(f"opening the folder ({marks['session'] - marks['open']:.1f} s until the first group): "
               f"longest stall {max(g for g, _ in opening):.0f} ms, 99th percentile "

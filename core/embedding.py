@@ -274,11 +274,24 @@ def embed_files(
     progress: Progress | None = None,
     cancel: Cancel | None = None,
     flipped_view: bool = False,
+    counted: tuple[int, int, int] | None = None,
 ) -> EmbedResult:
     """Embed ``paths`` in order. Photos that cannot be read go to ``failed`` (not a readable photo)
     or ``retry`` (a failure that may pass, including the network failing on a batch); on cancel the
-    photos embedded so far are returned with ``cancelled=True``. Safe to call from any thread."""
+    photos embedded so far are returned with ``cancelled=True``. Safe to call from any thread.
+
+    ``counted``: (embedded, unreadable, total) of a longer run this call is one part of (a scan embeds
+    in chunks). Progress then counts, in its figures and its words, across the whole run, and the
+    closing words ("done: …") come only from the part that ends it (or is cancelled)."""
     total = len(paths)
+    ok0, bad0, run_total = counted or (0, 0, total)
+
+    def report(state: str | None = None) -> None:
+        if progress:
+            n_ok, n_bad = ok0 + len(ok), bad0 + len(failed) + len(retry)
+            progress(n_ok + n_bad, run_total, f"embedded {n_ok} of {run_total} photos" if state is None
+                     else f"{state}: {n_ok} embedded, {n_bad} could not be read")
+
     workers = max(1, workers or os.cpu_count() or 1)
     window = 2 * batch_size + workers  # photos decoded ahead: the next batch overlaps inference
     chunks: list[np.ndarray] = []
@@ -303,8 +316,7 @@ def embed_files(
                 flipped_chunks.append(flipped)
             ok.extend(batch_idx)
         batch_idx.clear(), batch.clear(), batch_flipped.clear()
-        if progress:
-            progress(len(ok) + len(failed) + len(retry), total, f"embedded {len(ok)} of {total} photos")
+        report()
 
     pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="kinfold-decode")
     try:
@@ -332,10 +344,12 @@ def embed_files(
                     batch_flipped.append(prepared[1])
             if len(batch) == batch_size or (not pending and submitted == total and batch):
                 run_batch()
-        if progress:
-            done = len(ok) + len(failed) + len(retry)
-            state = "cancelled" if cancelled else "done"
-            progress(done, total, f"{state}: {len(ok)} embedded, {len(failed) + len(retry)} could not be read")
+        if cancelled:
+            report("cancelled")
+        elif ok0 + bad0 + total >= run_total:  # the last part of the run
+            report("done")
+        else:
+            report()
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
 

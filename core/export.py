@@ -69,6 +69,16 @@ class ExportError(Exception):
     """An export could not be written; nothing at the destination was changed."""
 
 
+class ExportRefused(ExportError):
+    """The export would replace what Kinfold did not write; ``overwrite=True`` goes ahead. ``reason`` is
+    the refusal without the advice on the command line's flag; ``offer`` names the explicit choice
+    (what ``overwrite=True`` does here), for a button."""
+
+    def __init__(self, message: str, reason: str, offer: str):
+        super().__init__(message)
+        self.reason, self.offer = reason, offer
+
+
 @dataclass(frozen=True)
 class LabelledPhoto:
     path: str          # relative POSIX path inside the photo folder
@@ -672,9 +682,9 @@ def _check_destinations(dests: dict[str, Path], protected: list[tuple[Path, str]
             raise ExportError(f"Cannot export to {dest}: it is a folder, not a file; give a "
                               "file name.")
         elif os.path.lexists(dest) and not overwrite and not is_kinfold_file(dest):
-            raise ExportError(f"Cannot export to {dest}: the file exists and is not a Kinfold "
-                              "export; choose another name, or overwrite it (--overwrite, "
-                              "overwrite=True).")
+            reason = f"Cannot export to {dest}: the file exists and is not a Kinfold export"
+            raise ExportRefused(f"{reason}; choose another name, or overwrite it (--overwrite, "
+                                "overwrite=True).", reason, f"Replace {dest.name}")
 
 
 def _folder_keeps(dest: Path, plan, overwrite: bool) -> dict[str, str]:
@@ -686,10 +696,10 @@ def _folder_keeps(dest: Path, plan, overwrite: bool) -> dict[str, str]:
             return {}
     ours = _previous_export_files(dest)
     if ours is None and not overwrite:
-        raise ExportError(f"Cannot export to {dest}: the folder is not empty and is not a previous "
-                          "Kinfold export; choose an empty or new folder, or write into it "
-                          "(--overwrite, overwrite=True: its files are kept unless a photo takes "
-                          "their name).")
+        reason = f"Cannot export to {dest}: the folder is not empty and is not a previous Kinfold export"
+        raise ExportRefused(f"{reason}; choose an empty or new folder, or write into it (--overwrite, "
+                            "overwrite=True: its files are kept unless a photo takes their name).",
+                            reason, f"Write into {dest.name} (its files are kept unless a photo takes their name)")
     kept = _kept_entries(dest, ours or set())
     _, files, dirs, _ = plan
     # Compared as a case-insensitive disk would, so the rule is the same on every disk.
@@ -699,9 +709,10 @@ def _folder_keeps(dest: Path, plan, overwrite: bool) -> dict[str, str]:
                if _fold(rel) in new and not (kind == new[_fold(rel)] == "dir")]
     if clashes and not overwrite:
         more = f" (and {len(clashes) - 3} more)" if len(clashes) > 3 else ""
-        raise ExportError(f"Cannot export to {dest}: {', '.join(sorted(clashes)[:3])}{more} "
-                          "were not written by Kinfold, and labelled photos would take their "
-                          "names; move them away, or replace them (--overwrite, overwrite=True).")
+        reason = (f"Cannot export to {dest}: {', '.join(sorted(clashes)[:3])}{more} were not written by "
+                  "Kinfold, and labelled photos would take their names")
+        raise ExportRefused(f"{reason}; move them away, or replace them (--overwrite, overwrite=True).",
+                            reason, "Replace " + ("that file" if len(clashes) == 1 else f"those {len(clashes)} files"))
     lost = set(clashes)  # overwrite: the export wins, and nothing kept stays inside a lost one
     return {k: v for k, v in kept.items()
             if k not in lost and not any(str(a) in lost for a in PurePosixPath(k).parents)}

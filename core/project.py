@@ -265,13 +265,9 @@ class Project:
 
             for start in range(0, len(todo_rows), _EMBED_CHUNK):
                 chunk = todo_rows[start:start + _EMBED_CHUNK]
-
-                def chunk_progress(done, total, message, _base=start):
-                    if progress:
-                        progress(_base + done, len(todo_rows), message)
-
-                res = embed_files([self.folder / r.path for r in chunk], extractor,
-                                  progress=chunk_progress, cancel=cancel)
+                # Progress counts across the whole scan (every earlier chunk was embedded or unreadable).
+                res = embed_files([self.folder / r.path for r in chunk], extractor, progress=progress,
+                                  cancel=cancel, counted=(embedded, start - embedded, len(todo_rows)))
                 self.store.put_embeddings(extractor.id, [chunk[i].fingerprint for i in res.ok], res.vectors)
                 embedded += len(res.ok)
                 for i, reason in res.failed:

@@ -440,8 +440,9 @@ def test_cancelling_a_scan_keeps_what_was_embedded(qtbot, window, demo_source, t
 
 
 def test_scan_steps_stay_true_over_chunked_embedding(qtbot):
-    """The engine embeds in chunks of 1,024 and each chunk's closing words count that chunk only
-    (core/project.py, core/embedding.py); the scan page must not pass them off as the whole scan's."""
+    """The engine embeds in chunks of 1,024 (core/project.py) and counts across them
+    (tests/test_project.py::test_scan_progress_counts_across_chunks); should closing words ever count
+    less than the bar (one chunk's), the scan page must not pass them off as the whole scan's."""
     from app.pages import ScanProgress
 
     shown = ScanProgress()
@@ -455,7 +456,7 @@ def test_scan_steps_stay_true_over_chunked_embedding(qtbot):
     for done in range(1, 2501, 500):
         shown.show_progress(done, 2500, "reading files")
     assert shown.overall.text() == "Step 1 of 3" and shown.bar.maximum() == 2500
-    # Chunk 1 of 3 (the messages core.project.scan passes on: overall counts, chunk-local words).
+    # Chunk 1 of 3, with chunk-local words (as the engine once sent them).
     shown.show_progress(1000, 3000, "embedded 1000 of 1024 photos")
     assert shown.overall.text() == "Step 2 of 3" and "2500 files read" in shown.step_lines[0].text()
     shown.show_progress(1024, 3000, "done: 1020 embedded, 4 could not be read")

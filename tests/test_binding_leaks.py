@@ -91,6 +91,7 @@ def _probe(tmp: Path) -> None:
     _emit(binding=f"PySide6 {PySide6.__version__}", python=sys.version.split()[0])
     app = QApplication([sys.argv[0]])
 
+    from app.history import Curve
     from app.pages import LabelField
     from app.photo_grid import OUT_ROLE, PhotoGrid, PhotoModel
     from app.history import Curve

@@ -224,7 +224,7 @@ def test_click_takes_out_and_the_header_counts_what_accept_labels(qtbot, tmp_pat
     grid.setFocus()
     before = p.status().labelled
     focused_key(Qt.Key.Key_Return)
-    qtbot.waitUntil(w.idle, timeout=20_000)                 # the decision runs on the engine thread
+    qtbot.waitUntil(w.idle, timeout=20_000)                 # the accept runs on the engine thread
     # Outside the window: the engine's own count of labelled photos grew by the header's figure.
     assert p.status().labelled - before == n - 1
     assert p.photo_info(g.members[1])["state"] == "unlabelled"
@@ -262,7 +262,7 @@ def test_accept_asks_before_labelling_photos_never_on_screen(qtbot, tmp_path, sc
     if left:
         assert page.question.isVisible()
         focused_key(Qt.Key.Key_Return)                      # Return confirms
-    qtbot.waitUntil(w.idle, timeout=20_000)                 # the decision runs on the engine thread
+    qtbot.waitUntil(w.idle, timeout=20_000)                 # the accept runs on the engine thread
     assert len(p.store.decisions()) == decisions + 1
     last = p.store.decisions()[-1]
     assert last["kind"] == "accept" and sorted(last["photos"]) == sorted(g.members)
@@ -277,7 +277,7 @@ def test_accept_does_not_ask_when_everything_was_seen(qtbot, tmp_path, scanned_d
     grid.setFocus()
     focused_key(Qt.Key.Key_Return)
     assert not page.question.isVisible()
-    qtbot.waitUntil(w.idle, timeout=20_000)
+    qtbot.waitUntil(w.idle, timeout=20_000)                 # the accept runs on the engine thread
     assert p.store.decisions()[-1]["kind"] == "accept" and sorted(p.store.decisions()[-1]["photos"]) == sorted(g.members)
 
 

@@ -259,3 +259,32 @@ def test_fresh_scan_counts_new_photos_not_files_left_out(tmp_path):
         rep = p.scan()
     assert rep.new == rep.photos == 30
     assert {path for path, _ in rep.skipped} == {"b/broken.jpg", "notes.txt"}
+
+
+def test_scan_progress_counts_across_chunks(tmp_path, monkeypatch):
+    """The scan embeds in chunks (a crash loses at most one); its progress, figures and words alike,
+    counts across the whole scan, and says "done" once, at the end."""
+    import re
+
+    import core.project
+    from tests.conftest import _photo_folder
+
+    monkeypatch.setattr(core.project, "_EMBED_CHUNK", 7)       # 30 photos: five chunks
+    folder = _photo_folder(tmp_path / "photos")
+    seen: list[tuple[int, int, str]] = []
+    with Project.open(folder) as p:
+        rep = p.scan(progress=lambda done, total, message: seen.append((done, total, message)))
+    embedding = [s for s in seen if "embedded" in s[2]]
+    assert rep.embedded == 30 and len(embedding) > 5
+    totals = {total for _, total, _ in embedding}
+    assert len(totals) == 1
+    total = totals.pop()
+    dones = [done for done, _, _ in embedding]
+    assert dones == sorted(dones) and dones[-1] == total
+    for done, _, message in embedding[:-1]:
+        m = re.fullmatch(r"embedded (\d+) of (\d+) photos", message)
+        assert m, message                                          # no chunk's closing words midway
+        assert int(m[2]) == total and int(m[1]) <= done
+    assert max(int(m.split()[1]) for _, _, m in embedding[:-1]) > 7  # counted past the first chunk
+    last = re.fullmatch(r"done: (\d+) embedded, (\d+) could not be read", embedding[-1][2])
+    assert last and int(last[1]) == rep.embedded and int(last[1]) + int(last[2]) == total

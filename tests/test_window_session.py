@@ -68,18 +68,20 @@ def type_text(text):
         QTest.keyClicks(target(), ch)
 
 
-def settle(qtbot, w, timeout=60_000):
-    """Wait for the engine thread, then look the current group over as a careful person does (an
-    accept asks first while some members were never on screen; tests/test_grid_layout.py checks that)."""
-    qtbot.waitUntil(w.idle, timeout=timeout)
+def drawn(w) -> bool:
+    """Every photo card inside the group grid's viewport has been drawn with its picture: what a careful
+    person waits for before deciding (an accept asks first about members never on screen)."""
     grid = w.group_page.grid
-    if w.stack.currentWidget() is w.work and w.current() is not None:
-        bar = grid.verticalScrollBar()
-        for value in range(0, bar.maximum() + bar.pageStep(), max(bar.pageStep(), 1)):
-            bar.setValue(value)
-            qtbot.wait(20)
-        qtbot.waitUntil(lambda: not grid.unseen_paths(), timeout=timeout)
-        bar.setValue(0)
+    if w.stack.currentWidget() is not w.work or not grid.isVisible():
+        return True
+    view, model = grid.viewport().rect(), grid.photo_model()
+    unseen = set(grid.unseen_paths())
+    return not any(p in unseen and view.contains(grid.visualRect(model.index(i)))
+                   for i, p in enumerate(model.paths))
+
+
+def settle(qtbot, w, timeout=60_000):
+    qtbot.waitUntil(lambda: w.idle() and drawn(w), timeout=timeout)
 
 
 def answer_next_question(choose):
@@ -165,6 +167,83 @@ def test_return_from_the_field_and_from_the_grid(qtbot, window, demo):
     settle(qtbot, w)
     assert {label_of(store, fp, m) for m in second.members} == {("labelled", "washer")}
     assert [d["kind"] for d in store.decisions()] == ["accept", "accept"]   # one decision per Return
+    store.close()
+
+
+def test_keys_act_when_the_window_is_not_active(qtbot, window, demo):
+    """An X server without a window manager sends keys to the window under the pointer but never makes
+    it active, so Qt's window shortcuts do not fire (tests/test_real_window.py's "pointer" case). The
+    grid's Space, Return and a decision's shortcut must still act: another window is made active here,
+    and keys go through QTest to this window's focus widget (QTest tries the shortcut map first, as X
+    delivery does, and it finds no match for an inactive window)."""
+    from PySide6.QtWidgets import QWidget
+
+    w = window
+    open_and_wait(qtbot, w, demo)
+    store, fp = reader(demo)
+    grid = w.group_page.grid
+    qtbot.waitUntil(lambda: not grid.unseen_paths(), timeout=20_000)
+    other = QWidget()
+    qtbot.addWidget(other)
+    other.show()
+    other.activateWindow()
+    qtbot.waitUntil(lambda: QApplication.activeWindow() is other)
+    grid.setFocus()
+
+    def key(k, mods=NO):
+        QTest.keyClick(w.focusWidget(), k, mods)   # where X delivers it: this window's focus widget
+
+    g = w.current()
+    key(Qt.Key.Key_Right)
+    key(Qt.Key.Key_Space)
+    assert w.group_model.taken_out() == [g.members[1]]
+    for ch in "hex nut":
+        QTest.keyClicks(w.focusWidget(), ch)
+    assert w.focusWidget() is w.group_page.label and w.group_page.label.text() == "hex nut"
+    key(Qt.Key.Key_Return)
+    settle(qtbot, w)
+    assert label_of(store, fp, g.members[1]) is None
+    assert {label_of(store, fp, m) for m in g.members if m != g.members[1]} == {("labelled", "hex nut")}
+
+    # Return from the grid (the focus goes back there after an accept), then Ctrl+L on the next group.
+    g = w.current()
+    assert w.focusWidget() is grid and QApplication.activeWindow() is other
+    w.group_page.label.setText("washer")
+    qtbot.waitUntil(lambda: not grid.unseen_paths(), timeout=20_000)
+    key(Qt.Key.Key_Return)
+    settle(qtbot, w)
+    assert {label_of(store, fp, m) for m in g.members} == {("labelled", "washer")}
+    g = w.current()
+    key(Qt.Key.Key_L, CTRL)
+    settle(qtbot, w)
+    assert [d["kind"] for d in store.decisions()] == ["accept", "accept"]
+    assert set(store.deferred()) == {fp[m] for m in g.members} and w.current().id != g.id   # left for later
+    store.close()
+
+
+def test_undoing_an_accept_brings_its_label_back(qtbot, window, demo):
+    """Ctrl+Z after an accept shows the group again with the label it was accepted under in the field,
+    so a correction (take a photo out, Return) needs no retyping."""
+    w = window
+    open_and_wait(qtbot, w, demo)
+    store, fp = reader(demo)
+    g = w.current()
+    focus(w.group_page.grid)
+    type_text("hex nut")
+    press(Qt.Key.Key_Return)
+    settle(qtbot, w)
+    assert w.current().id != g.id
+    press(Qt.Key.Key_Z, CTRL)
+    settle(qtbot, w)
+    assert [d["kind"] for d in store.decisions()] == ["accept", "undo"]
+    assert w.current().id == g.id and w.group_page.label.text() == "hex nut"
+    assert "label is back" in w.group_page.message.text()
+    press(Qt.Key.Key_Right)
+    press(Qt.Key.Key_Space)                     # the correction: one photo out, then Return
+    press(Qt.Key.Key_Return)
+    settle(qtbot, w)
+    d = store.decisions()[-1]
+    assert d["kind"] == "accept" and d["label"] == "hex nut" and sorted(d["photos"]) == sorted(g.members[:1] + g.members[2:])
     store.close()
 
 
@@ -412,19 +491,19 @@ def test_the_export_dialog_stays_until_its_worker_has_ended(qtbot, window, demo,
     press(Qt.Key.Key_Return)
     settle(qtbot, w)
     started, release = threading.Event(), threading.Event()
-    original = w.project.export_csv
+    original = w.project.export
 
-    def slow_csv(path):
+    def slow_export(**kwargs):
         started.set()
         release.wait(5)
-        return original(path)
+        return original(**kwargs)
 
-    w.project.export_csv = slow_csv
+    w.project.export = slow_export
     press(Qt.Key.Key_E, CTRL)
     dlg = w.last_export
     dlg.destination.setText(str(tmp_path / "out"))
     dlg.run.click()
-    assert started.wait(10)                         # the worker is writing the CSV now
+    assert started.wait(10)                         # the worker is exporting now
     dlg.reject()
     qtbot.wait(100)
     assert dlg.isVisible() and dlg.running()        # still there while its worker runs
@@ -517,11 +596,13 @@ class Annotator:
         raise AssertionError(f"the keyboard cannot reach member {row}")
 
     def sweep(self):
-        """Look over the whole group, top to bottom, as a person does before accepting."""
+        """Look over the whole group, top to bottom, as a person does before accepting: each screenful is
+        looked at once it is drawn."""
         grid = self.w.group_page.grid
         self.key(Qt.Key.Key_Home)
         last = -1
         while grid.currentIndex().row() != last:
+            self.qtbot.waitUntil(lambda: drawn(self.w), timeout=20_000)
             last = grid.currentIndex().row()
             self.key(Qt.Key.Key_Down)
 
