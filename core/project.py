@@ -89,7 +89,7 @@ class Status:
     set_aside: int
     unlabelled: int
     by_label: dict[str, int]
-    actions: int                                  # decisions recorded (undo counts as one)
+    actions: int                                  # decisions recorded, undo not counted
     skipped: int
     relearned_version: int | None = None
 
@@ -671,7 +671,7 @@ class Project:
                 aside += 1
         return Status(photos=len(self._rows), labelled=labelled, set_aside=aside,
                       unlabelled=len(self._rows) - labelled - aside, by_label=dict(sorted(by_label.items())),
-                      actions=self.store.decision_count(), skipped=len(self.store.skipped()),
+                      actions=self.store.decision_count(actions_only=True), skipped=len(self.store.skipped()),
                       relearned_version=self.store.active_relearn_version())
 
     @_serialised

@@ -425,9 +425,12 @@ class Store:
             out.setdefault(fp, set()).add(lab)
         return out
 
-    def decision_count(self) -> int:
+    def decision_count(self, actions_only: bool = False) -> int:
+        """Decisions logged; `actions_only`: leaving out undos (an undo takes an action back, it is
+        not one — the figure the window's chart and `status` show)."""
+        q = "SELECT COUNT(*) FROM decisions" + (" WHERE kind != 'undo'" if actions_only else "")
         with self._lock:
-            return self._conn().execute("SELECT COUNT(*) FROM decisions").fetchone()[0]
+            return self._conn().execute(q).fetchone()[0]
 
     def decisions(self) -> list[dict]:
         with self._lock:

@@ -288,3 +288,17 @@ def test_scan_progress_counts_across_chunks(tmp_path, monkeypatch):
     assert max(int(m.split()[1]) for _, _, m in embedding[:-1]) > 7  # counted past the first chunk
     last = re.fullmatch(r"done: (\d+) embedded, (\d+) could not be read", embedding[-1][2])
     assert last and int(last[1]) == rep.embedded and int(last[1]) + int(last[2]) == total
+
+
+def test_status_actions_leave_undo_out_as_the_window_chart_does(photo_project_folder):
+    """The window's chart counted 17 actions where `status` said 18: an undo takes an action back,
+    it is not one (app/history.py draws it that way). Both now count decisions without undos."""
+    from app.history import labelled_curve
+
+    with Project.open(photo_project_folder, annotator="tester") as p:
+        p.label(["a/chelsea_0.jpg"], "cat")
+        p.label(["a/chelsea_1.jpg"], "cat")
+        p.undo()
+        st = p.status()
+        assert st.actions == 2 and st.labelled == 1
+        assert labelled_curve(p.store.decisions())[-1] == (st.actions, st.labelled)
