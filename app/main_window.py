@@ -677,7 +677,8 @@ class MainWindow(QMainWindow):
         g = self.current()
         if g is None or self._busy():
             return
-        self._act("later", lambda p: p.defer(g.id), lambda view: self.group_page.say("Left for later."))
+        self._act("later", lambda p: p.defer(g.id), lambda view: self.group_page.say("Left for later."),
+                  counts="later")  # a logged decision: the chart replayed at reopening counts it too
 
     def set_aside(self) -> None:
         g = self.current()

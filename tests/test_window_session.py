@@ -218,6 +218,7 @@ def test_keys_act_when_the_window_is_not_active(qtbot, window, demo):
     settle(qtbot, w)
     assert [d["kind"] for d in store.decisions()] == ["accept", "accept", "later"]   # later is a decision (undoable)
     assert set(store.deferred()) == {fp[m] for m in g.members} and w.current().id != g.id   # left for later
+    assert w.curve.actions == 3 == w.status.actions     # the chart counts it as the log (and status) do
     store.close()
 
 
