@@ -13,11 +13,7 @@ from PySide6.QtWidgets import (QApplication, QCompleter, QFrame, QHBoxLayout, QL
 from app import theme
 from app.jobs import JobProgress, _duration
 from app.photo_grid import PhotoGrid, PhotoModel
-
-
-def count(n: int, word: str, plural: str | None = None) -> str:
-    """'1 photo', '2 photos'."""
-    return f"{n} {word if n == 1 else (plural or word + 's')}"
+from app.side_panel import count
 
 
 def _label(text: str = "", name: str | None = None, wrap: bool = False) -> QLabel:

@@ -15,8 +15,13 @@ def _heading(text: str) -> QLabel:
     return lab
 
 
+def count(n: int, word: str, plural: str | None = None) -> str:
+    """'1 photo', '2 photos': the one plural rule of the window's words."""
+    return f"{n} {word if n == 1 else (plural or word + 's')}"
+
+
 def photos(n: int) -> str:
-    return f"{n} photo" if n == 1 else f"{n} photos"
+    return count(n, "photo")
 
 
 def group_summary(g) -> str:
