@@ -84,6 +84,14 @@ def settle(qtbot, w, timeout=60_000):
     qtbot.waitUntil(lambda: w.idle() and drawn(w), timeout=timeout)
 
 
+def accept_typed(qtbot, w, label):
+    """Type `label` on the grid (its first letter starts the label field) and press Return."""
+    focus(w.group_page.grid)
+    type_text(label)
+    press(Qt.Key.Key_Return)
+    settle(qtbot, w)
+
+
 def answer_next_question(choose):
     """Answer the next modal question (a QMessageBox) by clicking the button whose text `choose`
     picks, as soon as it is shown."""
@@ -229,10 +237,7 @@ def test_undoing_an_accept_brings_its_label_back(qtbot, window, demo):
     open_and_wait(qtbot, w, demo)
     store, fp = reader(demo)
     g = w.current()
-    focus(w.group_page.grid)
-    type_text("hex nut")
-    press(Qt.Key.Key_Return)
-    settle(qtbot, w)
+    accept_typed(qtbot, w, "hex nut")
     assert w.current().id != g.id
     press(Qt.Key.Key_Z, CTRL)
     settle(qtbot, w)
@@ -253,10 +258,7 @@ def test_return_with_the_completion_popup_open(qtbot, window, demo):
     open_and_wait(qtbot, w, demo)
     store, fp = reader(demo)
     field = w.group_page.label
-    focus(w.group_page.grid)
-    type_text("spring")
-    press(Qt.Key.Key_Return)
-    settle(qtbot, w)
+    accept_typed(qtbot, w, "spring")
 
     # "pri" opens the popup on "spring"; Down highlights it; Return takes it and accepts.
     g = w.current()
@@ -311,10 +313,7 @@ def test_a_near_duplicate_label_asks_once(qtbot, window, demo):
     w = window
     open_and_wait(qtbot, w, demo)
     store, fp = reader(demo)
-    focus(w.group_page.grid)
-    type_text("resistor")
-    press(Qt.Key.Key_Return)
-    settle(qtbot, w)
+    accept_typed(qtbot, w, "resistor")
 
     # "res" with "resistor" existing: the question offers it; choosing it labels under "resistor".
     g = w.current()
