@@ -50,7 +50,7 @@ def _names_from_truth(folder: Path):
     truth_csv = ROOT / "resources" / "demo_truth.csv"
     if not truth_csv.is_file():
         return None
-    from core.demo import load_demo_truth
+    from app.demo import load_demo_truth
 
     truth = load_demo_truth(truth_csv)
     return lambda members: Counter(truth.get(m, "part").replace("_", " ") for m in members).most_common(1)[0][0]
@@ -170,7 +170,7 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     source = Path(args.folder)
     if not source.is_dir() or not any(source.iterdir()):
-        print(f"{source} is empty: make the demo first (python -m core.demo --out {source} "
+        print(f"{source} is empty: make the demo first (python -m app.demo --out {source} "
               "--truth resources/demo_truth.csv)", file=sys.stderr)
         return 1
     render(Path(args.out), source)

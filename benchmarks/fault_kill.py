@@ -24,7 +24,7 @@ accumulates the way it would for a person whose machine keeps crashing. Each rou
      hashed (the scan's first stage takes about 2% of its time, so a clock rarely lands in it).
    After the --kills rounds come --cli-kills rounds (default 10) of the command line as a user runs
    it: `kinfold accept FOLDER GROUP LABEL [--drop ...]` and `kinfold export FOLDER --csv --coco
-   --folders` (no --overwrite: what earlier kills left must be recognised as Kinfold's) by turns, killed by the clock (`python -m core.cli ...`, a random share of
+   --folders` (no --overwrite: what earlier kills left must be recognised as Kinfold's) by turns, killed by the clock (`python -m app.cli ...`, a random share of
    its last run, start-up included) or before a random step of the whole process (the same command
    run through `runpy` with the steps counted); exit status 0 counts as returned.
    Before each scan, new photos are added (they must be embedded), two earlier ones are changed,
@@ -73,7 +73,7 @@ if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
 VERBS = ("scan", "label", "accept", "split", "undo", "later", "relearn", "export")
-CLI_VERBS = ("accept", "export")      # also killed as `python -m core.cli VERB ...` subprocesses
+CLI_VERBS = ("accept", "export")      # also killed as `python -m app.cli VERB ...` subprocesses
 DECISION_VERBS = ("label", "accept", "split", "undo", "later", "clear")
 LABELS = ("hex nut", "washer", "coil spring", "spur gear", "fuse", "key blank")
 EXPORTS = {"csv": "labels.csv", "coco": "labels.coco.json", "folders": "classes"}
@@ -428,7 +428,7 @@ def driver(spec: dict) -> None:
 
 
 def cli_driver(spec: dict) -> int:
-    """`python -m core.cli ARGS` as it runs for a user, with its steps counted from the start of the
+    """`python -m app.cli ARGS` as it runs for a user, with its steps counted from the start of the
     process (store statements and file operations, as in the driver) and, with `kill_at_step`,
     a SIGKILL just before one of them. The count goes to `steps_file` when the command ends."""
     import runpy
@@ -440,7 +440,7 @@ def cli_driver(spec: dict) -> int:
     sys.argv = [str(ROOT / "core" / "cli.py"), *spec["argv"]]
     code = 0
     try:
-        runpy.run_module("core.cli", run_name="__main__", alter_sys=True)
+        runpy.run_module("app.cli", run_name="__main__", alter_sys=True)
     except SystemExit as exc:
         code = exc.code if isinstance(exc.code, int) else 1
     finally:
@@ -869,7 +869,7 @@ class Checker:
             spec = dict(argv=argv, kill_at_step=kill_at_step, steps_file=str(self.work / "cli-steps.json"))
             cmd = [sys.executable, "-m", "benchmarks.fault_kill", "--cli-driver", json.dumps(spec)]
         else:
-            cmd = [sys.executable, "-m", "core.cli", *argv]     # exactly what a user runs
+            cmd = [sys.executable, "-m", "app.cli", *argv]     # exactly what a user runs
         return subprocess.Popen(cmd, cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=err)
 
     def calibrate_cli(self) -> None:
@@ -911,7 +911,7 @@ class Checker:
 
     def cli_round(self, rnd: int, verb: str, fraction: float, mode: str) -> None:
         """Kill `kinfold accept` or `kinfold export` (the command line as a subprocess): by the clock
-        (`python -m core.cli`, a random share of its last measured run) or before one of its steps."""
+        (`python -m app.cli`, a random share of its last measured run) or before one of its steps."""
         f, name = self.fig, f"cli {verb}"
         started = time.perf_counter()
         before_temps = set(self.temporaries())
@@ -1247,7 +1247,7 @@ def main(argv=None) -> int:
     ap.add_argument("--sweep", action="store_true",
                     help="instead of --kills random kills: kill each verb once before each of its steps")
     ap.add_argument("--cli-kills", type=int, default=10,
-                    help="then kill `python -m core.cli accept/export` this many times (default 10)")
+                    help="then kill `python -m app.cli accept/export` this many times (default 10)")
     ap.add_argument("--cli-verbs", default=",".join(CLI_VERBS), help="the commands killed (comma-separated)")
     ap.add_argument("--quiet", action="store_true")
     ap.add_argument("--driver", help=argparse.SUPPRESS)

@@ -245,7 +245,7 @@ def prepare_dataset(args) -> tuple[Path, dict[str, str], Path | None]:
             truth_file.write_text(json.dumps(truth))
         return folder, json.loads(truth_file.read_text()), None
     if args.dataset == "demo":
-        from core.demo import load_demo_truth
+        from app.demo import load_demo_truth
 
         truth = {p: c for p, c in load_demo_truth(ROOT / "resources" / "demo_truth.csv").items()
                  if c != "broken"}

@@ -35,7 +35,7 @@ def demo_source(tmp_path_factory):
     """The demo folder; regenerated with the same generator when the checkout has none."""
     if DEMO.is_dir() and any(DEMO.iterdir()):
         return DEMO
-    from core.demo import generate_demo
+    from app.demo import generate_demo
 
     out = tmp_path_factory.mktemp("demo") / "photos"
     generate_demo(out, out.parent / "truth.csv", seed=7)

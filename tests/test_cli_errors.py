@@ -11,13 +11,13 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
-MAIN = "import sys; from core.cli import main; sys.exit(main(sys.argv[1:]))"
+MAIN = "import sys; from app.cli import main; sys.exit(main(sys.argv[1:]))"
 
 
 def kinfold(*args, patch: str = "", env=None, stdout=subprocess.PIPE):
     """Run `kinfold ARGS`; with `patch`, Python run first in the same process (to fake a fault)."""
     cmd = ([sys.executable, "-c", patch + "\n" + MAIN] if patch else
-           [sys.executable, "-m", "core.cli"]) + [str(a) for a in args]
+           [sys.executable, "-m", "app.cli"]) + [str(a) for a in args]
     return subprocess.run(cmd, cwd=ROOT, stdout=stdout, stderr=subprocess.PIPE, text=True,
                           env={**os.environ, **(env or {})}, timeout=300)
 
@@ -170,7 +170,7 @@ def test_cli_closed_pipe_exits_quietly(labelled):
     assert result.returncode == 1 and result.stderr == ""
     # And through a real shell pipe with more output than a pipe holds: no traceback.
     shell = subprocess.run(
-        f"{sys.executable} -m core.cli propose {labelled} --json --limit 50 --show 100 | head -c 1",
+        f"{sys.executable} -m app.cli propose {labelled} --json --limit 50 --show 100 | head -c 1",
         shell=True, cwd=ROOT, capture_output=True, text=True, timeout=300)
     assert "Traceback" not in shell.stderr and "BrokenPipe" not in shell.stderr
 

@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from PIL import Image, ImageFile, ImageOps
 
-from core.demo import BROKEN, NON_IMAGE, ODD, PART_CLASSES, generate_demo, load_demo_truth
+from app.demo import BROKEN, NON_IMAGE, ODD, PART_CLASSES, generate_demo, load_demo_truth
 
 REPO = Path(__file__).resolve().parents[1]
 SAMPLES, TRUTH = REPO / "sample_images", REPO / "resources" / "demo_truth.csv"
@@ -104,7 +104,7 @@ def test_bad_arguments_are_refused(tmp_path):
 
 @pytest.fixture(scope="module")
 def committed() -> dict[str, str]:
-    assert TRUTH.exists(), "render it: python -m core.demo --out sample_images --truth resources/demo_truth.csv"
+    assert TRUTH.exists(), "render it: python -m app.demo --out sample_images --truth resources/demo_truth.csv"
     return load_demo_truth(TRUTH)
 
 

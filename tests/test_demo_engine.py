@@ -6,7 +6,7 @@ import json
 import numpy as np
 from pycocotools.coco import COCO
 
-from core.demo import load_demo_truth
+from app.demo import load_demo_truth
 from core.project import Project
 
 from .conftest import ROOT

@@ -4,7 +4,7 @@ A short run of `benchmarks.fault_kill` (the full one: `python -m benchmarks.faul
 --seed 0`): 12 kills on one copy of the scanned demo folder, every verb (scan, label, accept, split,
 undo, later, relearn, export) at least once, each kill either at a random moment of the call or just
 before a random one of its store statements / file operations; then the command line (`python -m
-core.cli accept ...`, `export ...`) killed as a subprocess. What counts as "in the store" is
+app.cli accept ...`, `export ...`) killed as a subprocess. What counts as "in the store" is
 read with plain sqlite3, not with Kinfold's own code; see the module's docstring.
 """
 import pytest
@@ -15,7 +15,7 @@ from benchmarks import fault_kill
 @pytest.fixture(scope="module")
 def figures(scanned_demo, tmp_path_factory):
     # 12 kills of Project's verbs, then `kinfold accept` and `kinfold export` killed once each as
-    # subprocesses (accept by the clock, `python -m core.cli`; export before a random step of the process).
+    # subprocesses (accept by the clock, `python -m app.cli`; export before a random step of the process).
     return fault_kill.run(kills=12, seed=0, work=tmp_path_factory.mktemp("fault") / "run", scanned=scanned_demo,
                           added=6, verbose=False, calibrate=False, cli_kills=2)
 

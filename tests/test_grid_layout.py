@@ -27,7 +27,7 @@ def photos(tmp_path_factory):
     """96 distinct photo files (the demo folder's, regenerated with its generator when absent)."""
     folder = ROOT / "sample_images"
     if not (folder.is_dir() and len(list(folder.rglob("*.jpg"))) >= 96):
-        from core.demo import generate_demo
+        from app.demo import generate_demo
 
         folder = tmp_path_factory.mktemp("demo") / "photos"
         generate_demo(folder, folder.parent / "truth.csv", seed=7)

@@ -199,7 +199,7 @@ def _return(s: Session, group: dict, label: str, accepted_before: int, how: str,
 
 @pytest.mark.parametrize("focus", ["pointer", "window"])
 def test_type_a_label_and_press_return_in_a_real_window(scanned_demo, tmp_path, display, focus):
-    from core.demo import load_demo_truth
+    from app.demo import load_demo_truth
 
     truth = load_demo_truth(ROOT / "resources" / "demo_truth.csv")   # the demo generator's classes
 

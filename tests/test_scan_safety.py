@@ -29,7 +29,7 @@ ROOT = Path(__file__).resolve().parent.parent
 
 def kinfold(*args, cwd=None, timeout=300):
     env = dict(os.environ, PYTHONPATH=str(ROOT))
-    return subprocess.run([sys.executable, "-m", "core.cli", *args], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "app.cli", *args], capture_output=True, text=True,
                           cwd=cwd, env=env, timeout=timeout)
 
 
@@ -222,7 +222,7 @@ def test_ctrl_c_stops_a_cli_scan_and_releases_the_folder(tmp_path):
     for i in range(3):
         _huge_photo(folder / f"huge{i}.jpg", 2)
     env = dict(os.environ, PYTHONPATH=str(ROOT))
-    proc = subprocess.Popen([sys.executable, "-m", "core.cli", "scan", str(folder)], env=env,
+    proc = subprocess.Popen([sys.executable, "-m", "app.cli", "scan", str(folder)], env=env,
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:
         store = folder / ".kinfold" / "kinfold.sqlite"

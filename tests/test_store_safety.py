@@ -22,7 +22,7 @@ ROOT = Path(__file__).resolve().parent.parent
 
 
 def _cli(*args, **kw):
-    return subprocess.run([sys.executable, "-m", "core.cli", *map(str, args)], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "app.cli", *map(str, args)], capture_output=True, text=True,
                           cwd=ROOT, env={**os.environ, "PYTHONPATH": str(ROOT)}, timeout=300, **kw)
 
 
@@ -310,7 +310,7 @@ def _make_read_only(paths):
 
 
 def _cli_ro(prefix, *args):
-    return subprocess.run([*prefix, sys.executable, "-m", "core.cli", *map(str, args)], capture_output=True,
+    return subprocess.run([*prefix, sys.executable, "-m", "app.cli", *map(str, args)], capture_output=True,
                           text=True, cwd=ROOT, env={**os.environ, "PYTHONPATH": str(ROOT)}, timeout=300)
 
 

@@ -4,8 +4,7 @@ them: to the open popup if there is one, else to the focused widget (QApplicatio
 run exactly as under X11 or Wayland. Each decision is checked through the core API, on a second Store
 reading the same store file.
 
-Outside references: Fashion-MNIST's own class of every photo (Debian's dataset-fashion-mnist; Xiao,
-Rasul and Vollgraf 2017) for the simulated annotator of ../shared/yield-protocol.md; the demo folder's
+Outside references: Fashion-MNIST's own class of every photo (Debian's dataset-fashion-mnist) for the simulated annotator of ../shared/yield-protocol.md; the demo folder's
 photos for the shorter checks.
 """
 import os

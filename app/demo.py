@@ -9,7 +9,7 @@ rotated with an EXIF orientation tag, and subfolders whose names say nothing abo
 Truth classes: the names in PART_CLASSES, ODD (not a part: an empty drawer, a coffee mug, a note
 card), BROKEN (the truncated JPEG) and NON_IMAGE (the stray text file).
 
-    python -m core.demo --out sample_images --truth resources/demo_truth.csv --seed 7
+    python -m app.demo --out sample_images --truth resources/demo_truth.csv --seed 7
 """
 from __future__ import annotations
 
@@ -838,7 +838,7 @@ def load_demo_truth(truth_csv: str | os.PathLike) -> dict[str, str]:
 
 
 def main(argv: list[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(prog="python -m core.demo", description=__doc__.split("\n\n")[0])
+    ap = argparse.ArgumentParser(prog="python -m app.demo", description=__doc__.split("\n\n")[0])
     ap.add_argument("--out", required=True, help="folder to write the photos into")
     ap.add_argument("--truth", required=True, help="CSV file for the true classes (keep it outside --out)")
     ap.add_argument("--seed", type=int, default=7)
