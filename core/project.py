@@ -29,7 +29,7 @@ from typing import Callable, Iterable, Sequence
 
 import numpy as np
 
-from core import catalogue, export, neighbours, proposals
+from core import catalogue, export, mistakes, neighbours, proposals
 from core.store import LabelRow, PhotoRow, Store, StoreError, utc_now
 
 Progress = Callable[[int, int, str], None]
@@ -39,7 +39,7 @@ STORE_DIR = ".kinfold"
 DEFAULT_EXTRACTOR = "efficientnet-lite0"
 _EMBED_CHUNK = 1024          # photos embedded and committed per step, so a crash loses at most this
 _SKIPPED_FORMAT = 2          # remembered skips: final failures only, reasons without absolute paths
-_UNDOABLE = ("accept", "label", "set_aside", "clear", "split", "later")
+_UNDOABLE = ("accept", "label", "set_aside", "clear", "split", "later", "confirm")
 # Groups are formed this many at a time (each batch ranked on its own), so the first groups do not
 # depend on how many are asked for. 3 is what the yield figures were measured with (the simulator
 # asks for 3 at a time): with hold=1 its run on Fashion-MNIST 2,000 is the same, group for group,
@@ -769,6 +769,39 @@ class Project:
     def export_folders(self, directory, split=None, *, seed: int = 0, mode: str = "link",
                        overwrite: bool = False) -> dict:
         return self.export(folders=directory, split=split, seed=seed, mode=mode, overwrite=overwrite)["folders"]
+
+    # -- likely mistakes (core/mistakes.py) ---------------------------------------------------
+    @_serialised
+    def likely_mistakes(self, limit: int = 100, method: str | None = None) -> list[mistakes.Mistake]:
+        """Labelled photos whose label is most likely wrong, first the likeliest, with the label the
+        engine would give instead; photos whose label was confirmed are left out."""
+        state, label_of, names = self._state_arrays()
+        labels = self.store.labels()
+        confirmed = np.array([labels[r.fingerprint].how == mistakes.CONFIRMED if r.fingerprint in labels
+                              else False for r in self._rows], bool)
+        found = mistakes.rank(self.graph().x, label_of, self.graph().idx, method=method or mistakes.METHOD,
+                              keep=~confirmed) if self._rows else []
+        return [mistakes.Mistake(self._rows[s.index].path, names[s.label],
+                                 None if s.suggested is None else names[s.suggested], s.score)
+                for s in found[:max(limit, 0)]]
+
+    @_serialised
+    def confirm(self, paths: Sequence[str], label: str | None = None) -> int:
+        """The annotator says the label is right (with `label`: the right label is this one, a fix):
+        the photos leave the likely-mistakes queue. One logged decision (kind 'confirm'), undoable; returns its id."""
+        label = None if label is None else clean_label(label)
+        idx = self._paths_to_indices(paths)
+        with self.store.transaction():
+            labels = self.store.labels()
+            changes = {}
+            for i in idx:
+                fp = self._rows[i].fingerprint
+                lr = labels.get(fp)
+                if label is None and (lr is None or lr.state != "labelled"):
+                    raise ProjectError(f"{self._rows[i].path} has no label to confirm")
+                changes[fp] = self._new_row(fp, "labelled", label or lr.label, mistakes.CONFIRMED)
+            return self.store.record_decision("confirm", self.annotator, [self._rows[i].path for i in idx],
+                                              changes, label=label)
 
 
 class _RelearnView:
