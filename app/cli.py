@@ -160,6 +160,27 @@ def cmd_undo(args):
         _print(done or {"undone": None, "reason": "nothing to undo"}, args.json)
 
 
+def cmd_mistakes(args):
+    with _open(args) as p:
+        found = p.likely_mistakes(limit=args.limit)
+    if args.json:
+        _print([dataclasses.asdict(m) for m in found], True)
+        return
+    if not found:
+        print("no likely mistakes (the queue needs photos of at least two labels; confirmed ones are left out)")
+        return
+    width = max(len(m.path) for m in found)
+    print(f"{'score':>5}  {'photo':<{width}}  label -> suggested")
+    for m in found:
+        print(f"{m.score:5.2f}  {m.path:<{width}}  {m.label} -> {m.suggested or '?'}")
+
+
+def cmd_confirm(args):
+    with _open(args) as p:
+        p.confirm(args.paths, args.label)
+        _print(p.status(), args.json)
+
+
 def cmd_status(args):
     with _open(args, lock=False) as p:
         _print(p.status(), args.json)
@@ -271,6 +292,12 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("paths", nargs="+")
     verb("undo", cmd_undo, "reverse the last label decision")
     verb("status", cmd_status, "counts by state and label")
+    s = verb("mistakes", cmd_mistakes, "labelled photos whose label is most likely wrong, likeliest first")
+    s.add_argument("--limit", type=_whole(1, 1_000_000, "--limit"), default=20)
+    s = verb("confirm", cmd_confirm, "say the photos' labels are right (or, with --label, fix them): they "
+                                     "leave the mistakes list")
+    s.add_argument("paths", nargs="+")
+    s.add_argument("--label", help="the right label, when the present one is wrong")
     s = verb("export", cmd_export, "write the labelled photos out")
     s.add_argument("--csv", metavar="FILE")
     s.add_argument("--coco", metavar="FILE")
