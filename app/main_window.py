@@ -31,6 +31,7 @@ from app.export_dialog import ExportDialog
 from app.help_overlay import GRID_KEYS, HelpOverlay
 from app.history import Curve
 from app.jobs import Job
+from app.mistakes_page import KEYS as MISTAKES_KEYS, MistakesPage
 from app.pages import GroupPage, ReviewPage, ScanPage, StartPage, action_button, scan_summary
 from app.photo_grid import PhotoModel
 from app.preview import PreviewDialog
@@ -44,6 +45,7 @@ from core.store import StoreError
 LOOKAHEAD = 6          # groups asked for at a time: the current one and what the side panel lists
 MAX_RECENT = 8
 MAX_HELD_KEYS = 200    # type-ahead while a decision is in flight; more than this is refused
+MISTAKES_LIMIT = 200   # likely mistakes listed at a time (the ranking is redone when the page opens)
 _ENGINE_ERRORS = (ProjectError, StoreError, OSError, ValueError)
 _KEY_EVENTS = (QEvent.Type.KeyPress, QEvent.Type.KeyRelease, QEvent.Type.ShortcutOverride)
 # Presses only: a release that ends a drag begun before (a splitter, a scroll bar) must still arrive.
@@ -157,8 +159,9 @@ class MainWindow(QMainWindow):
         self.work.setSizes([940, 320])
         self.review_model = PhotoModel(self.thumbs, self)
         self.review_page = ReviewPage(self.review_model)
+        self.mistakes_page = MistakesPage(self.thumbs)
         self.stack = QStackedWidget()
-        for page in (self.start, self.scan_page, self.work, self.review_page):
+        for page in (self.start, self.scan_page, self.work, self.review_page, self.mistakes_page):
             self.stack.addWidget(page)
         container = QWidget()
         lay = QVBoxLayout(container)
@@ -183,6 +186,9 @@ class MainWindow(QMainWindow):
         self.review_page.remove.clicked.connect(self.remove_selected)
         self.review_page.back.connect(self.back_to_groups)
         self.side.label_chosen.connect(self.open_review)
+        self.mistakes_page.confirm_requested.connect(self.confirm_mistake)
+        self.mistakes_page.fix_requested.connect(self.fix_mistake)
+        self.mistakes_page.back.connect(self.back_to_groups)
         self.stack.currentChanged.connect(lambda _: self._sync_actions())
         self.start.show_recent(self.recent_folders())
         self._sync_actions()
@@ -199,6 +205,7 @@ class MainWindow(QMainWindow):
             ("undo", "Undo", ["Ctrl+Z"], "Group", self.undo),
             ("preview", "Preview", ["Ctrl+P"], "Views", self.preview),
             ("review", "Review labels", ["Ctrl+R"], "Views", self.open_review),
+            ("mistakes", "Find mistakes", ["Ctrl+M"], "Views", self.open_mistakes),
             ("help", "Keys", ["F1", "?"], "Views", lambda: self.help.toggle()),
             ("open", "Open folder…", ["Ctrl+O"], "Folder", self.choose_folder),
             ("export", "Export…", ["Ctrl+E"], "Folder", self.export),
@@ -216,6 +223,7 @@ class MainWindow(QMainWindow):
             "undo": "Reverse the last decision (repeat to go further back)",
             "preview": "Show the photo full size with its nearest photos (or double-click it)",
             "relearn": "Relearn from the decisions so far, then propose again",
+            "mistakes": "Labelled photos whose label is most likely wrong, one at a time: confirm or fix each",
         }
         actions = {}
         for key, text, keys, section, slot in spec:
@@ -233,7 +241,7 @@ class MainWindow(QMainWindow):
         bar = self.menuBar()
         for title, keys in (("&Folder", ("open", "export", "relearn", "close", "quit")),
                             ("&Group", ("accept", "toggle", "split", "later", "aside", "undo")),
-                            ("&View", ("preview", "review", "help"))):
+                            ("&View", ("preview", "review", "mistakes", "help"))):
             menu = bar.addMenu(title)
             for k in keys:
                 menu.addAction(self.actions[k])
@@ -243,7 +251,8 @@ class MainWindow(QMainWindow):
         for a in self.actions.values():
             keys = "  or  ".join(s.toString(QKeySequence.SequenceFormat.NativeText) for s in a.shortcuts())
             sections.setdefault(a.property("section"), []).append((keys, a.text()))
-        return [(t, rows) for t, rows in sections.items()] + [("In the grid", GRID_KEYS)]
+        return [(t, rows) for t, rows in sections.items()] + [("In the grid", GRID_KEYS),
+                                                               ("Finding mistakes", MISTAKES_KEYS)]
 
     def _sync_actions(self) -> None:
         page = self.stack.currentWidget()
@@ -254,8 +263,9 @@ class MainWindow(QMainWindow):
         # The engine offers a split only for groups large enough to hold two parts worth confirming.
         self.actions["split"].setEnabled(on_group and self.current().splittable)
         self.actions["preview"].setEnabled(idle and page in (self.work, self.review_page))
-        self.actions["undo"].setEnabled(idle and page in (self.work, self.review_page))
+        self.actions["undo"].setEnabled(idle and page in (self.work, self.review_page, self.mistakes_page))
         self.actions["review"].setEnabled(idle and page is self.work)
+        self.actions["mistakes"].setEnabled(idle and page in (self.work, self.review_page))
         self.actions["export"].setEnabled(idle and page in (self.work, self.review_page))
         self.actions["relearn"].setEnabled(idle and page is self.work)
         self.actions["close"].setEnabled(self.project is not None)
@@ -499,7 +509,8 @@ class MainWindow(QMainWindow):
         super().keyPressEvent(event)
 
     def _is_own_popup(self, win) -> bool:
-        return any(win is f.completer().popup() for f in (self.group_page.label, self.review_page.new_label))
+        return any(win is f.completer().popup() for f in (self.group_page.label, self.review_page.new_label,
+                                                          self.mistakes_page.fix))
 
     def _deliver_held(self) -> None:
         """Deliver the held keys as a window system does: ShortcutOverride to the focus widget (or the
@@ -700,13 +711,19 @@ class MainWindow(QMainWindow):
                   counts="set_aside")
 
     def undo(self) -> None:
-        where = self.review_page if self.stack.currentWidget() is self.review_page else self.group_page
+        where = self.stack.currentWidget()
+        where = where if where in (self.review_page, self.mistakes_page) else self.group_page
         if self._busy(where):
             return
 
         def done(view):
             undone = view.result
-            if not undone:
+            if where is self.mistakes_page:
+                where.say(f"Undid the last {undone['kind'].replace('_', ' ')}; listing the likely mistakes again."
+                          if undone else "Nothing left to undo.")
+                if undone:
+                    self._load_mistakes()   # what the undo gave back is ranked with the rest
+            elif not undone:
                 where.say("Nothing left to undo.")
             elif undone["kind"] == "split":
                 # A split changes no label; what comes back is the whole group, shown first again.
@@ -823,6 +840,49 @@ class MainWindow(QMainWindow):
         self._act("remove", lambda p: p.clear(paths),
                   lambda view: page.say(f"Removed the label from {photos(len(paths))}; back in the pool."),
                   counts="clear", where=page)
+
+    # -- likely mistakes ------------------------------------------------------------------------
+    def open_mistakes(self) -> None:
+        if self.project is None or self._busy():
+            return
+        if not (self.status and len(self.status.by_label) >= 2):
+            self.group_page.say("Finding mistakes needs photos of at least two labels.", problem=True)
+            return
+        self.stack.setCurrentWidget(self.mistakes_page)
+        self.mistakes_page.fix.set_names(list(self.status.by_label))
+        self._load_mistakes()
+
+    def _load_mistakes(self) -> None:
+        page = self.mistakes_page
+        page.show_queue([])
+        page.header.setText("Finding likely mistakes…")
+        page.facts.setText("Ranking every labelled photo (a few seconds on thousands of photos).")
+        self._act("mistakes", lambda p: p.likely_mistakes(MISTAKES_LIMIT),
+                  lambda view: (page.show_queue(view.result),
+                                page.say(f"{photos(len(view.result))} whose label is most in doubt.")),
+                  where=page)
+
+    def confirm_mistake(self, path: str) -> None:
+        page = self.mistakes_page
+        m = page.current()
+        if m is None or m.path != path or self._busy(page):
+            return
+        self._act("confirm", lambda p: p.confirm([path]),
+                  lambda view: (page.advance(), page.say(f"Kept “{m.label}” on {path}.")),
+                  counts="confirm", where=page)
+
+    def fix_mistake(self, path: str, label: str) -> None:
+        page = self.mistakes_page
+        m = page.current()
+        if m is None or m.path != path or self._busy(page):
+            return
+        label = self._settle_label(label, page)
+        if label is None:
+            return
+        page.setFocus()
+        self._act("fix", lambda p: p.confirm([path], label),
+                  lambda view: (page.advance(), page.say(f"Relabelled {path} “{label}” (was “{m.label}”).")),
+                  counts="confirm", where=page)
 
     def back_to_groups(self) -> None:
         self.stack.setCurrentWidget(self.work)
