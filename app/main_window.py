@@ -341,6 +341,7 @@ class MainWindow(QMainWindow):
         self.accepted_as = {}
         self.group_model.set_photos([])
         self.review_model.set_photos([])
+        self.mistakes_page.show_queue([])
         self.setWindowTitle("Kinfold")
         self.stack.setCurrentWidget(self.start)
         self._sync_actions()

@@ -111,7 +111,8 @@ class MistakesPage(QWidget):
             if len(self.queue) > 1:   # the next photo decodes while this one is looked at
                 self.thumbs.request(self.queue[1].path, PICTURE_SIDE, priority=0)
             self._paint()
-        self.setFocus()
+        if self.isVisible():
+            self.setFocus()
 
     def _paint(self) -> None:
         m = self.current()

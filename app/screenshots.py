@@ -141,6 +141,14 @@ def render(out: Path, source: Path) -> list[Path]:
         written.append(out / "6-review.png")
         w.back_to_groups()
 
+        if len(w.status.by_label) >= 2:   # the mistakes list needs two labels to compare
+            w.open_mistakes()
+            _wait(app, lambda: w.idle() and w.mistakes_page.current() is not None, 120)
+            _settle(app, 1.5)
+            _save(w, out / "8-mistakes.png")
+            written.append(out / "8-mistakes.png")
+            w.back_to_groups()
+
         w.export()
         exp = w.last_export
         exp.destination.setText("spare-parts-labels")
