@@ -535,7 +535,8 @@ class MainWindow(QMainWindow):
             QApplication.sendEvent(target, QKeyEvent(QEvent.Type.KeyPress, key, mods, text, repeat))
             QApplication.sendEvent(target, QKeyEvent(QEvent.Type.KeyRelease, key, mods, text, repeat))
         if refused:
-            where = self.review_page if self.stack.currentWidget() is self.review_page else self.group_page
+            where = self.stack.currentWidget()
+            where = where if where in (self.review_page, self.mistakes_page) else self.group_page
             where.say(f"{refused} was pressed before this was on screen, so it decided nothing: "
                       "press it again to apply it here.", problem=True)
 

@@ -64,6 +64,13 @@ def out_of_sample_probabilities(x: np.ndarray, y: np.ndarray, n_labels: int, *, 
     0 (nothing else looks like it). The features are reduced to their first `_DIMENSIONS` principal
     components (fitted on all rows: no labels are used, so nothing leaks) to keep five fits quick on
     tens of thousands of photos."""
+    # Loaded before the thread limit is set: threadpoolctl limits only the BLAS libraries already
+    # loaded, and scipy's own OpenBLAS comes in with these (unlimited, the first call took 30 s
+    # instead of 2 on the busy 2-core machine).
+    import scipy.linalg  # noqa: F401
+    import scipy.optimize  # noqa: F401
+    import sklearn.linear_model  # noqa: F401
+    import sklearn.utils.extmath  # noqa: F401
     from threadpoolctl import threadpool_limits
 
     x = np.asarray(x, np.float64)
