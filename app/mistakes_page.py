@@ -101,9 +101,9 @@ class MistakesPage(QWidget):
             self.skip_button.setEnabled(False)
         else:
             self.header.setText(f"{m.path}  ·  {len(self.queue)} to look at")
-            suggestion = f"“{m.suggested}”" if m.suggested else "no other label"
-            self.facts.setText(f"Labelled <b>“{_esc(m.label)}”</b> · more likely {_esc(suggestion)} · "
-                               f"doubt {m.score:.2f}")
+            other = f"if not, most likely “{_esc(m.suggested)}”" if m.suggested else "no other label in sight"
+            self.facts.setText(f"Labelled <b>“{_esc(m.label)}”</b> · {other} · doubt {m.score:.2f} "
+                               "(0: none, 1: certainly wrong)")
             self.fix.setPlaceholderText(f"type the right label{f' (e.g. {m.suggested})' if m.suggested else ''}, "
                                         "then Return")
             self.confirm_button.setEnabled(True)
