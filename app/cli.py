@@ -161,7 +161,7 @@ def cmd_undo(args):
 
 
 def cmd_mistakes(args):
-    with _open(args) as p:
+    with _open(args, lock=False) as p:   # only reads: works while the window has the folder open
         found = p.likely_mistakes(limit=args.limit)
     if args.json:
         _print([dataclasses.asdict(m) for m in found], True)
