@@ -47,32 +47,44 @@ class HelpOverlay(QWidget):
         font = QFont(self.font())
         fm = QFontMetrics(font)
         line = fm.height() + 6
-        width = min(self.width() - 40, 620)
-        height = min(self.height() - 40, 18 + line + 6 + sum((len(keys) + 1) * line + 8 for _, keys in self.sections) + 12)
+        bold = QFont(font)
+        bold.setBold(True)
+        key_w = max([170] + [QFontMetrics(bold).horizontalAdvance(k) + 20 for _, keys in self.sections for k, _ in keys])
+        heights = [(len(keys) + 1) * line + 8 for _, keys in self.sections]
+        # One column while the sheet fits the window; else two, split where their heights are closest.
+        columns = [list(range(len(self.sections)))]
+        if 18 + line + 6 + sum(heights) + 12 > self.height() - 40 and len(self.sections) > 1:
+            cut = min(range(1, len(heights)), key=lambda c: abs(sum(heights[:c]) - sum(heights[c:])))
+            columns = [list(range(cut)), list(range(cut, len(heights)))]
+        col_w = 620 if len(columns) == 1 else 560
+        width = min(self.width() - 40, col_w * len(columns))
+        col_w = width / len(columns)
+        body = max(sum(heights[i] for i in col) for col in columns)
+        height = min(self.height() - 40, 18 + line + 6 + body + 12)
         card = QRectF((self.width() - width) / 2, (self.height() - height) / 2, width, height)
         p.setPen(QColor(theme.LINE))
         p.setBrush(QColor(theme.SURFACE))
         p.drawRoundedRect(card, 10, 10)
-        y = card.top() + 18
-        bold = QFont(font)
-        bold.setBold(True)
+        top = card.top() + 18
         p.setFont(bold)
         p.setPen(QColor(theme.INK))
-        p.drawText(QRectF(card.left() + 24, y, width - 48, line), "Keys and mouse — any key closes this sheet")
-        y += line + 6
-        key_w = max([170] + [QFontMetrics(bold).horizontalAdvance(k) + 20 for _, keys in self.sections for k, _ in keys])
-        for title, keys in self.sections:
-            p.setFont(bold)
-            p.setPen(QColor(theme.MUTED))
-            p.drawText(QRectF(card.left() + 24, y, width - 48, line), title.upper())
-            y += line
-            for k, what in keys:
+        p.drawText(QRectF(card.left() + 24, top, width - 48, line), "Keys and mouse — any key closes this sheet")
+        top += line + 6
+        for c, col in enumerate(columns):
+            left, y = card.left() + c * col_w, top
+            for i in col:
+                title, keys = self.sections[i]
                 p.setFont(bold)
-                p.setPen(QColor(theme.ACCENT))
-                p.drawText(QRectF(card.left() + 24, y, key_w, line), k)
-                p.setFont(font)
-                p.setPen(QColor(theme.INK))
-                p.drawText(QRectF(card.left() + 24 + key_w, y, width - 48 - key_w, line), what)
+                p.setPen(QColor(theme.MUTED))
+                p.drawText(QRectF(left + 24, y, col_w - 48, line), title.upper())
                 y += line
-            y += 8
+                for k, what in keys:
+                    p.setFont(bold)
+                    p.setPen(QColor(theme.ACCENT))
+                    p.drawText(QRectF(left + 24, y, key_w, line), k)
+                    p.setFont(font)
+                    p.setPen(QColor(theme.INK))
+                    p.drawText(QRectF(left + 24 + key_w, y, col_w - 48 - key_w, line), what)
+                    y += line
+                y += 8
         p.end()

@@ -133,3 +133,10 @@ def test_cli_mistakes(photo_project_folder):
     assert "a/astronaut_1.jpg" in r.stdout.splitlines()[1] and "astronaut" in r.stdout
     r = _cli("mistakes", str(photo_project_folder), "--limit", "-1")
     assert r.returncode == 2 and "limit" in r.stderr and "Traceback" not in r.stderr
+    # `kinfold confirm` takes the photo off the list; --label fixes it at the same time.
+    r = _cli("confirm", str(photo_project_folder), "a/astronaut_1.jpg", "--json")
+    assert r.returncode == 0, r.stderr
+    r = _cli("mistakes", str(photo_project_folder), "--json")
+    assert "a/astronaut_1.jpg" not in [m["path"] for m in json.loads(r.stdout)]
+    r = _cli("confirm", str(photo_project_folder), "no/such.jpg")
+    assert r.returncode == 1 and "not a photo of this project" in r.stderr and "Traceback" not in r.stderr
