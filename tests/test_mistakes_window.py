@@ -79,6 +79,20 @@ def test_mistakes_page_by_keys(qtbot, tmp_path, photo_project_folder):
     assert third.path in [m.path for m in page.queue]
     assert second.path not in [m.path for m in page.queue]   # still confirmed
 
+    # Keys typed while a confirm is being recorded: a second Return decides nothing (it was pressed
+    # before the next photo was on screen) and says so; Space waits and then skips the next photo.
+    a, b, c = (m.path for m in page.queue[:3])
+    confirms = sum(d["kind"] == "confirm" for d in store.decisions())
+    press(Qt.Key.Key_Return)
+    assert w.pending is not None
+    press(Qt.Key.Key_Return)
+    press(Qt.Key.Key_Space)
+    settle(qtbot, w)
+    assert page.current().path == c
+    assert sum(d["kind"] == "confirm" for d in store.decisions()) == confirms + 1
+    assert store.labels()[fp[a]].how == "confirmed" and store.labels()[fp[b]].how != "confirmed"
+    assert "decided nothing" in page.message.text()
+
     # Esc goes back to the groups.
     focus(page)
     press(Qt.Key.Key_Escape)
