@@ -788,7 +788,8 @@ class Project:
     @_serialised
     def confirm(self, paths: Sequence[str], label: str | None = None) -> int:
         """The annotator says the label is right (with `label`: the right label is this one, a fix):
-        the photos leave the likely-mistakes queue. One logged decision (kind 'confirm'), undoable; returns its id."""
+        the photos leave the likely-mistakes queue (until a later decision changes their label).
+        One logged decision (kind 'confirm'), undoable; returns its id."""
         label = None if label is None else clean_label(label)
         idx = self._paths_to_indices(paths)
         with self.store.transaction():
