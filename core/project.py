@@ -15,6 +15,7 @@ Example (runs on the demo folder; the first scan embeds a few hundred photos in 
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import functools
 import getpass
 import hashlib
@@ -516,14 +517,15 @@ class Project:
                        unshown=[p.id for p in queue[held:] if p.id in unshown or p.id in new_ids])
             if now != saved:
                 self.store.set_setting("proposal_queue", now)
-        return (pinned + shown)[:limit]
+        return self._calibrated((pinned + shown)[:limit])
 
     @_serialised
     def group(self, group_id: int) -> Proposal:
         row = self.store.proposal(group_id)
         if row is None:
             raise ProjectError(f"there is no group {group_id}")
-        return Proposal(row.id, row.members, row.trust, row.suggested_label, row.confidence, row.kind)
+        return self._calibrated([Proposal(row.id, row.members, row.trust, row.suggested_label, row.confidence,
+                                          row.kind)])[0]
 
     def _open_group(self, group_id: int):
         row = self.store.proposal(group_id)
@@ -803,6 +805,46 @@ class Project:
                 changes[fp] = self._new_row(fp, "labelled", label or lr.label, mistakes.CONFIRMED)
             return self.store.record_decision("confirm", self.annotator, [self._rows[i].path for i in idx],
                                               changes, label=label)
+
+    # --- calib: calibrated trust and suggestion confidence (core/calibration.py) ---
+    @_serialised
+    def calibration(self) -> "calibration.Calibrator":
+        """The trust calibration: the prior, and the isotonic map learned from the accepted groups of
+        this project (observed purity = share of the members not taken out)."""
+        from core import calibration
+
+        key = (self.store.decision_count(), self.store.active_relearn_version(), len(self._rows))
+        if getattr(self, "_calibrator_cache", (None,))[0] != key:
+            cal, graph = calibration.Calibrator(), self.graph()
+            ranks = calibration.entropy_ranks(graph)
+            decisions = self.store.decisions()
+            undone = {d["undoes"] for d in decisions if d["undoes"] is not None}
+            for d in decisions:
+                if d["kind"] != "accept" or d["group_id"] is None or d["id"] in undone:
+                    continue
+                row = self.store.proposal(d["group_id"])
+                idx = [self._index[m] for m in (row.members if row else ()) if m in self._index]
+                if not idx:
+                    continue
+                members = {self._rows[i].path for i in idx}
+                kept = len(members & set(d["photos"])) / len(idx)
+                sug = row.suggested_label is not None
+                f = calibration.group_features(graph, idx, sug, row.confidence, ranks)
+                cal.observe(f, kept, len(idx), (kept if d["label"] == row.suggested_label else 0.0) if sug else None)
+            self._calibrator_cache = (key, cal)
+        return self._calibrator_cache[1]
+
+    def _calibrated(self, groups: list[Proposal]) -> list[Proposal]:
+        """The groups with trust = calibrated expected purity and confidence = calibrated expected share
+        carrying the suggested label. The stored figures (and so the order) stay the engine's."""
+        if not groups:
+            return groups
+        cal = self.calibration()
+        items = [([self._index[m] for m in g.members if m in self._index] or [0], g.suggested_label is not None,
+                  g.confidence) for g in groups]
+        figs = cal.calibrate(self.graph(), items)
+        return [dataclasses.replace(g, trust=round(t, 4), confidence=None if c is None else round(c, 4))
+                for g, (t, c) in zip(groups, figs)]
 
 
 class _RelearnView:

@@ -1,0 +1,218 @@
+"""Trust that tells the truth: a group's shown trust is its expected purity.
+
+A group's **purity** is the share of its members that belong to its majority class; the annotator
+observes it on every accepted group (1 - the share taken out). Two figures are calibrated:
+
+* **trust** — the expected purity of the group;
+* **confidence** of a suggested label — the expected share of the members that carry that label.
+
+How (two published methods, combined):
+
+1. A **prior** that holds before the first decision: logistic regression with fractional targets
+   (each group counted once as "pure" with weight size x purity and once as "not pure" with weight
+   size x (1 - purity)) from a few features of the group to its purity. Its coefficients are
+   fitted offline on Fashion-MNIST test 2,000 (``python -m benchmarks.calibration --fit-prior``) and
+   written below; the features are ranks and shares, so they carry over to other collections.
+2. **Isotonic regression** (monotone, scikit-learn) from the prior's figure to the purity the
+   annotator observed, fitted on the accepted groups as the sitting goes on, blended with
+   ``PSEUDO_PHOTOS`` pseudo-observations that agree with the prior (so a handful of decisions moves
+   the figure a little, a sitting moves it a lot).
+
+Group features (``FEATURES``):
+entropy_rank   mean neighbourhood-entropy rank of the members (0 = the most certain photo)
+mutual_share   mean share of each member's 10 nearest that are mutual neighbours
+log_size       log of the number of members
+cohesion       mean share of each member's min(10, size - 1) nearest that are in the group
+margin         the engine's raw mean confidence in its suggested label (0 without one)
+suggested      1 when the engine suggests a label (a probable-label group or a split part of one)
+The group order is not changed by any of this: it stays the engine's expected photos per action.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Sequence
+
+import numpy as np
+
+from core.neighbours import Graph
+
+FEATURES = ("entropy_rank", "mutual_share", "log_size", "cohesion", "margin", "suggested")
+PSEUDO_PHOTOS = 40.0        # weight of the prior against the annotator's observed groups, in photos
+EPS = 1e-3
+
+# Fitted by `python -m benchmarks.calibration --fit-prior` on Fashion-MNIST test 2,000 (cold and warm
+# groups); intercept first, then one weight per FEATURES entry (standardised by MEAN / SCALE).
+PRIOR_TRUST = dict(intercept=1.5, coef=[-0.5, 0.3, 0.0, 0.6, 0.4, 0.3])
+PRIOR_LABEL = dict(intercept=1.0, coef=[-0.5, 0.3, 0.0, 0.6, 0.8, 0.8])
+MEAN = [0.5, 0.5, 2.0, 0.5, 0.4, 0.5]
+SCALE = [0.3, 0.2, 1.0, 0.2, 0.4, 0.5]
+
+
+def group_features(graph: Graph, members: Sequence[int], suggested: bool, margin: float | None,
+                   ent_rank: np.ndarray | None = None) -> np.ndarray:
+    """The FEATURES of one group of photo indices (anchor first)."""
+    m = np.asarray(members, np.int64)
+    if ent_rank is None:
+        ent_rank = entropy_ranks(graph)
+    size = len(m)
+    k = min(10, graph.idx.shape[1])
+    nb = graph.idx[m, :k]
+    mutual = float(graph.mutual[m, :k].mean()) if k else 0.0
+    if size > 1 and k:
+        kk = min(k, size - 1)
+        inside = np.isin(graph.idx[m, :kk], m).sum(1) / kk
+        cohesion = float(inside.mean())
+    else:
+        cohesion = 1.0                                   # a lone photo is one group with itself
+    return np.array([float(ent_rank[m].mean()), mutual, float(np.log(size)), cohesion,
+                     float(margin or 0.0) if suggested else 0.0, float(bool(suggested))])
+
+
+def entropy_ranks(graph: Graph) -> np.ndarray:
+    n = graph.n
+    r = np.empty(n)
+    r[np.argsort(graph.entropy, kind="stable")] = np.arange(n) / max(n - 1, 1)
+    return r
+
+
+def _logit(p):
+    p = np.clip(p, EPS, 1 - EPS)
+    return np.log(p / (1 - p))
+
+
+def prior(features: np.ndarray, model: dict) -> np.ndarray:
+    """The prior's figure for each row of `features` (n, len(FEATURES))."""
+    z = (np.atleast_2d(features) - np.asarray(MEAN)) / np.asarray(SCALE)
+    return 1.0 / (1.0 + np.exp(-(model["intercept"] + z @ np.asarray(model["coef"]))))
+
+
+def fit_prior(features: np.ndarray, target: np.ndarray, sizes: np.ndarray, c: float = 1.0) -> dict:
+    """Logistic regression with fractional targets in [0, 1], each row weighted by its size."""
+    from sklearn.linear_model import LogisticRegression
+
+    z = (features - np.asarray(MEAN)) / np.asarray(SCALE)
+    x = np.vstack([z, z])
+    y = np.r_[np.ones(len(z)), np.zeros(len(z))]
+    w = np.r_[sizes * target, sizes * (1 - target)]
+    keep = w > 0
+    lr = LogisticRegression(C=c, max_iter=1000).fit(x[keep], y[keep], sample_weight=w[keep])
+    return dict(intercept=round(float(lr.intercept_[0]), 4), coef=[round(float(v), 4) for v in lr.coef_[0]])
+
+
+@dataclass
+class Calibrator:
+    """The prior plus what the annotator's accepted groups taught (prior figure -> observed share)."""
+    trust_model: dict = field(default_factory=lambda: PRIOR_TRUST)
+    label_model: dict = field(default_factory=lambda: PRIOR_LABEL)
+    pseudo: float = PSEUDO_PHOTOS
+    seen_trust: list = field(default_factory=list)   # (prior figure, observed purity, size)
+    seen_label: list = field(default_factory=list)   # (prior figure, observed share with the label, size)
+    _maps: dict = field(default_factory=dict, repr=False)
+
+    def observe(self, features: np.ndarray, purity: float, size: int, label_share: float | None = None) -> None:
+        """One accepted group: its FEATURES when proposed, the share kept, and (when it had a suggestion)
+        the share accepted under the suggested label."""
+        self.seen_trust.append((float(prior(features, self.trust_model)[0]), float(purity), int(size)))
+        if label_share is not None:
+            self.seen_label.append((float(prior(features, self.label_model)[0]), float(label_share), int(size)))
+        self._maps.clear()
+
+    @property
+    def observed_photos(self) -> int:
+        return int(sum(s for _, _, s in self.seen_trust))
+
+    def _map(self, which: str, p: np.ndarray) -> np.ndarray:
+        seen = self.seen_trust if which == "trust" else self.seen_label
+        if not seen:
+            return p
+        if which not in self._maps:
+            from sklearn.isotonic import IsotonicRegression
+
+            q, y, w = (np.array(v, float) for v in zip(*seen))
+            # Pseudo-observations on the prior's own diagonal, PSEUDO_PHOTOS in all, spread over the
+            # figures seen: with few decisions the figure stays near the prior.
+            grid = np.quantile(q, np.linspace(0, 1, 9)) if len(q) > 1 else q
+            xs = np.r_[q, grid]
+            ys = np.r_[y, grid]
+            ws = np.r_[w, np.full(len(grid), self.pseudo / len(grid))]
+            iso = IsotonicRegression(y_min=0.0, y_max=1.0, increasing=True, out_of_bounds="clip")
+            iso.fit(xs, ys, sample_weight=ws)
+            lo, hi = float(q.min()), float(q.max())
+            self._maps[which] = (iso, lo, hi, float(w.sum()))
+        iso, lo, hi, seen_w = self._maps[which]
+        out = iso.predict(p)
+        # Beyond the figures seen, trust the prior's shape: shift it by the gap at the nearest end.
+        for edge in (lo, hi):
+            side = p < lo if edge == lo else p > hi
+            if side.any():
+                gap = float(iso.predict([edge])[0]) - edge
+                share = seen_w / (seen_w + self.pseudo)
+                out[side] = np.clip(p[side] + share * gap, 0.0, 1.0)
+        return out
+
+    def trust(self, features: np.ndarray) -> np.ndarray:
+        return self._map("trust", prior(features, self.trust_model))
+
+    def confidence(self, features: np.ndarray) -> np.ndarray:
+        return self._map("label", prior(features, self.label_model))
+
+    def calibrate(self, graph: Graph, groups: Sequence[tuple[Sequence[int], bool, float | None]]
+                  ) -> list[tuple[float, float | None]]:
+        """(trust, confidence of the suggested label or None) for each (members, suggested, raw confidence)."""
+        if not groups:
+            return []
+        ranks = entropy_ranks(graph)
+        f = np.array([group_features(graph, m, s, c, ranks) for m, s, c in groups])
+        t, c = self.trust(f), self.confidence(f)
+        # The share carrying one label is never above the share in the majority class.
+        # A lone photo is pure by definition.
+        t = np.where([len(m) == 1 for m, _, _ in groups], 1.0, t)
+        return [(float(ti), float(min(ci, ti)) if s else None) for ti, ci, (_, s, _) in zip(t, c, groups)]
+
+
+def purity(classes: Sequence) -> float:
+    """The share of the members in the majority class."""
+    if not len(classes):
+        return 1.0
+    _, counts = np.unique(np.asarray(classes), return_counts=True)
+    return float(counts.max() / len(classes))
+
+
+def calibration_error(trust: Sequence[float], purities: Sequence[float], sizes: Sequence[int]) -> float:
+    """Photo-weighted mean of |trust - purity| (weights = group sizes)."""
+    w = np.asarray(sizes, float)
+    return float(np.sum(w * np.abs(np.asarray(trust) - np.asarray(purities))) / max(w.sum(), 1e-12))
+
+
+BINS = (0.0, 0.8, 0.9, 0.95, 0.99, 1.0000001)
+
+
+def reliability_table(trust: Sequence[float], purities: Sequence[float], sizes: Sequence[int],
+                      bins: Sequence[float] = BINS) -> list[dict]:
+    """Per trust bin: groups, photos, photo-weighted mean trust and observed purity."""
+    t, p, w = (np.asarray(v, float) for v in (trust, purities, sizes))
+    rows = []
+    for lo, hi in zip(bins[:-1], bins[1:]):
+        sel = (t >= lo) & (t < hi)
+        ws = w[sel].sum()
+        rows.append(dict(bin=f"{lo:.2f}-{min(hi, 1.0):.2f}", groups=int(sel.sum()), photos=int(ws),
+                         trust=float((t[sel] * w[sel]).sum() / ws) if ws else None,
+                         purity=float((p[sel] * w[sel]).sum() / ws) if ws else None))
+    return rows
+
+
+def plain_words(trust: float) -> str:
+    """The trust figure as the annotator reads it."""
+    if trust >= 0.97:
+        return "nearly all belong together"
+    k = int(round(10 * trust))
+    if k >= 10:
+        return "nearly all belong together"
+    if k <= 0:
+        return "few belong together"
+    return f"about {k} in 10 belong together"
+
+
+def plain_label(confidence: float, label: str) -> str:
+    k = int(round(10 * confidence))
+    return f"nearly all are “{label}”" if confidence >= 0.97 or k >= 10 else f"about {max(k, 1)} in 10 are “{label}”"
