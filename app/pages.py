@@ -14,6 +14,7 @@ from app import theme
 from app.jobs import JobProgress, _duration
 from app.photo_grid import PhotoGrid, PhotoModel
 from app.side_panel import count
+from core.calibration import plain_label, plain_words
 
 
 def _label(text: str = "", name: str | None = None, wrap: bool = False) -> QLabel:
@@ -437,9 +438,9 @@ class GroupPage(QWidget):
             self.label.clear()
             return
         self._show_header()
-        parts = [f"trust {g.trust:.2f}"]
+        parts = [f"{plain_words(g.trust)} (trust {g.trust:.2f})"]
         if g.suggested_label:
-            conf = f" (confidence {g.confidence:.2f})" if g.confidence is not None else ""
+            conf = f" ({plain_label(g.confidence)}, {g.confidence:.2f})" if g.confidence is not None else ""
             parts.append(f"suggested label “{g.suggested_label}”{conf}")
         parts += [g.kind, f"{queued} more {'group' if queued == 1 else 'groups'} queued" if queued
                   else "no more groups queued"]

@@ -201,18 +201,19 @@ def reliability_table(trust: Sequence[float], purities: Sequence[float], sizes: 
     return rows
 
 
+def plain_share(x: float) -> str:
+    """A share in words: 'nearly all', 'about 8 in 10', 'few'."""
+    k = int(round(10 * x))
+    if x >= 0.97 or k >= 10:
+        return "nearly all"
+    return "few" if k <= 0 else f"about {k} in 10"
+
+
 def plain_words(trust: float) -> str:
-    """The trust figure as the annotator reads it."""
-    if trust >= 0.97:
-        return "nearly all belong together"
-    k = int(round(10 * trust))
-    if k >= 10:
-        return "nearly all belong together"
-    if k <= 0:
-        return "few belong together"
-    return f"about {k} in 10 belong together"
+    """The trust figure as the annotator reads it: 'about 9 in 10 belong together'."""
+    return f"{plain_share(trust)} belong together"
 
 
-def plain_label(confidence: float, label: str) -> str:
-    k = int(round(10 * confidence))
-    return f"nearly all are “{label}”" if confidence >= 0.97 or k >= 10 else f"about {max(k, 1)} in 10 are “{label}”"
+def plain_label(confidence: float) -> str:
+    """A suggested label's confidence in words: 'about 8 in 10 carry it'."""
+    return f"{plain_share(confidence)} carry it"
