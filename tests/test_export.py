@@ -466,7 +466,8 @@ def test_export_outside_the_demo_folder_still_works(demo_folder, tmp_path, monke
         written = p.export(csv="labels.csv", coco="labels.json", folders="out", split=(0.8, 0.2))
         again = p.export(csv="labels.csv", coco="labels.json", folders="out", split=(0.8, 0.2))
     assert written == again and written["csv"] == 5
-    assert sorted(entries(work)) == ["labels.csv", "labels.json", "out"]
+    # A split gives one COCO file per split (issue 20), named after the one asked for.
+    assert sorted(entries(work)) == ["labels-train.json", "labels-val.json", "labels.csv", "out"]
 
 
 def _tree(root):
