@@ -384,7 +384,7 @@ def cmd_stats(args):
     with _open(args, lock=False) as p:     # only reads: works while the window has the folder open
         st = p.statistics()
     if args.csv:
-        _write_new_file(args.csv, st.csv_text(), args.overwrite)
+        _write_new_file(args.csv, st, args.overwrite)
     if args.json:
         _print(st.as_dict(), True)
         return
@@ -415,21 +415,13 @@ def cmd_stats(args):
                                                              for h, n in st.per_hour.items()])))
 
 
-def _write_new_file(path: str, text: str, overwrite: bool) -> None:
-    """Write `text` to `path` whole (a temporary beside it, then one rename); an existing file is
-    replaced only with `overwrite`."""
+def _write_new_file(path: str, stats, overwrite: bool) -> None:
+    """Write the statistics table to `path`; an existing file is replaced only with `overwrite`."""
     if os.path.isdir(path):
         raise ProjectError(f"{path} is a folder; give a file name")
     if os.path.lexists(path) and not overwrite:
         raise ProjectError(f"{path} exists; choose another name, or replace it with --overwrite")
-    tmp = f"{path}.kinfold-tmp-{os.getpid()}"
-    try:
-        with open(tmp, "w", encoding="utf-8", newline="") as f:
-            f.write(text)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+    stats.write_csv(path)
 
 
 def _version() -> str:

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import csv
 import io
+import os
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 
@@ -93,6 +94,20 @@ class Statistics:
             w.writerow(("suggestions", who, "", a.suggested))
             w.writerow(("accepted as suggested", who, "", a.as_suggested))
         return out.getvalue()
+
+
+    def write_csv(self, path) -> None:
+        """Write `csv_text()` to `path` whole: a temporary beside it, then one rename (an existing
+        file is replaced; callers ask first)."""
+        path = os.fspath(path)
+        tmp = f"{path}.kinfold-tmp-{os.getpid()}"
+        try:
+            with open(tmp, "w", encoding="utf-8", newline="") as f:
+                f.write(self.csv_text())
+            os.replace(tmp, path)
+        finally:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
 
 
 def _text_cell(text: str) -> str:
