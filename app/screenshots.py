@@ -151,7 +151,7 @@ def render(out: Path, source: Path) -> list[Path]:
 
         w.open_statistics()   # --- cli: 10-statistics ---
         st = w.last_stats
-        st.resize(820, 700)
+        st.resize(820, st.sizeHint().height())
         _settle(app, 0.5)
         _save(st, out / "10-statistics.png")
         written.append(out / "10-statistics.png")

@@ -77,7 +77,7 @@ class StatsDialog(QDialog):
         self.stats = stats
         self.written: Path | None = None
         self.setWindowTitle("Statistics")
-        self.setMinimumSize(720, 560)
+        self.setMinimumWidth(720)
         labelled = sum(stats.by_label.values())
         self.summary = QLabel(f"{stats.photos} photos, {labelled} labelled under {len(stats.by_label)} "
                               f"label{'s' if len(stats.by_label) != 1 else ''}")
@@ -87,7 +87,8 @@ class StatsDialog(QDialog):
         scroll = QScrollArea()
         scroll.setWidget(self.chart)
         scroll.setWidgetResizable(True)
-        scroll.setMinimumHeight(min(self.chart.sizeHint().height() + 4, 260))
+        # As tall as the bars (up to 14 rows), scrolling beyond that.
+        scroll.setFixedHeight(min(self.chart.sizeHint().height() + 4, 14 * BarChart.ROW + 12))
 
         rows = stats.annotators + ([stats.total] if len(stats.annotators) > 1 else [])
         self.table = QTableWidget(len(rows), len(COLUMNS))
@@ -131,12 +132,13 @@ class StatsDialog(QDialog):
         lay = QVBoxLayout(self)
         lay.addWidget(self.summary)
         lay.addWidget(heading("Photos per label"))
-        lay.addWidget(scroll, 1)
+        lay.addWidget(scroll)
         lay.addWidget(heading("Per annotator"))
         lay.addWidget(self.table)
         lay.addWidget(heading("Labels given per hour (UTC, last 12 hours with work)"))
         lay.addWidget(self.hours)
         lay.addWidget(note)
+        lay.addStretch(1)
         buttons = QHBoxLayout()
         buttons.addWidget(self.report, 1)
         buttons.addWidget(self.export_button)

@@ -115,8 +115,12 @@ def _text_cell(text: str) -> str:
     return "'" + text if text.startswith(("=", "+", "-", "@", "\t", "\r")) else text
 
 
-def _parse_time(text: str) -> datetime:
-    return datetime.strptime(text, "%Y-%m-%dT%H:%M:%SZ").replace(tzinfo=timezone.utc)
+def _parse_time(text) -> datetime | None:
+    """The log's UTC time (`core.store.utc_now`); None for a time it cannot read (counted as no time)."""
+    try:
+        return datetime.strptime(str(text), "%Y-%m-%dT%H:%M:%SZ").replace(tzinfo=timezone.utc)
+    except ValueError:
+        return None
 
 
 def compute(by_label: dict[str, int], photos: int, decisions: list[dict], suggested_of: dict[int, str | None],
@@ -134,17 +138,19 @@ def compute(by_label: dict[str, int], photos: int, decisions: list[dict], sugges
         a = figures.setdefault(who, AnnotatorFigures(who))
         a.actions += 1
         when = _parse_time(d["time"])
-        prev = last_time.get(who)
-        gap = IDLE_CAP if prev is None else (when - prev).total_seconds()
-        a.active_seconds += min(max(gap, 0.0), IDLE_CAP)
-        last_time[who] = when
+        if when is not None:
+            prev = last_time.get(who)
+            gap = IDLE_CAP if prev is None else (when - prev).total_seconds()
+            a.active_seconds += min(max(gap, 0.0), IDLE_CAP)
+            last_time[who] = when
         if d["id"] in undone:
             continue
         if d["kind"] in LABELLING_KINDS:
             n = len(d["photos"])
             a.labels_given += n
-            hour = when.strftime("%Y-%m-%dT%H")
-            per_hour[hour] = per_hour.get(hour, 0) + n
+            if when is not None:
+                hour = when.strftime("%Y-%m-%dT%H")
+                per_hour[hour] = per_hour.get(hour, 0) + n
         if d["kind"] == "accept" and d["group_id"] is not None:
             suggestion = suggested_of.get(d["group_id"])
             if suggestion:

@@ -91,3 +91,14 @@ def test_statistics_of_a_fresh_project(photo_project_folder):
 def test_formula_like_names_are_neutralised_in_the_csv():
     st = statistics.compute({"=1+1": 3}, 3, [], {}, {})
     assert "'=1+1" in st.csv_text()
+
+
+def test_an_unreadable_log_time_counts_no_time_but_its_labels():
+    log = [dict(id=1, kind="label", label="a", annotator="x", time="yesterday", group_id=None, photos=["p"],
+                undoes=None),
+           dict(id=2, kind="label", label="a", annotator="x", time="2026-12-05T10:00:00Z", group_id=None,
+                photos=["q", "r"], undoes=None)]
+    st = statistics.compute({"a": 3}, 3, log, {}, {})
+    (x,) = st.annotators
+    assert (x.actions, x.labels_given, x.active_seconds) == (2, 3, statistics.IDLE_CAP)
+    assert st.per_hour == {"2026-12-05T10": 2}
