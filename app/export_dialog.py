@@ -25,7 +25,8 @@ def _count_text(counts: dict) -> str:
 def export_report(written: dict) -> str:
     lines = []
     if "csv" in written:
-        lines.append(f"CSV: {written['csv']['rows']} rows → {written['csv']['path']}")
+        column = ", with a split column" if written["csv"].get("split") else ""
+        lines.append(f"CSV: {written['csv']['rows']} rows{column} → {written['csv']['path']}")
     if "coco" in written:
         w = written["coco"]
         for part, one in (w.items() if "path" not in w else [(None, w)]):   # one file per split
@@ -77,9 +78,13 @@ def run_export(project, destination: Path, csv: bool, coco: bool, folders: bool,
         raise
     written: dict = {}
     if "csv" in result:
-        written["csv"] = {"path": str(paths["csv"]), "rows": result["csv"]}
+        written["csv"] = {"path": str(paths["csv"]), "rows": result["csv"], "split": split is not None}
     if "coco" in result:
-        written["coco"] = result["coco"] if split else {"path": str(paths["coco"]), **result["coco"]}
+        if split:   # one file per split, named beside the one asked for (core.export.split_file_name)
+            written["coco"] = {part: {**one, "path": str(paths["coco"].parent / Path(one["path"]).name)}
+                               for part, one in result["coco"].items()}
+        else:
+            written["coco"] = {"path": str(paths["coco"]), **result["coco"]}
     if "folders" in result:
         written["folders"] = {"path": str(paths["folders"]), "counts": result["folders"],
                               "mode": folder_export_mode(paths["folders"])}
@@ -244,6 +249,7 @@ class ExportDialog(QDialog):
             return
         self.written = written
         self.report.setText("Written:\n" + export_report(written))
+        self.adjustSize()   # the report can be longer than the room the dialog had
         self._ended()
         if self.on_written:
             self.on_written(written)
