@@ -383,8 +383,9 @@ def cmd_review(args):
 def cmd_stats(args):
     with _open(args, lock=False) as p:     # only reads: works while the window has the folder open
         st = p.statistics()
+        protected = [(p.folder, "the photo folder"), (p.store.directory, "the project store")]
     if args.csv:
-        _write_new_file(args.csv, st, args.overwrite)
+        _write_new_file(args.csv, st, args.overwrite, protected)
     if args.json:
         _print(st.as_dict(), True)
         return
@@ -415,8 +416,16 @@ def cmd_stats(args):
                                                              for h, n in st.per_hour.items()])))
 
 
-def _write_new_file(path: str, stats, overwrite: bool) -> None:
-    """Write the statistics table to `path`; an existing file is replaced only with `overwrite`."""
+def _write_new_file(path: str, stats, overwrite: bool, protected) -> None:
+    """Write the statistics table to `path`; an existing file is replaced only with `overwrite`;
+    never inside the photo folder or the store (as exports)."""
+    from pathlib import Path
+
+    real = Path(path).expanduser().resolve()
+    for root, what in protected:
+        root = Path(root).resolve()
+        if real == root or root in real.parents:
+            raise ProjectError(f"cannot write {path}: it is inside {what} {root}; choose a file outside it")
     if os.path.isdir(path):
         raise ProjectError(f"{path} is a folder; give a file name")
     if os.path.lexists(path) and not overwrite:

@@ -300,3 +300,5 @@ def test_stats_text_json_and_csv(folder, tmp_path):
     line = one_line(kinfold("stats", folder, "--csv", target, ok=False))
     assert "exists" in line and "--overwrite" in line
     kinfold("stats", folder, "--csv", target, "--overwrite")
+    line = one_line(kinfold("stats", folder, "--csv", folder / "stats.csv", ok=False))
+    assert "inside the photo folder" in line and not (folder / "stats.csv").exists()
