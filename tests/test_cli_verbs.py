@@ -60,12 +60,40 @@ def _make_photos(folder: Path, per_name: int = 12) -> None:
             ImageEnhance.Brightness(img.crop(box)).enhance(0.7 + 0.05 * k).save(folder / f"{name}_{k:02d}.jpg")
 
 
+_TERMINAL: dict = {}      # what the module's scan showed on its terminal
+
+
+def _scan_on_a_terminal(folder: Path) -> tuple[bytes, str]:
+    """`kinfold scan FOLDER` with stderr a terminal (a pseudo-terminal): (what stderr showed, stdout)."""
+    master, slave = pty.openpty()
+    proc = subprocess.Popen([sys.executable, "-m", "app.cli", "scan", str(folder)], cwd=ROOT,
+                            stdout=subprocess.PIPE, stderr=slave, text=True)
+    os.close(slave)
+    err = b""
+    while True:
+        ready, _, _ = select.select([master], [], [], 300)
+        if not ready:
+            break
+        try:
+            chunk = os.read(master, 4096)
+        except OSError:                              # the terminal closed with the process
+            break
+        if not chunk:
+            break
+        err += chunk
+    out, _ = proc.communicate(timeout=300)
+    os.close(master)
+    assert proc.returncode == 0, err
+    return err, out
+
+
 @pytest.fixture(scope="module")
 def scanned(tmp_path_factory):
+    """The module's project, scanned once by the CLI on a terminal (the progress-bar test reads it)."""
     folder = tmp_path_factory.mktemp("cli-verbs") / "photos"
     _make_photos(folder)
-    with Project.open(folder, annotator="tester") as p:
-        p.scan()
+    err, out = _scan_on_a_terminal(folder)
+    _TERMINAL["scan"] = (err, out)
     return folder
 
 
@@ -193,30 +221,9 @@ def test_wait_for_a_folder_another_process_holds(folder):
 # ---------------------------------------------------------------------------- scan progress bar
 
 def test_scan_shows_a_progress_bar_only_on_a_terminal(folder):
-    from PIL import Image
-    for k in range(2):
-        Image.fromarray(np.full((64, 64, 3), 40 + 90 * k, np.uint8)).save(folder / f"new_{k}.png")
-    master, slave = pty.openpty()
-    proc = subprocess.Popen([sys.executable, "-m", "app.cli", "scan", str(folder)], cwd=ROOT,
-                            stdout=subprocess.PIPE, stderr=slave, text=True)
-    os.close(slave)
-    err = b""
-    while True:
-        ready, _, _ = select.select([master], [], [], 120)
-        if not ready:
-            break
-        try:
-            chunk = os.read(master, 4096)
-        except OSError:                              # the terminal closed with the process
-            break
-        if not chunk:
-            break
-        err += chunk
-    out, _ = proc.communicate(timeout=120)
-    os.close(master)
-    assert proc.returncode == 0, err
+    err, out = _TERMINAL["scan"]
     assert re.search(rb"\r\S.*\[#*\s*\] \d+/\d+", err), err   # "\r<step> [####   ] done/total"
-    assert "2 new" in out
+    assert "36 photos ready (36 new" in out
     # The same bar with stderr a pipe (relearn uses it too, and loads no model): nothing on stderr.
     _label_by_name(folder, NAMES[:2])
     r = kinfold("relearn", folder)
