@@ -194,14 +194,14 @@ def plot(results: dict, path: Path) -> None:
     plt.close(fig)
 
 
-def fit_prior() -> None:
-    """Fit PRIOR_TRUST / PRIOR_LABEL on Fashion-MNIST test 2,000: groups proposed cold and after 15,
-    30 and 60 accepted groups (each followed by a relearn), 100 groups each time."""
+def fit_prior(stages=(0, 15, 30, 60), limit: int = 100) -> None:
+    """Fit PRIOR_TRUST / PRIOR_LABEL on Fashion-MNIST test 2,000: the first `limit` groups proposed
+    cold and after each number of accepted groups in `stages` (each followed by a relearn)."""
     feats, classes = load("fashion")
     rows = []
     rep = Replay(feats)
     done = 0
-    for stage in (0, 15, 30, 60):
+    for stage in stages:
         while done < stage:
             g = rep.propose(limit=1)[0]
             cls = [classes[i] for i in g.members]
@@ -211,7 +211,7 @@ def fit_prior() -> None:
         if stage:
             rep.relearn()
         ranks = calibration.entropy_ranks(rep.graph())
-        for g in rep.propose(limit=100):
+        for g in rep.propose(limit=limit):
             cls = [classes[i] for i in g.members]
             if len(cls) < 2:
                 continue
@@ -238,12 +238,14 @@ def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--datasets", default=",".join(DATASETS))
     ap.add_argument("--fit-prior", action="store_true")
+    ap.add_argument("--fit-stages", default="0,15,30,60", help="accepted groups before each set of groups fitted on")
+    ap.add_argument("--fit-limit", type=int, default=100, help="groups fitted on at each stage")
     ap.add_argument("--out", default=str(ROOT / "out" / "calibration"))
     ap.add_argument("--plot", default=None, help="also write the reliability plot here (e.g. a screenshot path)")
     args = ap.parse_args(argv)
     print("command: python -m benchmarks.calibration " + " ".join(sys.argv[1:] if argv is None else argv))
     if args.fit_prior:
-        fit_prior()
+        fit_prior(tuple(int(v) for v in args.fit_stages.split(",")), args.fit_limit)
         return 0
     results = {}
     for name in args.datasets.split(","):

@@ -833,25 +833,36 @@ class Project:
         from core import calibration
 
         key = (self.store.decision_count(), self.store.active_relearn_version(), len(self._rows))
-        if getattr(self, "_calibrator_cache", (None,))[0] != key:
-            cal, graph = calibration.Calibrator(), self.graph()
-            ranks = calibration.entropy_ranks(graph)
-            decisions = self.store.decisions()
-            undone = {d["undoes"] for d in decisions if d["undoes"] is not None}
-            for d in decisions:
-                if d["kind"] != "accept" or d["group_id"] is None or d["id"] in undone:
-                    continue
+        cache = self.__dict__.setdefault("_calibration_cache", {})
+        if cache.get("key") == key:
+            return cache["calibrator"]
+        if cache.get("graph") != key[1:]:        # features are measured on the graph in use
+            cache.clear()
+            cache.update(graph=key[1:], seen={})
+        seen, graph = cache["seen"], self.graph()
+        ranks = None
+        decisions = self.store.decisions()
+        undone = {d["undoes"] for d in decisions if d["undoes"] is not None}
+        cal = calibration.Calibrator()
+        for d in decisions:
+            if d["kind"] != "accept" or d["group_id"] is None or d["id"] in undone:
+                continue
+            if d["id"] not in seen:                # each accepted group is measured once
                 row = self.store.proposal(d["group_id"])
                 idx = [self._index[m] for m in (row.members if row else ()) if m in self._index]
                 if not idx:
+                    seen[d["id"]] = None
                     continue
-                members = {self._rows[i].path for i in idx}
-                kept = len(members & set(d["photos"])) / len(idx)
+                if ranks is None:
+                    ranks = calibration.entropy_ranks(graph)
+                kept = len({self._rows[i].path for i in idx} & set(d["photos"])) / len(idx)
                 sug = row.suggested_label is not None
-                f = calibration.group_features(graph, idx, sug, row.confidence, ranks)
-                cal.observe(f, kept, len(idx), (kept if d["label"] == row.suggested_label else 0.0) if sug else None)
-            self._calibrator_cache = (key, cal)
-        return self._calibrator_cache[1]
+                seen[d["id"]] = (calibration.group_features(graph, idx, sug, row.confidence, ranks), kept, len(idx),
+                                 (kept if d["label"] == row.suggested_label else 0.0) if sug else None)
+            if seen[d["id"]] is not None:
+                cal.observe(*seen[d["id"]])
+        cache.update(key=key, calibrator=cal)
+        return cal
 
     def _calibrated(self, groups: list[Proposal]) -> list[Proposal]:
         """The groups with trust = calibrated expected purity and confidence = calibrated expected share
