@@ -129,8 +129,6 @@ class Calibrator:
         if not seen:
             return p
         if which not in self._maps:
-            from sklearn.isotonic import IsotonicRegression
-
             q, y, w = (np.array(v, float) for v in zip(*seen))
             # Pseudo-observations on the prior's own diagonal, PSEUDO_PHOTOS in all, spread over the
             # figures seen: with few decisions the figure stays near the prior.
@@ -138,17 +136,16 @@ class Calibrator:
             xs = np.r_[q, grid]
             ys = np.r_[y, grid]
             ws = np.r_[w, np.full(len(grid), self.pseudo / len(grid))]
-            iso = IsotonicRegression(y_min=0.0, y_max=1.0, increasing=True, out_of_bounds="clip")
-            iso.fit(xs, ys, sample_weight=ws)
             lo, hi = float(q.min()), float(q.max())
-            self._maps[which] = (iso, lo, hi, float(w.sum()))
-        iso, lo, hi, seen_w = self._maps[which]
-        out = iso.predict(p)
+            self._maps[which] = (isotonic(xs, ys, ws), lo, hi, float(w.sum()))
+        (knots, fitted), lo, hi, seen_w = self._maps[which]
+        predict = lambda v: np.interp(v, knots, fitted)       # noqa: E731  (flat beyond the ends)
+        out = predict(p)
         # Beyond the figures seen, trust the prior's shape: shift it by the gap at the nearest end.
         for edge in (lo, hi):
             side = p < lo if edge == lo else p > hi
             if side.any():
-                gap = float(iso.predict([edge])[0]) - edge
+                gap = float(predict(edge)) - edge
                 share = seen_w / (seen_w + self.pseudo)
                 out[side] = np.clip(p[side] + share * gap, 0.0, 1.0)
         return out
@@ -171,6 +168,32 @@ class Calibrator:
         # A lone photo is pure by definition.
         t = np.where([len(m) == 1 for m, _, _ in groups], 1.0, t)
         return [(float(ti), float(min(ci, ti)) if s else None) for ti, ci, (_, s, _) in zip(t, c, groups)]
+
+
+def isotonic(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Weighted isotonic (non-decreasing) regression of y on x by pooling adjacent violators, y kept in
+    [0, 1]: (distinct x, fitted value at each), to be interpolated linearly between them (as
+    scikit-learn's IsotonicRegression predicts; tests check the two agree). Plain numpy, so the window's
+    engine thread does not import scikit-learn on the first decision."""
+    x, y, w = (np.asarray(v, float) for v in (x, y, w))
+    keep = w > 0
+    x, y, w = x[keep], y[keep], w[keep]
+    knots, inv = np.unique(x, return_inverse=True)
+    sw = np.bincount(inv, w, len(knots))
+    sy = np.bincount(inv, w * y, len(knots)) / sw
+    vals, wts, count = [], [], []
+    for v, wt in zip(sy, sw):
+        vals.append(v)
+        wts.append(wt)
+        count.append(1)
+        while len(vals) > 1 and vals[-2] > vals[-1]:
+            v2, w2, c2 = vals.pop(), wts.pop(), count.pop()
+            tot = wts[-1] + w2
+            vals[-1] = (vals[-1] * wts[-1] + v2 * w2) / tot
+            wts[-1] = tot
+            count[-1] += c2
+    fitted = np.clip(np.repeat(vals, count), 0.0, 1.0)
+    return knots, fitted
 
 
 def purity(classes: Sequence) -> float:

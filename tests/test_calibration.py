@@ -73,6 +73,21 @@ def test_isotonic_map_matches_scikit_learn_inside_the_seen_range():
     assert np.allclose(cal.trust(f), ref, atol=1e-9)
 
 
+def test_pool_adjacent_violators_agrees_with_scikit_learn():
+    """core.calibration.isotonic against scikit-learn's IsotonicRegression, ties in x included."""
+    from sklearn.isotonic import IsotonicRegression
+
+    rng = np.random.default_rng(2)
+    x = np.round(rng.uniform(0, 1, 300), 2)          # many ties
+    y = np.clip(x + rng.normal(0, 0.3, 300), 0, 1)
+    w = rng.uniform(0.1, 5, 300)
+    knots, fitted = calibration.isotonic(x, y, w)
+    probe = np.linspace(-0.1, 1.1, 97)
+    ref = IsotonicRegression(y_min=0, y_max=1, out_of_bounds="clip").fit(x, y, sample_weight=w).predict(probe)
+    assert np.allclose(np.interp(probe, knots, fitted), ref, atol=1e-9)
+    assert (np.diff(fitted) >= 0).all()
+
+
 @pytest.fixture(scope="module")
 def fashion_2000():
     fashion = pytest.importorskip("benchmarks.fashion")
