@@ -160,6 +160,24 @@ def cmd_undo(args):
         _print(done or {"undone": None, "reason": "nothing to undo"}, args.json)
 
 
+def cmd_redo(args):
+    with _open(args) as p:
+        _print(p.redo(), args.json)
+
+
+def cmd_browse(args):
+    with _open(args, lock=False) as p:   # only reads: works while the window has the folder open
+        found = p.browse(state=args.state, label=args.label, subfolder=args.subfolder, name=args.name,
+                         offset=args.offset, limit=args.limit)
+        if args.json:
+            _print({"total": found.total, "offset": found.offset,
+                    "photos": [dataclasses.asdict(b) for b in found.photos]}, True)
+            return
+        for b in found.photos:
+            print(f"{b.path}\t{b.state}\t{b.label or ''}")
+        print(f"{len(found.photos)} of {found.total} matching photos shown (from {found.offset})", file=sys.stderr)
+
+
 def cmd_mistakes(args):
     with _open(args, lock=False) as p:   # only reads: works while the window has the folder open
         found = p.likely_mistakes(limit=args.limit)
@@ -291,7 +309,15 @@ def build_parser() -> argparse.ArgumentParser:
     s = verb("set-aside", cmd_set_aside, "mark photos as belonging to no class")
     s.add_argument("paths", nargs="+")
     verb("undo", cmd_undo, "reverse the last label decision")
+    verb("redo", cmd_redo, "apply again the decision the last undo reversed (only right after an undo)")
     verb("status", cmd_status, "counts by state and label")
+    s = verb("browse", cmd_browse, "list photos by state, label, subfolder or file name (path, state, label)")
+    s.add_argument("--state", choices=["unlabelled", "aside", "labelled"])
+    s.add_argument("--label", help="only photos carrying this label")
+    s.add_argument("--subfolder", help="only photos inside this folder ('.' for the top level)")
+    s.add_argument("--name", help="text the file name contains")
+    s.add_argument("--offset", type=_whole(0, 10**12, "--offset"), default=0)
+    s.add_argument("--limit", type=_whole(1, 10**12, "--limit"), default=None)
     s = verb("mistakes", cmd_mistakes, "labelled photos whose label is most likely wrong, likeliest first")
     s.add_argument("--limit", type=_whole(1, 1_000_000, "--limit"), default=20)
     s = verb("confirm", cmd_confirm, "say the photos' labels are right (or, with --label, fix them): they "
