@@ -957,6 +957,11 @@ class MainWindow(QMainWindow):
 
     # --- browse: the browse page, number keys, redo, keep only these, preview steps ---------------
     def _wire_browse(self) -> None:
+        # A label of thousands of photos: every card has one size, laid out in batches between events.
+        for grid in (self.review_page.grid,):
+            grid.setUniformItemSizes(True)
+            grid.setLayoutMode(grid.LayoutMode.Batched)
+            grid.setBatchSize(200)
         page = self.browse_page
         page.query_changed.connect(lambda: self._browse_query())
         page.more_wanted.connect(lambda: self._browse_query(append=True))
