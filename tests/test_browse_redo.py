@@ -154,3 +154,47 @@ def test_cli_redo_as_a_subprocess(photo_project_folder):
     assert [b["path"] for b in json.loads(r.stdout)["photos"]] == ["b/rocket_0.jpg"]
     with Project.open(photo_project_folder) as p:
         assert p.photo_info("b/rocket_0.jpg")["label"] == "rocket"
+
+
+def test_number_keys_are_the_most_used_labels():
+    from collections import Counter
+
+    from core.label_names import number_keys
+    counts = Counter({f"label {i:02d}": (i * 7) % 13 + 1 for i in range(14)})
+    keys = number_keys(dict(counts))
+    # Checked against the standard library's ranking (ties by name, as the sheet shows them).
+    ranked = sorted(counts.most_common(), key=lambda kv: (-kv[1], kv[0]))[:9]
+    assert keys == {name: i + 1 for i, (name, _) in enumerate(ranked)}
+    assert number_keys({"a": 3, "b": 0}) == {"a": 1} and number_keys({}) == {}
+
+
+def test_keep_only_these_then_accept_labels_only_the_kept(qtbot, tmp_path, photo_project_folder):
+    """Ctrl+K through the window, then the store: the photos taken out before Ctrl+K are the ones
+    labelled, the rest are recorded as 'not this label'."""
+    from PySide6.QtCore import QSettings, Qt
+
+    from app.main_window import MainWindow
+    w = MainWindow(QSettings(str(tmp_path / "s.ini"), QSettings.Format.IniFormat))
+    qtbot.addWidget(w)
+    w.show()
+    with qtbot.waitSignal(w.groups_shown, timeout=180_000):
+        w.open_folder(str(photo_project_folder))
+    g = w.current()
+    grid = w.group_page.grid
+    grid.setFocus()
+    for row in (0, 1):
+        grid.setCurrentIndex(w.group_model.index(row))
+        qtbot.keyClick(grid, Qt.Key.Key_Space)
+    qtbot.keyClick(grid, Qt.Key.Key_K, Qt.KeyboardModifier.ControlModifier)
+    assert w.group_model.taken_out() == g.members[2:]
+    w.group_page.label.setText("kept")
+    w.group_page.confirm_unseen = lambda: True
+    qtbot.keyClick(grid, Qt.Key.Key_Return)
+    qtbot.waitUntil(w.idle, timeout=60_000)
+    w.close_folder()
+    with Project.open(photo_project_folder) as p:
+        assert p.browse(label="kept").total == 2
+        assert sorted(b.path for b in p.browse(label="kept").photos) == sorted(g.members[:2])
+        rejected = p.store.rejections()
+        assert {p.photo_info(m)["fingerprint"] for m in g.members[2:]} == {fp for fp, labs in rejected.items()
+                                                                          if "kept" in labs}
