@@ -25,8 +25,11 @@ KEYS = [("Ctrl+F", "browse: the file-name filter"),
         ("Esc", "back to the groups")]
 
 
-def note(state: str, label) -> str:
-    return f"“{label}”" if state == "labelled" else ("set aside" if state == "aside" else "not labelled")
+def note(state: str, label, path: str = "") -> str:
+    """The card's second line: the photo's subfolder (the first line may elide it) and its label or state."""
+    what = f"“{label}”" if state == "labelled" else ("set aside" if state == "aside" else "not labelled")
+    folder = path.rpartition("/")[0]
+    return f"{folder}/ · {what}" if folder else what
 
 
 class BrowseModel(PhotoModel):
@@ -167,7 +170,7 @@ class BrowsePage(QWidget):
     def show_page(self, found, append: bool) -> None:
         """`found`: a `core.browse.Browsed`; appended to what is shown, or replacing it."""
         paths = [b.path for b in found.photos]
-        notes = [note(b.state, b.label) for b in found.photos]
+        notes = [note(b.state, b.label, b.path) for b in found.photos]
         self.total = found.total
         if append:
             self.model.append_photos(paths, notes)

@@ -66,9 +66,9 @@ def test_browse_filters_name_box_and_labelling(qtbot, w, labelled_folder):
     browse_shows(qtbot, w, on_disk)
     # The cards show the subfolder (in the path) and the state or label.
     i = w.browse_model.paths.index("a/chelsea_0.jpg")
-    assert w.browse_model.notes[i] == "“cat”"
-    assert w.browse_model.notes[w.browse_model.paths.index("a/camera_4.jpg")] == "set aside"
-    assert w.browse_model.notes[w.browse_model.paths.index("b/rocket_0.jpg")] == "not labelled"
+    assert w.browse_model.notes[i] == "a/ · “cat”"
+    assert w.browse_model.notes[w.browse_model.paths.index("a/camera_4.jpg")] == "a/ · set aside"
+    assert w.browse_model.notes[w.browse_model.paths.index("b/rocket_0.jpg")] == "b/ · not labelled"
     info = {q: w.project.photo_info(q) for q in on_disk}
     # State filter, by keyboard on the combo box: All, Not labelled, Labelled, Set aside.
     page.state.setFocus()
@@ -114,7 +114,7 @@ def test_browse_filters_name_box_and_labelling(qtbot, w, labelled_folder):
     assert w.project.photo_info("b/rocket_0.jpg")["label"] == "rocket"
     assert w.project.photo_info("b/rocket_2.jpg")["label"] == "rocket"
     assert w.project.photo_info("b/rocket_1.jpg")["state"] == "unlabelled"
-    qtbot.waitUntil(lambda: w.browse_model.notes[0] == "“rocket”", timeout=20_000)
+    qtbot.waitUntil(lambda: w.browse_model.notes[0] == "b/ · “rocket”", timeout=20_000)
     # Relabel one and set one aside from the browse page too.
     qtbot.mouseClick(grid.viewport(), Qt.MouseButton.LeftButton, Qt.KeyboardModifier.NoModifier,
                      grid.visualRect(w.browse_model.index(1)).center())
