@@ -26,10 +26,11 @@ KEYS = [("Ctrl+F", "browse: the file-name filter"),
 
 
 def note(state: str, label, path: str = "") -> str:
-    """The card's second line: the photo's subfolder (the first line may elide it) and its label or state."""
-    what = f"“{label}”" if state == "labelled" else ("set aside" if state == "aside" else "not labelled")
+    """The card's second line: the photo's label or state, then its subfolder (the first line, the
+    path, elides the folder on a narrow card)."""
+    what = f"“{label}”" if state == "labelled" else ("set aside" if state == "aside" else "no label")
     folder = path.rpartition("/")[0]
-    return f"{folder}/ · {what}" if folder else what
+    return f"{what} · {folder}/" if folder else what
 
 
 class BrowseModel(PhotoModel):
@@ -78,7 +79,7 @@ class BrowsePage(QWidget):
         self.grid.setLayoutMode(PhotoGrid.LayoutMode.Batched)
         self.grid.setBatchSize(200)
         self.grid.setAccessibleName("Photos matching the filters")
-        model.set_side(128)
+        model.set_side(160)
         self.message = _label(" ", wrap=True)
         self.new_label = LabelField()
         self.new_label.setPlaceholderText("label for the selected photos")

@@ -280,4 +280,4 @@ class PreviewDialog(QDialog):
 
 def _near_note(similarity: float, state: str, label) -> str:
     what = f"“{label}”" if state == "labelled" else ("set aside" if state == "aside" else "no label")
-    return f"{what} · {similarity:.2f}"
+    return f"{similarity:.2f} · {what}"     # the similarity first: a long label is elided, not it

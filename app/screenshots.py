@@ -163,7 +163,7 @@ def render(out: Path, source: Path) -> list[Path]:
         _wait(app, lambda: w.idle() and page.folder.count() > 1 and page.total > 0, 60)
         page.state.setCurrentIndex(page.state.findData("unlabelled"))
         page.folder.setCurrentIndex(2 if page.folder.count() > 2 else 1)
-        _wait(app, lambda: w.idle() and page.model.paths and all(n.endswith("not labelled") for n in page.model.notes), 60)
+        _wait(app, lambda: w.idle() and page.model.paths and all(n.startswith("no label") for n in page.model.notes), 60)
         _settle(app, 0.5)
         sel = page.grid.selectionModel()
         for row in (0, 1):
