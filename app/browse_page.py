@@ -19,10 +19,8 @@ NAME_DELAY_MS = 200   # the name filter waits this long after the last key befor
 STATE_CHOICES = [("All photos", None), ("Not labelled", "unlabelled"), ("Labelled", "labelled"),
                  ("Set aside", "aside")]
 
-KEYS = [("Ctrl+F", "browse: the file-name filter"),
-        ("1 … 9", "fill the label field with the label of that number"),
-        ("Return (in the label field)", "browse: label the selected photos"),
-        ("Esc", "back to the groups")]
+KEYS = [("1 … 9", "the label of that number, in the field"),
+        ("Return in its field", "browse: label the selected photos")]
 
 
 def note(state: str, label, path: str = "") -> str:

@@ -271,7 +271,7 @@ class MainWindow(QMainWindow):
         return [(t, rows) for t, rows in sections.items()] + [("In the grid", GRID_KEYS),
                                                                ("Finding mistakes", MISTAKES_KEYS),
                                                                ("Preview", PREVIEW_KEYS),
-                                                               ("Browsing", BROWSE_KEYS)]
+                                                               ("Number keys, browsing", BROWSE_KEYS)]
 
     def _sync_actions(self) -> None:
         page = self.stack.currentWidget()

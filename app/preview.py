@@ -21,12 +21,13 @@ PREVIEW_SIDE = 1400   # decode bound while the photo is shown fitted; zooming pa
 ZOOM_STEP = 1.25
 MAX_ZOOM = 8.0        # screen pixels per photo pixel
 PAN_STEP = 80         # screen pixels an arrow key moves the photo
+NEAR_SIDE = 136      # neighbour cards: wide enough for the similarity and most of a label
 
-KEYS = [("Z", "preview: fit the window / 100 %"),
-        ("+  −", "preview: zoom in / out"),
-        ("Arrow keys, drag", "preview: move the zoomed photo"),
-        ("PgUp  PgDn", "preview: previous / next photo of the list"),
-        ("Space", "preview: take the photo out of the group / put it back"),
+KEYS = [("Z", "fit the window / 100 %"),
+        ("+  −", "zoom in / out"),
+        ("Arrows, drag", "move the zoomed photo"),
+        ("PgUp  PgDn", "previous / next photo"),
+        ("Space", "take out of the group / put back"),
         ("Esc", "close the preview")]
 
 
@@ -142,11 +143,11 @@ class PreviewDialog(QDialog):
         self.near_model = PhotoModel(thumbs, self)
         self.near = PhotoGrid(self.near_model, notes=True, fit=False)
         self.near.setFocusPolicy(Qt.FocusPolicy.NoFocus)   # the keys are the picture's
-        self.near_model.set_side(112)
+        self.near_model.set_side(NEAR_SIDE)
         self.near.setFlow(PhotoGrid.Flow.LeftToRight)
         self.near.setWrapping(False)
         self.near.setVerticalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
-        self.near.setFixedHeight(box_height(112) + 2 * 6 + 2 * (self.near.fontMetrics().height() + 2) + 34)
+        self.near.setFixedHeight(box_height(NEAR_SIDE) + 2 * 6 + 2 * (self.near.fontMetrics().height() + 2) + 34)
         heading = QLabel("Nearest photos, with their labels (double-click to show one)")
         heading.setObjectName("heading")
         lay = QVBoxLayout(self)
