@@ -840,8 +840,9 @@ class MainWindow(QMainWindow):
     def _show_review(self, label: str) -> None:
         if self.project is None or self._busy(self.review_page):
             return
-        self._act("review", lambda p: p.review(label),
-                  lambda view: self._review_rows(label, view.result), where=self.review_page)
+        # engine_view reads the review of the label current in the list (set by _fill_review), and
+        # _apply shows it: the label's photos are ranked and put in the grid once, not twice.
+        self._act("review", None, where=self.review_page)
 
     def _review_rows(self, label: str, rows) -> None:
         self.review_model.set_photos([p for p, _ in rows], [f"typicality {t:.2f}" for _, t in rows])

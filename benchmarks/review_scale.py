@@ -72,6 +72,48 @@ def prepare(n: int, work: Path) -> Path:
     return folder
 
 
+def engine_scale(n: int, work: Path) -> list[tuple[str, float, int]]:
+    """`core.browse` on a store of `n` photos (no files: rows only, as a scan would have written them;
+    60 % labelled with 10 labels, 5 % set aside, 50 subfolders): milliseconds per query, best of 3."""
+    from core import browse
+    from core.store import Store
+
+    directory = work / f"engine-{n}"
+    shutil.rmtree(directory, ignore_errors=True)
+    st = Store(directory)
+    ext = "bench-extractor"
+    rng = np.random.default_rng(0)
+    with st.transaction() as db:
+        db.executemany("INSERT INTO photos VALUES (?, ?, 1, 0, 28, 28)",
+                       ((f"part{i % 50:02d}/photo_{i:06d}.png", f"{i:040x}") for i in range(n)))
+        db.executemany("INSERT INTO embeddings VALUES (?, ?, x'00000000')", ((f"{i:040x}", ext) for i in range(n)))
+        kind = rng.random(n)
+        db.executemany("INSERT INTO labels VALUES (?, ?, ?, 'single', 'bench', '')",
+                       ((f"{i:040x}", "labelled" if kind[i] < 0.6 else "set_aside",
+                         f"class {i % 10}" if kind[i] < 0.6 else None) for i in range(n) if kind[i] < 0.65))
+    queries = [("every photo, first page", dict(limit=600)),
+               ("every photo, last page", dict(offset=n - 600, limit=600)),
+               ("not labelled", dict(state="unlabelled", limit=600)),
+               ("one label", dict(label="class 3", limit=600)),
+               ("one subfolder", dict(subfolder="part07", limit=600)),
+               ("file name contains", dict(name="12", limit=600)),
+               ("all four filters", dict(state="labelled", label="class 3", subfolder="part03", name="3", limit=600))]
+    out = []
+    for name, kw in queries:
+        best, got = float("inf"), None
+        for _ in range(3):
+            t = time.perf_counter()
+            got = browse.browse(st, ext, **kw)
+            best = min(best, time.perf_counter() - t)
+        out.append((name, best * 1000, got.total))
+    t = time.perf_counter()
+    folders = browse.subfolders(st, ext)
+    out.append(("the subfolder list", (time.perf_counter() - t) * 1000, len(folders)))
+    st.close()
+    shutil.rmtree(directory, ignore_errors=True)
+    return out
+
+
 def run(folder: Path, n: int) -> dict:
     from PySide6.QtCore import QSettings, Qt, QTimer
     from PySide6.QtTest import QTest
@@ -176,10 +218,14 @@ def run(folder: Path, n: int) -> dict:
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--n", type=int, default=20000)
+    ap.add_argument("--engine-n", type=int, default=100000, help="photos in the store-only query timing")
     ap.add_argument("--work", default=str(Path.home() / ".cache" / "kinfold-bench" / "review-scale"))
     args = ap.parse_args(argv)
     import os
     os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+    print(f"core.browse on a store of {args.engine_n} photos (one SQL query a page of 600):")
+    for name, ms, total in engine_scale(args.engine_n, Path(args.work)):
+        print(f"  {name:26s} {ms:7.1f} ms   ({total} matching)")
     t0 = time.perf_counter()
     folder = prepare(args.n, Path(args.work))
     print(f"prepared {args.n} photos, all labelled “{LABEL}”, in {time.perf_counter() - t0:.0f} s ({folder})",
@@ -194,7 +240,7 @@ def main(argv=None) -> int:
     print(f"target: longest stall < {TARGET_MS:.0f} ms (heartbeat {BEAT_MS} ms): "
           f"{'met' if worst < TARGET_MS else 'NOT met'} (worst {worst:.0f} ms); peak memory {r['peak_rss_mb']:.0f} MB")
     print("(the idle window's row is the machine's own noise: the same heartbeat while nothing happens)")
-    print(f"command: python -m benchmarks.review_scale --n {args.n}")
+    print(f"command: python -m benchmarks.review_scale --n {args.n} --engine-n {args.engine_n}")
     return 0
 
 
