@@ -9,7 +9,7 @@ Filters (all optional, combined with AND):
 - `state`: "unlabelled", "aside" (set aside as no class) or "labelled";
 - `label`: photos carrying exactly this label;
 - `subfolder`: photos inside this folder of the photo folder, at any depth ("" or "." for the
-  top level only);
+  top level only); the name must match exactly, case included;
 - `name`: text the file name contains (case-insensitive for ASCII letters, as SQLite's LIKE).
 """
 from __future__ import annotations
@@ -66,8 +66,8 @@ def _where(extractor: str, state, label, subfolder, name) -> tuple[str, list]:
         if sub in ("", "."):
             clauses.append("instr(p.path, '/') = 0")
         else:
-            clauses.append("p.path LIKE ? ESCAPE '\\'")
-            params.append(_like_escape(sub) + "/%")
+            clauses.append("substr(p.path, 1, ?) = ?")     # exact, case and all (LIKE ignores case)
+            params += [len(sub) + 1, sub + "/"]
     if name:
         clauses.append(f"{_NAME} LIKE ? ESCAPE '\\'")
         params.append("%" + _like_escape(name) + "%")

@@ -48,6 +48,7 @@ def test_browse_filters_match_an_independent_listing(photo_project_folder):
         same(p.browse(subfolder="b"), lambda q: q.startswith("b/"))
         same(p.browse(subfolder="b/"), lambda q: q.startswith("b/"))
         same(p.browse(subfolder="."), lambda q: "/" not in q)
+        same(p.browse(subfolder="B"), lambda q: False)                          # folder names keep their case
         same(p.browse(name="CHELSEA"), lambda q: "chelsea" in q.split("/")[-1])
         same(p.browse(name="_3"), lambda q: "_3" in q.split("/")[-1])          # "_" is no wildcard
         same(p.browse(name="a/"), lambda q: False)                              # the folder is not the name
