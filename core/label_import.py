@@ -6,7 +6,8 @@ matched to a photo of the project, and what matched becomes ONE decision of kind
 as one step by `Project.undo`). Nothing is guessed:
 
 - a CSV row names its photo by a path relative to the photo folder, or an absolute path inside it
-  (RFC 4180, read with Python's csv module; the path and label columns are chosen by name, or found
+  (RFC 4180, read with Python's csv module; cells separated by ',', or by ';' or a tab when the
+  header row holds no comma; the path and label columns are chosen by name, or found
   among the usual names: ``path``/``file``/``filename``/``image``, ``label``/``class``/``category``);
 - a COCO image (``file_name`` read like a CSV path) takes the category of its annotations; an image
   whose annotations name several categories is reported, not labelled (image-level labels only);
@@ -185,8 +186,11 @@ def read_csv(path: Path, folder: Path, path_column: str | None = None,
     (where, reason)."""
     text = _read_text(path, "CSV")
     csv.field_size_limit(max(csv.field_size_limit(), _CSV_FIELD_LIMIT))
+    first = text.split("\n", 1)[0]
+    # A spreadsheet set to another locale writes ';' (or a tab) between cells; the header tells.
+    delimiter = next((d for d in (",", ";", "\t") if d in first), ",")
     try:
-        rows = list(csv.reader(text.splitlines(keepends=True)))
+        rows = list(csv.reader(text.splitlines(keepends=True), delimiter=delimiter))
     except csv.Error as exc:
         raise ImportError_(f"{path.name} is not a readable CSV file: {exc}") from None
     if not rows:

@@ -117,6 +117,17 @@ def test_csv_conflicts_are_kept_or_replaced_and_undo_is_one_step(photo_project_f
         assert labels_by_path(p) == before
 
 
+def test_csv_with_semicolons_and_a_byte_order_mark(photo_project_folder, tmp_path):
+    # As a spreadsheet in a ';' locale saves "CSV UTF-8": a BOM, ';' between cells, CRLF line ends.
+    with open(tmp_path / "excel.csv", "w", newline="", encoding="utf-8-sig") as f:
+        w = csv.writer(f, delimiter=";")
+        w.writerow(["Datei", "Klasse"])
+        w.writerows([["a/camera_0.jpg", "Kamera; alt"], ["a/camera_1.jpg", "Kamera"]])
+    with Project.open(photo_project_folder) as p:
+        rep = p.import_labels(csv=tmp_path / "excel.csv", path_column="Datei", label_column="Klasse")
+        assert rep.labelled == 2 and labels_by_path(p)["a/camera_0.jpg"] == "Kamera; alt"
+
+
 def test_csv_that_cannot_be_read_is_one_line(photo_project_folder, tmp_path):
     (tmp_path / "latin1.csv").write_bytes("path,label\nb/coffee_0.jpg,caf\xe9\n".encode("latin-1"))
     (tmp_path / "empty.csv").write_text("")
