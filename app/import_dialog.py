@@ -189,8 +189,8 @@ class ImportDialog(QDialog):
         elif dry_run:
             self.checked = report
             self.run.setEnabled(report.labelled > 0)
-            self.message.setText(f"Import labels {report.labelled} photos." if report.labelled
-                                 else "Nothing to import with these settings.")
+            self.message.setText(f"Checked: importing would label {report.labelled} photos. Import (Return) "
+                                 "writes it." if report.labelled else "Nothing to import with these settings.")
             if report.labelled:
                 self.run.setDefault(True)
                 self.run.setFocus()

@@ -195,7 +195,7 @@ def _import_shot(app, w, folder: Path, accepted: list[str], name_of, out: Path, 
     imp.source.setText("previous-labels.csv")
     imp.check.click()
     _wait(app, lambda: imp.checked is not None or "⚠" in imp.message.text(), 60)
-    imp.resize(900, 660)
+    imp.resize(900, 780)
     _settle(app, 0.3)
     _save(imp, out / "9-import.png")
     written.append(out / "9-import.png")
