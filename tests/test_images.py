@@ -272,3 +272,15 @@ def test_heic_photo_with_exif_rotation_is_scanned_and_embedded_upright(photo_pro
     # against the upright JPEG, 0.81 against the sideways one).
     assert sims["phone/upright.jpg"] > 0.95
     assert sims["phone/upright.jpg"] > sims.get("phone/sideways.jpg", -1.0) + 0.05
+
+
+def test_cut_short_heic_is_a_final_photo_error(tmp_path):
+    pytest.importorskip("pillow_heif")
+    noise = np.random.default_rng(0).integers(0, 255, (300, 400, 3), np.uint8)
+    Image.fromarray(noise).save(tmp_path / "full.heic", quality=80)      # written by pillow-heif
+    data = (tmp_path / "full.heic").read_bytes()
+    for name, cut in (("half.heic", data[: len(data) // 2]), ("head.heic", data[:200])):
+        (tmp_path / name).write_bytes(cut)
+        with pytest.raises(PhotoError) as err:
+            load_rgb(tmp_path / name)
+        assert not err.value.retry and str(tmp_path) not in str(err.value)

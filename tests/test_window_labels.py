@@ -130,7 +130,9 @@ def test_f2_renames_and_merges_with_one_question(qtbot, tmp_path, photo_project_
     pos = side.visualItemRect(side.item(row)).center()
     from PySide6.QtTest import QTest
     QTest.mouseClick(side.viewport(), Qt.MouseButton.RightButton, pos=pos)
-    side.customContextMenuRequested.emit(pos)    # offscreen Qt sends no context-menu event for a click
+    QApplication.processEvents()
+    if w.last_label_menu is None:                # a platform that sends no context-menu event for a click
+        side.customContextMenuRequested.emit(pos)
     qtbot.waitUntil(lambda: w.last_label_menu is not None and w.last_label_menu.isVisible(), timeout=5_000)
     menu = w.last_label_menu
     assert [a.text() for a in menu.actions()] == ["Rename…"]
