@@ -13,7 +13,8 @@ as one step by `Project.undo`). Nothing is guessed:
   whose annotations name several categories is reported, not labelled (image-level labels only);
 - a class-folder tree: each subfolder of the given folder is a label, and every file under it is
   matched to the project's photos by its content fingerprint (the scan's BLAKE2b), so copies kept
-  anywhere, under any name, still match;
+  anywhere, under any name, still match; a tree divided into train/val/test folders first (all its
+  top folders so named, as a split export writes it) takes its labels from the folders inside those;
 - the photo folder's own subfolders: each photo takes the name of the folder it lies in.
 
 A photo that already carries a different label (or is set aside) is a conflict: listed with the
@@ -48,6 +49,9 @@ SOURCES_SETTING = "import_sources"
 PATH_COLUMNS = ("path", "file", "filename", "file_name", "image", "photo", "filepath", "file_path")
 LABEL_COLUMNS = ("label", "class", "category", "class_name", "category_name", "tag")
 _CSV_FIELD_LIMIT = 1 << 20
+# A class-folder tree whose top folders all bear these names is divided into parts (as Kinfold's own
+# export with a split writes it): the labels are the folders inside each part.
+SPLIT_FOLDERS = {"train", "val", "valid", "validation", "test"}
 
 
 class ImportError_(Exception):
@@ -271,11 +275,23 @@ def read_folders(directory: Path, progress: Progress | None = None, cancel: Canc
         raise ImportError_(f"cannot read the folder {directory}: {exc.strerror or exc}") from None
     files: list[tuple[str, str, str]] = []      # (shown name, path, label)
     bad: list[tuple[str, str]] = []
+    tops = [t for t in tops if not t.name.startswith(".")]
+    folders = [t for t in tops if t.is_dir()]
+    if folders and all(t.name.casefold() in SPLIT_FOLDERS for t in folders):
+        parts, tops = tops, []
+        for part in parts:
+            if not part.is_dir():
+                bad.append((part.name, "lies in no label subfolder"))
+                continue
+            try:
+                tops += sorted(os.scandir(part.path), key=lambda e: e.name)
+            except OSError as exc:
+                bad.append((part.name, f"cannot read the folder: {exc.strerror or exc}"))
+        tops = [t for t in tops if not t.name.startswith(".")]
     for top in tops:
-        if top.name.startswith("."):
-            continue
         if not top.is_dir():
-            bad.append((top.name, "lies in no label subfolder"))
+            bad.append((catalogue.shown_name(os.path.relpath(top.path, directory).replace(os.sep, "/")),
+                        "lies in no label subfolder"))
             continue
         for here, dirs, names in os.walk(top.path, followlinks=False):
             dirs[:] = sorted(d for d in dirs if not d.startswith("."))

@@ -217,6 +217,22 @@ def test_class_folders_match_moved_copies_by_content(photo_project_folder, tmp_p
         assert rep.cancelled and rep.decision is None
 
 
+def test_kinfold_split_export_imports_back(photo_project_folder, tmp_path):
+    # Round trip through Kinfold's own class-folder export, divided into train/val/test, photos linked.
+    with Project.open(photo_project_folder) as p:
+        p.import_labels(subfolders=True)
+        p.label(["b/coins_2.jpg"], "coins")
+        want = labels_by_path(p)
+        p.export(folders=tmp_path / "out", split=(0.6, 0.2, 0.2), mode="link")
+        assert sorted(x.name for x in (tmp_path / "out").iterdir() if not x.name.startswith(".")) == [
+            "test", "train", "val"]
+        while p.undo():
+            pass
+        assert p.status().labelled == 0
+        rep = p.import_labels(folders=tmp_path / "out")
+        assert labels_by_path(p) == want and rep.not_matched == [] and rep.labelled == 30
+
+
 def test_own_subfolder_names(photo_project_folder, tmp_path):
     with Project.open(photo_project_folder) as p:
         rep = p.import_labels(subfolders=True)
