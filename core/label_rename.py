@@ -16,6 +16,7 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 from core.label_names import near_duplicates
+from core.project import ProjectError
 
 if TYPE_CHECKING:
     from core.project import Project
@@ -23,9 +24,10 @@ if TYPE_CHECKING:
 KIND = "rename"
 
 
-class NameQuestion(Exception):
+class NameQuestion(ProjectError):
     """The new name is close to existing labels; ask the user once, then call again with confirm=True
-    (to keep the name as typed) or with one of `near` as the new name (to merge)."""
+    (to keep the name as typed) or with one of `near` as the new name (to merge). A caller that does
+    not ask shows it as the one-line refusal it also is."""
 
     def __init__(self, new: str, near: list[str]):
         self.new, self.near = new, list(near)
@@ -44,7 +46,7 @@ class RenameResult:
 
 
 def rename_label(project: "Project", old: str, new: str, confirm: bool = False) -> RenameResult:
-    from core.project import ProjectError, clean_label
+    from core.project import clean_label
 
     new = clean_label(new)
     with project._mutex, project.store.transaction() as db:
