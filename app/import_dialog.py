@@ -110,6 +110,7 @@ class ImportDialog(QDialog):
         self.replace.toggled.connect(self._withdraw)
         self.kind.buttonToggled.connect(lambda *_: (self._sync(), self._withdraw()))
         self._sync()
+        self.source.setFocus()        # typing a path is the first thing to do
 
     def chosen(self) -> str:
         return next(k for k, b in self.kinds.items() if b.isChecked())

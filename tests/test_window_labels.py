@@ -43,7 +43,7 @@ def test_import_dialog_checks_then_imports_by_keys(qtbot, tmp_path, photo_projec
     focus(w.group_page.grid)
     press(Qt.Key.Key_I, CTRL | SHIFT)
     dlg = shown(qtbot, lambda: w.last_import)
-    focus(dlg.source)
+    assert target() is dlg.source                 # the path is typed first, with no click
     type_text(str(tmp_path / "labels.csv"))
     press(Qt.Key.Key_Return)                      # the default button: Check (a dry run)
     qtbot.waitUntil(lambda: dlg.checked is not None, timeout=30_000)
