@@ -105,17 +105,22 @@ class ImportReport:
             out.append("labels:")
             out += [f"  {n:<{w}}  {c}" for n, c in sorted(self.labels.items())]
         if self.conflicts:
-            w = max(len(c.path) for c in self.conflicts)
+            w = max(len(_shown(c.path)) for c in self.conflicts)
             out.append("conflicts (photo: existing -> incoming):")
-            out += [f"  {c.path:<{w}}  {c.existing} -> {c.incoming}" for c in self.conflicts]
+            out += [f"  {_shown(c.path):<{w}}  {c.existing} -> {c.incoming}" for c in self.conflicts]
         if self.several:
             out.append("several categories (not labelled):")
-            out += [f"  {p}: {', '.join(cats)}" for p, cats in self.several]
+            out += [f"  {_shown(p)}: {', '.join(map(_shown, cats))}" for p, cats in self.several]
         if self.not_matched:
-            w = max(len(e) for e, _ in self.not_matched)
+            w = min(max(len(_shown(e)) for e, _ in self.not_matched), 60)
             out.append("not matched:")
-            out += [f"  {e:<{w}}  {r}" for e, r in self.not_matched]
+            out += [f"  {_shown(e):<{w}}  {r}" for e, r in self.not_matched]
         return out
+
+
+def _shown(text: str) -> str:
+    """Text from a source as one printable line: control characters (a NUL, a line break) as escapes."""
+    return "".join(ch if ch.isprintable() else ascii(ch)[1:-1] for ch in text)
 
 
 @dataclass
@@ -132,6 +137,8 @@ def _relative(folder: Path, text: str) -> tuple[str | None, str]:
     text = text.strip()
     if not text:
         return None, "the path is empty"
+    if "\x00" in text:
+        return None, "the path holds a NUL character, which no file name can"
     if "\\" in text and "/" not in text:
         text = text.replace("\\", "/")          # written on Windows
     p = Path(text)
@@ -451,10 +458,13 @@ def _why_missing(folder: Path, rel: str, skipped: dict) -> str:
     if rel in skipped:
         return f"skipped by the scan: {skipped[rel][2]}"
     p = folder / rel
-    if p.is_file():
-        return "in the folder but not in the project yet (run scan first)"
-    if p.is_dir():
-        return "a folder, not a photo"
+    try:
+        if p.is_file():
+            return "in the folder but not in the project yet (run scan first)"
+        if p.is_dir():
+            return "a folder, not a photo"
+    except OSError as exc:            # a name too long, a folder that cannot be looked into
+        return f"no such photo in the folder ({exc.strerror or exc})"
     if any(part.startswith(".") for part in Path(rel).parts):
         return "in a hidden folder, which a scan leaves out"
     return "no such photo in the folder"

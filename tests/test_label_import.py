@@ -53,7 +53,9 @@ def test_csv_import_counts_reasons_and_chosen_columns(photo_project_folder, tmp_
             ["b/nothing.jpg", "x", "coffee"],
             ["b/broken.jpg", "x", "coffee"],                                  # skipped by the scan
             ["b/coins_0.jpg", "x", "   "],                                    # no label
-            ["b/coins_1.jpg"]]                                                # too few cells
+            ["b/coins_1.jpg"],                                                # too few cells
+            ["b/\x00.jpg", "x", "coffee"], ["x" * 5000, "x", "coffee"],         # no file can be named so
+            ["/etc/\x00", "x", "coffee"]]
     write_csv(tmp_path / "in.csv", ["file name", "note", "Kind"], rows)
     with Project.open(folder) as p:
         with pytest.raises(ProjectError, match="cannot tell which column"):
@@ -62,7 +64,7 @@ def test_csv_import_counts_reasons_and_chosen_columns(photo_project_folder, tmp_
             p.import_labels(csv=tmp_path / "in.csv", path_column="file name", label_column="species")
         rep = p.import_labels(csv=tmp_path / "in.csv", path_column="file name", label_column="kind")
         got = labels_by_path(p)
-    assert rep.entries == 11 and rep.matched == 5 and rep.labelled == 5 and rep.decision is not None
+    assert rep.entries == 14 and rep.matched == 5 and rep.labelled == 5 and rep.decision is not None
     assert got["a/chelsea_0.jpg"] == got["a/chelsea_1.jpg"] == 'cat, "tabby"'
     assert got["b/coffee_0.jpg"] == got["b/coffee_1.jpg"] == "coffee"
     assert got["b/coffee_2.jpg"] == "two lines"                          # labels are cleaned as typed ones
@@ -74,6 +76,8 @@ def test_csv_import_counts_reasons_and_chosen_columns(photo_project_folder, tmp_
     assert reasons["line 10: b/broken.jpg"].startswith("skipped by the scan")
     assert "cannot be empty" in reasons["line 11: b/coins_0.jpg"]
     assert "has 1 cells" in reasons["line 12"]
+    assert "NUL character" in reasons["line 13: b/\x00.jpg"] and "NUL character" in reasons["line 15: /etc/\x00"]
+    assert reasons[f"line 14: {'x' * 5000}"].startswith("no such photo in the folder")
     assert rep.labels == {'cat, "tabby"': 2, "coffee": 2, "two lines": 1}
 
 
