@@ -235,6 +235,13 @@ def test_kinfold_split_export_imports_back(photo_project_folder, tmp_path):
         assert p.status().labelled == 0
         rep = p.import_labels(folders=tmp_path / "out")
         assert labels_by_path(p) == want and rep.not_matched == [] and rep.labelled == 30
+        # Kinfold's own CSV and COCO exports import back the same way.
+        p.export(csv=tmp_path / "out.csv", coco=tmp_path / "out.json")
+        for source in ({"csv": tmp_path / "out.csv"}, {"coco": tmp_path / "out.json"}):
+            p.undo()
+            assert p.status().labelled == 0
+            rep = p.import_labels(**source)
+            assert labels_by_path(p) == want and rep.not_matched == [] and rep.several == []
 
 
 def test_own_subfolder_names(photo_project_folder, tmp_path):
