@@ -904,6 +904,10 @@ class Project:
                 rejected = [self._rows[self._index[m]].fingerprint for m in self.store.proposal(gid).members
                             if m in self._index and m not in kept
                             and self._rows[self._index[m]].fingerprint not in labels]
+            elif kind == "rename":
+                # A rename carried the old name's "not this label" marks over to the new name.
+                old = next((row[1] for row in d["before"].values() if row), None)
+                rejected = [fp for fp, names in self.store.rejections().items() if old in names]
             dec = self.store.record_decision(kind, self.annotator, d["photos"], changes, label=d["label"],
                                              group_id=gid,
                                              close_proposals=[gid] if kind == "accept" and gid is not None else [],

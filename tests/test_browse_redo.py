@@ -107,6 +107,19 @@ def test_redo_after_undo_walks_forward_again(photo_project_folder):
         assert p.photo_info("a/camera_0.jpg")["state"] == "set_aside"
 
 
+def test_redo_of_an_import_style_rename(photo_project_folder):
+    """Redo works for every undoable kind; a rename (helper "import") as an example."""
+    with Project.open(photo_project_folder, annotator="tester") as p:
+        if not hasattr(p, "rename_label"):
+            pytest.skip("no rename in this build")
+        p.label(["a/chelsea_0.jpg", "a/chelsea_1.jpg"], "cat")
+        p.rename_label("cat", "feline", confirm=True)
+        p.undo()
+        assert p.browse(label="cat").total == 2
+        assert p.redo()["kind"] == "rename"
+        assert p.browse(label="feline").total == 2 and p.browse(label="cat").total == 0
+
+
 def test_redo_refused_once_a_new_decision_follows_the_undo(photo_project_folder):
     with Project.open(photo_project_folder, annotator="tester") as p:
         p.label(["b/rocket_0.jpg"], "rocket")
