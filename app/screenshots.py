@@ -100,8 +100,10 @@ def render(out: Path, source: Path) -> list[Path]:
             raise SystemExit("the scan did not finish in 5 minutes")
 
         name_of = _names_from_truth(folder) or (lambda members: "part")
+        accepted: list[str] = []
         for _ in range(3):  # a session under way: a few groups accepted, through the window
             g = w.current()
+            accepted += g.members
             w.group_page.label.setText(name_of(g.members))
             w.accept()
             _wait(app, w.idle, 60)  # the decision runs on the engine thread
@@ -132,6 +134,7 @@ def render(out: Path, source: Path) -> list[Path]:
         written.append(out / "5-preview.png")
         dlg.close()
 
+
         w.open_review()
         _wait(app, w.idle, 60)
         grid = w.review_page.grid
@@ -139,6 +142,39 @@ def render(out: Path, source: Path) -> list[Path]:
         _settle(app, 1.5)
         _save(w, out / "6-review.png")
         written.append(out / "6-review.png")
+
+        # 12: the preview at 100 % and more, moved with the arrow keys, the neighbours with their labels.
+        from PySide6.QtTest import QTest
+        w.preview(w.review_model.paths[-1])   # a typical photo of a label: its neighbours carry labels
+        dlg = w.last_preview
+        _wait(app, lambda: bool(dlg.near_model.paths) and dlg.picture.photo_size is not None, 30)
+        dlg.resize(1000, 720)
+        _settle(app, 0.5)
+        for k in (Qt.Key.Key_Z, Qt.Key.Key_Plus, Qt.Key.Key_Plus, Qt.Key.Key_Plus, Qt.Key.Key_Plus,
+                  Qt.Key.Key_Right, Qt.Key.Key_Down):
+            QTest.keyClick(dlg.picture, k)
+        _settle(app, 1.5)
+        _save(dlg, out / "12-preview-zoom.png")
+        written.append(out / "12-preview-zoom.png")
+        dlg.close()
+        w.back_to_groups()
+
+        # 11: every photo, browsed: not labelled ones in one subfolder, two selected, a label typed.
+        w.open_browse()
+        page = w.browse_page
+        _wait(app, lambda: w.idle() and page.folder.count() > 1 and page.total > 0, 60)
+        page.state.setCurrentIndex(page.state.findData("unlabelled"))
+        page.folder.setCurrentIndex(2 if page.folder.count() > 2 else 1)
+        _wait(app, lambda: w.idle() and page.model.paths and all(n.startswith("no label") for n in page.model.notes), 60)
+        _settle(app, 0.5)
+        sel = page.grid.selectionModel()
+        for row in (0, 1):
+            sel.select(page.model.index(row), sel.SelectionFlag.Select)
+        page.new_label.setText(name_of(page.model.paths[:1]))
+        page.say("Select photos, type a label (or press its number key), Return: they are labelled.")
+        _settle(app, 1.5)
+        _save(w, out / "11-browse.png")
+        written.append(out / "11-browse.png")
         w.back_to_groups()
 
         if len(w.status.by_label) >= 2:   # the mistakes list needs two labels to compare
@@ -167,6 +203,8 @@ def render(out: Path, source: Path) -> list[Path]:
         _save(exp, out / "7-export.png")
         written.append(out / "7-export.png")
         exp.reject()
+
+        _import_shot(app, w, folder, accepted, name_of, out, written)
         w.close()
     finally:
         os.chdir(saved_cwd)
@@ -177,6 +215,33 @@ def render(out: Path, source: Path) -> list[Path]:
                 os.environ[k] = v
         shutil.rmtree(tmp, ignore_errors=True)
     return written
+
+
+def _import_shot(app, w, folder: Path, accepted: list[str], name_of, out: Path, written: list) -> None:
+    """9-import.png: the import dialog's check of an earlier labelling kept as a CSV file (the demo's true
+    names for 60 photos; two of the photos labelled above carry another name there, two rows name
+    photos that are not in the folder)."""
+    import csv
+
+    photos = sorted(str(p.relative_to(folder).as_posix()) for p in folder.rglob("*")
+                    if p.is_file() and not p.relative_to(folder).parts[0].startswith("."))
+    chosen = accepted[:2] + [p for p in photos if p not in accepted[:2]][:58]
+    with open("previous-labels.csv", "w", newline="", encoding="utf-8") as f:
+        out_csv = csv.writer(f)
+        out_csv.writerow(["file", "category"])
+        for i, p in enumerate(chosen):
+            out_csv.writerow([p, "spares" if i < 2 else name_of([p])])
+        out_csv.writerows([["old-scans/IMG_0412.jpg", "washer"], ["old-scans/IMG_0413.jpg", "washer"]])
+    w.import_labels()
+    imp = w.last_import
+    imp.source.setText("previous-labels.csv")
+    imp.check.click()
+    _wait(app, lambda: imp.checked is not None or "⚠" in imp.message.text(), 60)
+    imp.resize(900, 780)
+    _settle(app, 0.3)
+    _save(imp, out / "9-import.png")
+    written.append(out / "9-import.png")
+    imp.reject()
 
 
 def main(argv=None) -> int:
