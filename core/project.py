@@ -30,6 +30,9 @@ from typing import Callable, Iterable, Sequence
 import numpy as np
 
 from core import catalogue, export, mistakes, neighbours, proposals
+from core.atomic import write_with
+from core.errors import ProjectError
+from core.folder_lock import FolderLock
 from core.store import LabelRow, PhotoRow, Store, StoreError, utc_now
 
 Progress = Callable[[int, int, str], None]
@@ -49,10 +52,6 @@ PROPOSAL_BATCH = 3
 _GRAPH_SETTINGS = dict(k=64, temperature=0.1, burst_threshold=0.97, centre=True)
 _GRAPH_FORMAT = 2
 _GRAPH_FIELDS = ("x", "sims", "idx", "entropy", "mutual", "burst")
-
-
-class ProjectError(Exception):
-    """A request Kinfold cannot carry out; the message says why, in one line."""
 
 
 @dataclass
@@ -94,31 +93,6 @@ class Status:
     relearned_version: int | None = None
 
 
-@dataclass
-class _Lock:
-    path: Path
-    handle: object = field(default=None, repr=False)
-
-    def acquire(self) -> None:
-        try:
-            import fcntl
-        except ImportError:  # not POSIX: no cross-process lock
-            return
-        self.handle = open(self.path, "a+")
-        try:
-            fcntl.flock(self.handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except OSError:
-            self.handle.close()
-            self.handle = None
-            raise ProjectError(f"this folder is already open in another Kinfold window or command "
-                               f"(lock {self.path}); close it there first") from None
-
-    def release(self) -> None:
-        if self.handle is not None:
-            self.handle.close()
-            self.handle = None
-
-
 def _serialised(method):
     """Run a public verb under the project's lock: the GUI thread and its workers share one Project,
     and its in-memory state (catalogue arrays, graph, classifier cache) changes as a whole."""
@@ -143,7 +117,7 @@ def clean_label(label: str) -> str:
 
 
 class Project:
-    def __init__(self, folder: Path, store: Store, annotator: str, extractor: str, lock: _Lock | None):
+    def __init__(self, folder: Path, store: Store, annotator: str, extractor: str, lock: FolderLock | None):
         self.folder = folder
         self.store = store
         self.annotator = annotator
@@ -180,7 +154,7 @@ class Project:
             raise ProjectError(str(exc)) from exc
         lk = None
         if lock and not st.read_only:  # a read-only store cannot be changed, so it needs no lock
-            lk = _Lock(store_dir / "lock")
+            lk = FolderLock(store_dir / "lock")
             try:
                 lk.acquire()
             except ProjectError:
@@ -368,18 +342,13 @@ class Project:
                 except OSError:
                     pass  # a read-only store keeps its damaged cache; the graph is rebuilt in memory
         g = neighbours.build_graph(feats, **_GRAPH_SETTINGS)
-        tmp = cache.with_name(f"graph-{os.getpid()}-{threading.get_ident()}.tmp.npz")
         try:
-            np.savez(tmp, **{k: getattr(g, k) for k in _GRAPH_FIELDS})
-            os.replace(tmp, cache)
+            write_with(cache, lambda tmp: np.savez(tmp, **{k: getattr(g, k) for k in _GRAPH_FIELDS}), ".npz")
             for old in self.store.directory.glob("graph-*.npz"):
                 if old != cache:
                     old.unlink(missing_ok=True)
         except OSError:  # a read-only store or a full disk: the graph is kept in memory only
-            try:
-                tmp.unlink(missing_ok=True)
-            except OSError:
-                pass
+            pass
         return g
 
     def _paths_to_indices(self, paths: Iterable[str]) -> list[int]:
