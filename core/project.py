@@ -33,6 +33,7 @@ from core import catalogue, export, mistakes, neighbours, proposals
 from core.atomic import write_with
 from core.errors import ProjectError
 from core.folder_lock import FolderLock
+from core.label_state import LabelState
 from core.store import LabelRow, PhotoRow, Store, StoreError, utc_now
 
 Progress = Callable[[int, int, str], None]
@@ -126,6 +127,8 @@ class Project:
         self._mutex = threading.RLock()
         self._extractor = None
         self._graph: neighbours.Graph | None = None
+        self._labels: LabelState | None = None
+        store.after_commit(self._on_commit)
         self._load_catalogue()
 
     # -- opening -----------------------------------------------------------------------------
@@ -198,6 +201,37 @@ class Project:
         self._graph = None
         self._graph_version = None
         self._classifier_cache: tuple = (None, None)
+        self._labels = LabelState.load(self.store, [r.fingerprint for r in self._rows])
+
+    def _on_commit(self, changes: list[tuple]) -> None:
+        """The store's after_commit hook: each decision updates the label state in place."""
+        if any(c[0] == "catalogue" for c in changes):
+            self._labels = None             # a scan reloads the catalogue and the state with it
+            return
+        if self._labels is not None:
+            try:
+                self._labels.apply(changes)
+            except Exception:                # never leave a half-applied state: read the tables again
+                self._labels = None
+
+    @property
+    def label_state(self) -> LabelState:
+        """Where every photo stands (core/label_state.py), kept up to date by each decision."""
+        if self._labels is None:
+            self._labels = LabelState.load(self.store, [r.fingerprint for r in self._rows])
+        return self._labels
+
+    @_serialised
+    def reload(self) -> None:
+        """Read the catalogue, embeddings and label state from the store again (after the store was
+        changed other than through this project's verbs, e.g. a benchmark wiping its decisions)."""
+        self._load_catalogue()
+
+    @_serialised
+    def label_arrays(self) -> tuple[np.ndarray, np.ndarray, list[str]]:
+        """(state, label_of, names): per photo FREE / LABELLED / SET_ASIDE (core.proposals), the index
+        of its label in `names` (-1 when none), and the sorted label names. Copies, safe to keep."""
+        return self.label_state.arrays()
 
     def extractor(self):
         if self._extractor is None:
@@ -360,29 +394,13 @@ class Project:
             out.append(self._index[p])
         return out
 
-    @_serialised
     def _state_arrays(self):
-        labels = self.store.labels()
-        names = sorted({r.label for r in labels.values() if r.state == "labelled"})
-        pos = {n: i for i, n in enumerate(names)}
-        n = len(self._rows)
-        state = np.zeros(n, np.int8)
-        label_of = np.full(n, -1, np.int64)
-        self._not_label = np.zeros((n, len(names)), bool)
-        rejections = self.store.rejections()
-        for i, r in enumerate(self._rows):
-            for lab in rejections.get(r.fingerprint, ()):
-                if lab in pos:
-                    self._not_label[i, pos[lab]] = True
-            lr = labels.get(r.fingerprint)
-            if lr is None:
-                continue
-            if lr.state == "labelled":
-                state[i] = proposals.LABELLED
-                label_of[i] = pos[lr.label]
-            else:
-                state[i] = proposals.SET_ASIDE
-        return state, label_of, names
+        """Kept for callers of the old name; see label_arrays."""
+        return self.label_arrays()
+
+    @property
+    def _not_label(self) -> np.ndarray:
+        return self.label_state.not_label()
 
     # -- proposals ---------------------------------------------------------------------------
     @_serialised
@@ -404,7 +422,7 @@ class Project:
         if not self._rows or limit <= 0:
             return []
         s = settings or proposals.Settings()
-        mark = dict(version=self.store.active_relearn_version(), decisions=self.store.decision_count(),
+        mark = dict(version=self.store.active_relearn_version(), decisions=self.label_state.decisions,
                     photos=len(self._rows))
         saved = self.store.get_setting("proposal_queue") or dict(mark=mark, order=[], unshown=[])
         same = saved["mark"] == mark
@@ -435,7 +453,7 @@ class Project:
                 kept[row.id] = p
 
         fresh: list[dict] = []           # groups formed now, stored below; negative ids until then
-        deferred = self.store.deferred()
+        deferred = self.label_state.deferred
         graph = classifier = None
 
         def batch() -> list[Proposal]:
@@ -443,8 +461,8 @@ class Project:
             if graph is None:
                 graph, classifier = self.graph(), self.label_classifier(names)
             eligible = ~taken
-            if deferred:
-                rested = eligible & np.array([r.fingerprint not in deferred for r in self._rows])
+            if deferred.any():
+                rested = eligible & ~deferred
                 # Photos left for later come back once nothing else is left.
                 if (rested & (state == proposals.FREE)).any():
                     eligible = rested
@@ -520,8 +538,8 @@ class Project:
             if unknown:
                 raise ProjectError(f"{sorted(unknown)[0]} is not a member of group {group_id}")
             keep = [m for m in row.members if m not in drop and m in self._index]
-            labels = self.store.labels()
-            keep = [m for m in keep if self._rows[self._index[m]].fingerprint not in labels]
+            known = self.label_state
+            keep = [m for m in keep if known.row(self._rows[self._index[m]].fingerprint) is None]
             changes = {self._rows[self._index[m]].fingerprint: self._new_row(
                 self._rows[self._index[m]].fingerprint, "labelled", label, "group") for m in keep}
             rejected = [self._rows[self._index[m]].fingerprint for m in drop if m in self._index]
@@ -534,11 +552,11 @@ class Project:
         label = clean_label(label)
         idx = self._paths_to_indices(paths)
         with self.store.transaction():
-            labels = self.store.labels()
+            known = self.label_state
             changes = {}
             for i in idx:
                 fp = self._rows[i].fingerprint
-                how = "relabel" if fp in labels else "single"
+                how = "relabel" if known.row(fp) is not None else "single"
                 changes[fp] = self._new_row(fp, "labelled", label, how)
             return self.store.record_decision("label", self.annotator, [self._rows[i].path for i in idx], changes,
                                               label=label)
@@ -626,18 +644,10 @@ class Project:
     # -- reading -----------------------------------------------------------------------------
     @_serialised
     def status(self) -> Status:
-        labels = self.store.labels()
-        by_label: dict[str, int] = {}
-        labelled = aside = 0
-        for r in self._rows:
-            lr = labels.get(r.fingerprint)
-            if lr is None:
-                continue
-            if lr.state == "labelled":
-                labelled += 1
-                by_label[lr.label] = by_label.get(lr.label, 0) + 1
-            else:
-                aside += 1
+        ls = self.label_state
+        by_label = ls.counts()
+        labelled = int((ls.state == proposals.LABELLED).sum())
+        aside = int((ls.state == proposals.SET_ASIDE).sum())
         return Status(photos=len(self._rows), labelled=labelled, set_aside=aside,
                       unlabelled=len(self._rows) - labelled - aside, by_label=dict(sorted(by_label.items())),
                       actions=self.store.decision_count(actions_only=True), skipped=len(self.store.skipped()),
@@ -651,7 +661,7 @@ class Project:
     def photo_info(self, path: str) -> dict:
         i = self._paths_to_indices([path])[0]
         r = self._rows[i]
-        lr = self.store.labels().get(r.fingerprint)
+        lr = self.label_state.row(r.fingerprint)
         return dict(path=r.path, width=r.width, height=r.height, bytes=r.size, fingerprint=r.fingerprint,
                     state=lr.state if lr else "unlabelled", label=lr.label if lr else None)
 
@@ -680,11 +690,11 @@ class Project:
 
     @_serialised
     def labelled_photos(self) -> list[export.LabelledPhoto]:
-        labels = self.store.labels()
+        known = self.label_state
         g = self.graph() if self._rows else None
         out = []
         for i, r in enumerate(self._rows):
-            lr = labels.get(r.fingerprint)
+            lr = known.row(r.fingerprint)
             if lr is None or lr.state != "labelled":
                 continue
             burst = int(g.burst[i]) if g is not None and g.burst[i] >= 0 else None
@@ -745,9 +755,9 @@ class Project:
         """Labelled photos whose label is most likely wrong, first the likeliest, with the label the
         engine would give instead; photos whose label was confirmed are left out."""
         state, label_of, names = self._state_arrays()
-        labels = self.store.labels()
-        confirmed = np.array([labels[r.fingerprint].how == mistakes.CONFIRMED if r.fingerprint in labels
-                              else False for r in self._rows], bool)
+        known = self.label_state
+        confirmed = np.array([getattr(known.row(r.fingerprint), "how", None) == mistakes.CONFIRMED
+                              for r in self._rows], bool)
         found = mistakes.rank(self.graph().x, label_of, self.graph().idx, method=method or mistakes.METHOD,
                               keep=~confirmed) if self._rows else []
         return [mistakes.Mistake(self._rows[s.index].path, names[s.label],
@@ -762,11 +772,11 @@ class Project:
         label = None if label is None else clean_label(label)
         idx = self._paths_to_indices(paths)
         with self.store.transaction():
-            labels = self.store.labels()
+            known = self.label_state
             changes = {}
             for i in idx:
                 fp = self._rows[i].fingerprint
-                lr = labels.get(fp)
+                lr = known.row(fp)
                 if label is None and (lr is None or lr.state != "labelled"):
                     raise ProjectError(f"{self._rows[i].path} has no label to confirm")
                 changes[fp] = self._new_row(fp, "labelled", label or lr.label, mistakes.CONFIRMED)
