@@ -118,14 +118,16 @@ def clean_label(label: str) -> str:
 
 
 class Project:
-    def __init__(self, folder: Path, store: Store, annotator: str, extractor: str, lock: FolderLock | None):
+    def __init__(self, folder: Path, store: Store, annotator: str, extractor, lock: FolderLock | None):
         self.folder = folder
         self.store = store
         self.annotator = annotator
-        self.extractor_name = extractor
+        # A name (the network loads when a scan first needs it) or an object with the Extractor
+        # protocol of core/embedding.py.
+        self._extractor = None if isinstance(extractor, str) else extractor
+        self.extractor_name = extractor if isinstance(extractor, str) else str(extractor.id)
         self._lock = lock
         self._mutex = threading.RLock()
-        self._extractor = None
         self._graph: neighbours.Graph | None = None
         self._labels: LabelState | None = None
         store.after_commit(self._on_commit)
@@ -133,10 +135,14 @@ class Project:
 
     # -- opening -----------------------------------------------------------------------------
     @classmethod
-    def open(cls, folder, store=None, *, extractor: str = DEFAULT_EXTRACTOR, annotator: str | None = None,
+    def open(cls, folder, store=None, *, extractor=DEFAULT_EXTRACTOR, annotator: str | None = None,
              lock: bool = True) -> "Project":
         """Create or reopen the project of `folder`. The store defaults to `<folder>/.kinfold/`;
-        pass `store=` for a separate location (a read-only folder, say)."""
+        pass `store=` for a separate location (a read-only folder, say). `extractor`: the name of a
+        built-in backbone, or any object with the `Extractor` protocol (core/embedding.py: `id`,
+        `dim`, `decode_side`, `preprocess`, `embed`) to plug in a custom one."""
+        if not isinstance(extractor, str):
+            _check_extractor(extractor)
         if folder is None or not str(folder).strip():
             raise ProjectError("no photo folder given (the name is empty); name the folder, '.' for the "
                                "current one")
@@ -315,6 +321,11 @@ class Project:
         from core import relearning
 
         return version if relearning.has_head(self.store.relearn_state(version)) else None
+
+    @_serialised
+    def backbone_features(self) -> np.ndarray:
+        """(photos, dim) the extractor's vectors in the order of `photos()`, before any relearning."""
+        return self._features
 
     @_serialised
     def features(self) -> np.ndarray:
@@ -830,6 +841,18 @@ def _check_graph(g: neighbours.Graph, n: int) -> None:
           and (n == 0 or (g.idx.min() >= -1 and g.idx.max() < n)))
     if not ok:
         raise ValueError("graph cache does not fit the catalogue")
+
+
+def _check_extractor(obj) -> None:
+    """Refuse, in one line, an extractor object that lacks part of the protocol."""
+    from core.embedding import Extractor  # torch loads only when an object is handed in
+
+    if not isinstance(obj, Extractor):
+        missing = [m for m in ("id", "dim", "decode_side", "preprocess", "embed") if not hasattr(obj, m)]
+        raise ProjectError(f"the extractor {type(obj).__name__} lacks {', '.join(missing)} (see the Extractor "
+                           f"protocol in core/embedding.py)")
+    if not isinstance(obj.id, str) or not obj.id.strip():
+        raise ProjectError(f"the extractor {type(obj).__name__} needs a non-empty text id")
 
 
 def _default_annotator() -> str:
