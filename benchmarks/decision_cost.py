@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import argparse
 import cProfile
-import hashlib
 import io
 import pstats
 import shutil
@@ -33,8 +32,8 @@ import numpy as np
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
+from benchmarks.cached_project import build_project  # noqa: E402
 from core.project import Project  # noqa: E402
-from core.store import PhotoRow  # noqa: E402
 
 TARGET_MEDIAN_MS = 50.0
 TARGET_P95_MS = 100.0
@@ -49,21 +48,6 @@ def synthetic(n: int, dim: int, classes: int = 10, seed: int = 0) -> tuple[np.nd
     x = subs[y, rng.integers(0, 8, n)] + 1.2 * rng.normal(size=(n, dim)).astype(np.float32)
     x /= np.linalg.norm(x, axis=1, keepdims=True)
     return x.astype(np.float32), y
-
-
-def build_project(folder: Path, x: np.ndarray, y: np.ndarray) -> tuple[Project, dict[str, str]]:
-    """A project whose store holds one photo per row of x (paths only; no file is read)."""
-    rows = [PhotoRow(f"photo_{i:07d}.png", hashlib.sha1(str(i).encode()).hexdigest(), 1000 + i, 0, 28, 28)
-            for i in range(len(x))]
-    ext = "bench-cached:%dx%d" % x.shape
-    p = Project.open(folder, annotator="bench")
-    p.store.set_setting("extractor_id", ext)
-    p.store.replace_catalogue(rows, {})
-    for s in range(0, len(rows), 20000):
-        p.store.put_embeddings(ext, [r.fingerprint for r in rows[s:s + 20000]], x[s:s + 20000])
-    getattr(p, "reload", getattr(p, "_load_catalogue", None))()   # (the older engine, for comparison)
-    truth = {r.path: f"class {int(c)}" for r, c in zip(rows, y)}
-    return p, truth
 
 
 def percentile(values: list[float], q: float) -> float:
@@ -125,7 +109,7 @@ def main(argv=None) -> int:
     work = Path(tempfile.mkdtemp(prefix="kinfold-decision-cost-"))
     try:
         t0 = time.perf_counter()
-        p, truth = build_project(work, x, y)
+        p, truth = build_project(work, x, [f"class {int(c)}" for c in y])
         t1 = time.perf_counter()
         p.graph()
         t2 = time.perf_counter()

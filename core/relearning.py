@@ -581,9 +581,15 @@ def relearn_project(inputs: Inputs, progress: Progress | None = None, seconds: f
         if progress:
             progress(0, 1, "fitting the label classifier")
         t1 = time.perf_counter()
-        clf = fit_classifier(features, state, label_of, names, c=s.classifier_c, balanced=s.classifier_balanced,
-                             not_label=inputs.not_label if s.classifier_rejections else None,
-                             rejection_weight=s.classifier_rejection_weight, cancel=cancel)
+        from core.label_classifier import LabelClassifier
+
+        try:
+            clf = LabelClassifier(c=s.classifier_c, balanced=s.classifier_balanced,
+                                  rejection_weight=s.classifier_rejection_weight).fit(
+                features, state, label_of, names, not_label=inputs.not_label if s.classifier_rejections else None,
+                cancel=cancel).to_classifier()
+        except InterruptedError:
+            clf = None
         if cancel is not None and cancel():
             return dict(version=None, cancelled=True, reason="cancelled; the active embedding is unchanged")
         figures["classifier_seconds"] = round(time.perf_counter() - t1, 2)
