@@ -312,7 +312,28 @@ def split_members(x: np.ndarray, seed: int = 0) -> np.ndarray:
 
     Measured with the yield simulator on Fashion-MNIST 2,000: 2-means on the features gave parts
     about as mixed as the group (3.18 photos per action with splits offered against 4.00 without);
-    the spectral cut, offered for groups of at least MIN_SPLIT photos, 3.94."""
+    the spectral cut, offered for groups of at least MIN_SPLIT photos, 3.94.
+
+    Runs with one BLAS thread: for a group-sized matrix, threads only wait on each other (on the
+    2-core machine under load, 0.49 s against 0.023 s per split; the slowest decisions in
+    benchmarks/decision_cost.py were all splits). The parts are the same."""
+    with _one_blas_thread():
+        return _split_members(x)
+
+
+def _one_blas_thread():
+    global _BLAS
+    if _BLAS is None:
+        from threadpoolctl import ThreadpoolController
+
+        _BLAS = ThreadpoolController()
+    return _BLAS.limit(limits=1, user_api="blas")
+
+
+_BLAS = None
+
+
+def _split_members(x: np.ndarray) -> np.ndarray:
     x = np.asarray(x, np.float64)
     m = len(x)
     if m < 2:
