@@ -5,7 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from core.errors import ProjectError
+from core.errors import FolderInUse
 
 
 @dataclass
@@ -24,8 +24,8 @@ class FolderLock:
         except OSError:
             self.handle.close()
             self.handle = None
-            raise ProjectError(f"this folder is already open in another Kinfold window or command "
-                               f"(lock {self.path}); close it there first") from None
+            raise FolderInUse(f"this folder is already open in another Kinfold window or command "
+                              f"(lock {self.path}); close it there first") from None
 
     def release(self) -> None:
         if self.handle is not None:

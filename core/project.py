@@ -26,7 +26,7 @@ import numpy as np
 
 from core import decisions, export, geometry, mistakes, neighbours, proposal_queue, proposals, scanning
 from core.decisions import UNDOABLE as _UNDOABLE, clean_label  # noqa: F401  (callers import them from here)
-from core.errors import ProjectError
+from core.errors import FolderInUse, ProjectError  # noqa: F401  (callers import them from here)
 from core.folder_lock import FolderLock
 from core.group import Group, Proposal  # noqa: F401  (Proposal: the older name)
 from core.label_state import LabelState
@@ -472,6 +472,22 @@ class Project:
         the photos leave the likely-mistakes queue (until a later decision changes their label).
         One logged decision (kind 'confirm'), undoable; returns its id."""
         return decisions.confirm(self, paths, label)
+
+    # --- cli: statistics and the set-aside list (core/statistics.py) ---
+    @_serialised
+    def statistics(self) -> "statistics.Statistics":
+        """Photos per label, labels per hour, suggestions accepted as they were, per annotator."""
+        from core import statistics
+        st = self.status()
+        return statistics.from_store(self.store, st.by_label, st.photos)
+
+    @_serialised
+    def set_aside_photos(self) -> list[str]:
+        """The photos set aside (belonging to no class), in catalogue order."""
+        labels = self.store.labels()
+        return [r.path for r in self._rows
+                if r.fingerprint in labels and labels[r.fingerprint].state == "set_aside"]
+
 
 def _check_extractor(obj) -> None:
     """Refuse, in one line, an extractor object that lacks part of the protocol."""
