@@ -14,7 +14,7 @@ from core.errors import ProjectError
 from core.group import Group
 from core.store import LabelRow
 
-UNDOABLE = ("accept", "label", "set_aside", "clear", "split", "later", "confirm")
+UNDOABLE = ("accept", "label", "set_aside", "clear", "split", "later", "confirm", "import", "rename")
 
 
 def clean_label(label: str) -> str:

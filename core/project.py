@@ -488,6 +488,24 @@ class Project:
         return [r.path for r in self._rows
                 if r.fingerprint in labels and labels[r.fingerprint].state == "set_aside"]
 
+    # --- import: bringing labels in, renaming and merging labels (core/label_import.py, core/label_rename.py) ---
+    def import_labels(self, csv=None, coco=None, folders=None, subfolders: bool = False, *,
+                      path_column: str | None = None, label_column: str | None = None, replace: bool = False,
+                      dry_run: bool = False, progress: Progress | None = None, cancel: Cancel | None = None):
+        """Labels from a CSV file, a COCO file, a class-folder tree (matched by content fingerprint) or the
+        photo folder's own subfolder names, as one undoable decision of kind 'import'; returns an
+        `ImportReport` (conflicts are kept unless `replace`; `dry_run` writes nothing)."""
+        from core import label_import
+        return label_import.import_labels(self, csv=csv, coco=coco, folders=folders, subfolders=subfolders,
+                                          path_column=path_column, label_column=label_column, replace=replace,
+                                          dry_run=dry_run, progress=progress, cancel=cancel)
+
+    def rename_label(self, old: str, new: str, confirm: bool = False):
+        """Rename a label (onto an existing one: merge) as one undoable decision of kind 'rename'; a new
+        name close to an existing label raises `label_rename.NameQuestion` unless `confirm`."""
+        from core import label_rename
+        return label_rename.rename_label(self, old, new, confirm=confirm)
+
 
 def _check_extractor(obj) -> None:
     """Refuse, in one line, an extractor object that lacks part of the protocol."""
