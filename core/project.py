@@ -231,11 +231,19 @@ class Project:
             self._extractor = get_extractor(self.extractor_name)
         return self._extractor
 
-    def scan(self, progress: Progress | None = None, cancel: Cancel | None = None) -> ScanReport:
+    def scan(self, progress: Progress | None = None, cancel: Cancel | None = None, cluster=None,
+             **cluster_options) -> ScanReport:
         """Find new and changed photos and embed those not embedded yet. Safe to cancel: what was
         embedded is kept, and the next scan goes on from there. A file that is not a readable photo
         is remembered as skipped; a failure that may pass (I/O, memory, the network) is reported in
-        `skipped` for this scan only and tried again by the next one."""
+        `skipped` for this scan only and tried again by the next one.
+
+        `cluster`: embed on Dask instead of in this process: a number of local worker processes or a
+        scheduler address "tcp://host:port" (see core/cluster_scan.py; `cluster_options` go to its
+        `embed_rows`: chunk, transfer, threads). A scheduler lost mid-scan raises ProjectError once
+        the catalogue and everything embedded are stored."""
+        if cluster is not None:
+            cluster = self._cluster_target(cluster)
         t0 = time.perf_counter()
         previous = {r.path: r for r in self.store.photos()}
         # Skips remembered before reasons were checked for being final (and named no path) are
@@ -260,7 +268,11 @@ class Project:
                 if r.fingerprint not in done_fps:
                     todo.setdefault(r.fingerprint, r)
         todo_rows = list(todo.values())
-        if todo_rows:
+        lost = None
+        if todo_rows and cluster is not None:
+            embedded, cancelled, lost = self._embed_on_cluster(cluster, todo_rows, extractor, progress, cancel,
+                                                               failed, retry, paths_of, cluster_options)
+        elif todo_rows:
             from core.embedding import embed_files
 
             for start in range(0, len(todo_rows), _EMBED_CHUNK):
@@ -291,6 +303,8 @@ class Project:
             self._load_catalogue()
         shown = [(p, v[2]) for p, v in skipped.items()]
         shown += [(p, f"{reason} (tried again at the next scan)") for p, reason in retry.items()]
+        if lost:
+            raise ProjectError(lost)
         ready = {r.path for r in photos}  # new and changed count photos, not files later left out
         return ScanReport(photos=len(self._rows), new=sum(p in ready for p in cat.new),
                           changed=sum(p in ready for p in cat.changed),
@@ -803,6 +817,31 @@ class Project:
                 changes[fp] = self._new_row(fp, "labelled", label or lr.label, mistakes.CONFIRMED)
             return self.store.record_decision("confirm", self.annotator, [self._rows[i].path for i in idx],
                                               changes, label=label)
+
+    # --- dask: embedding a scan on a Dask cluster (core/cluster_scan.py) ---
+    @staticmethod
+    def _cluster_target(cluster):
+        from core import cluster_scan
+
+        try:
+            return cluster_scan.parse_target(cluster)
+        except ValueError as exc:
+            raise ProjectError(str(exc)) from None
+
+    def _embed_on_cluster(self, cluster, rows, extractor, progress, cancel, failed, retry, paths_of, options):
+        """Embed `rows` on the cluster, storing each chunk; fills `failed` / `retry` as the in-process
+        loop does. Returns (embedded, cancelled, one-line reason the cluster was lost or None)."""
+        from core import cluster_scan
+
+        try:
+            run = cluster_scan.embed_rows(self.folder, rows, extractor, self.store, cluster, progress=progress,
+                                          cancel=cancel, extractor_name=self.extractor_name, **options)
+        except cluster_scan.ClusterError as exc:  # before any work was sent: nothing embedded
+            return 0, True, str(exc)
+        failed.update(run.failed)
+        for fp, reason in run.retry.items():
+            retry.update((path, reason) for path in paths_of[fp])
+        return run.embedded, run.cancelled or run.lost is not None, run.lost
 
 
 class _RelearnView:
