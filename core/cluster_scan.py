@@ -234,6 +234,7 @@ class ClusterRun:
     workers: int = 0
     chunk_seconds: list = field(default_factory=list)  # worker-side seconds per finished chunk
     chunk_sizes: list = field(default_factory=list)
+    client_seconds: float = 0.0                   # this process's own work: reading bytes, storing vectors
     seconds: float = 0.0
 
 
@@ -346,7 +347,10 @@ def _embed_with(client, folder, rows, extractor, store, progress, cancel, chunk,
         return out
 
     def submit(k: int) -> None:
-        fut = client.submit(embed_chunk, items_of(k), model, precision, extractor.id, by_host,
+        t0 = time.perf_counter()
+        items = items_of(k)
+        run.client_seconds += time.perf_counter() - t0
+        fut = client.submit(embed_chunk, items, model, precision, extractor.id, by_host,
                             key=f"kinfold-embed-{tag}-{k}", retries=2, pure=False)
         in_flight[fut] = k
 
@@ -395,7 +399,9 @@ def _embed_with(client, folder, rows, extractor, store, progress, cancel, chunk,
                     fps = [rows_k[i].fingerprint for i in out["ok"] if i not in bad_here]
                     keep = [j for j, i in enumerate(out["ok"]) if i not in bad_here]
                     vectors = np.asarray(out["vectors"], dtype=np.float32)[keep]
+                    t0 = time.perf_counter()
                     store.put_embeddings(extractor.id, fps, vectors)
+                    run.client_seconds += time.perf_counter() - t0
                     run.embedded += len(fps)
                     for pos, (reason, again) in bad_here.items():
                         (run.retry if again else run.failed)[rows_k[pos].fingerprint] = reason
