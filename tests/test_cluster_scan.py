@@ -181,3 +181,38 @@ def test_cli_workers_as_a_subprocess(scanned_template, tmp_path):
     bad = subprocess.run([sys.executable, "-m", "app.cli", "scan", str(folder), "--cluster", "udp://x"],
                          cwd=ROOT, env=env, capture_output=True, text=True, timeout=120)
     assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1, bad.stderr
+
+
+def test_the_window_scans_where_the_start_page_says(scanned_template, tmp_path, client, qtbot):
+    """The start page's "Embed photos on", typed with real key events: a scheduler's address sends the
+    scan's chunks there (seen in the scheduler's task stream) and is remembered; nonsense is refused in one
+    line before anything is opened."""
+    from PySide6.QtCore import QSettings, Qt
+    from PySide6.QtTest import QTest
+
+    from app.main_window import MainWindow
+
+    folder = _fresh_copy(scanned_template, tmp_path)
+    settings = QSettings(str(tmp_path / "settings.ini"), QSettings.Format.IniFormat)
+    w = MainWindow(settings)
+    qtbot.addWidget(w)
+    w.show()
+    qtbot.waitExposed(w)
+    field = w.start.scan_on
+    QTest.mouseClick(field, Qt.MouseButton.LeftButton)
+    QTest.keyClicks(field, "0")
+    assert not w.open_folder(str(folder))
+    assert w.project is None and "Embed photos on:" in w.start.error.text()
+    field.selectAll()
+    QTest.keyClicks(field, client.scheduler.address)
+    with distributed.get_task_stream(client) as stream:
+        with qtbot.waitSignal(w.groups_shown, timeout=300_000):
+            assert w.open_folder(str(folder))
+    assert sum(t["key"].startswith("kinfold-embed") for t in stream.data) >= 1
+    assert len(w.project.photos()) == 30
+    assert settings.value("scan_on") == client.scheduler.address
+    w.close_folder()
+    again = MainWindow(settings)
+    qtbot.addWidget(again)
+    assert again.start.scan_on.text() == client.scheduler.address
+    _assert_same(folder, scanned_template)
