@@ -173,7 +173,7 @@ def test_unreachable_scheduler_and_bad_targets_are_one_line(tmp_path, monkeypatc
 def test_cli_workers_as_a_subprocess(scanned_template, tmp_path):
     folder = _fresh_copy(scanned_template, tmp_path)
     env = dict(os.environ, PYTHONPATH=str(ROOT))
-    run = subprocess.run([sys.executable, "-m", "app.cli", "scan", str(folder), "--workers", "2", "--chunk", "8",
+    run = subprocess.run([sys.executable, "-m", "app.cli", "scan", str(folder), "--workers", "1", "--chunk", "8",
                           "--json"], cwd=ROOT, env=env, capture_output=True, text=True, timeout=300)
     assert run.returncode == 0, run.stderr
     assert json.loads(run.stdout)["embedded"] == 30
