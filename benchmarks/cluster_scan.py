@@ -101,6 +101,8 @@ def main(argv=None) -> int:
     ap.add_argument("--count", type=int, default=128)
     ap.add_argument("--chunk", type=int, default=16)
     ap.add_argument("--model-workers", type=int, default=8)
+    ap.add_argument("--link-mbit", type=float, default=1000.0,
+                    help="the client's network link assumed by the MODEL in bytes mode (Mbit/s)")
     args = ap.parse_args(argv)
     print("command: python -m benchmarks.cluster_scan " + " ".join(sys.argv[1:] if argv is None else argv))
 
@@ -161,12 +163,18 @@ def main(argv=None) -> int:
     client_path = run1.client_seconds / chunks
     client_bytes = results["2 workers, bytes"][2].client_seconds / len(results["2 workers, bytes"][2].chunk_seconds)
     workers_rate = k * args.chunk / (chunk_s + overhead)
-    for label, per_chunk in (("path", client_path), ("bytes", client_bytes)):
+    photo_bytes = statistics.mean(p.stat().st_size for p in paths)
+    link_rate = args.link_mbit * 1e6 / 8 / photo_bytes   # every photo's bytes leave the client once
+    print(f"MODEL (not a measurement): {k} machines like this one, 1 worker each, the load as in this run; "
+          f"photos {photo_bytes / 1e6:.1f} MB on average; bytes mode over an assumed {args.link_mbit:.0f} Mbit/s "
+          f"client link")
+    for label, per_chunk, link in (("path", client_path, None), ("bytes", client_bytes, link_rate)):
         client_rate = args.chunk / per_chunk if per_chunk > 0 else float("inf")
-        rate = min(workers_rate, client_rate)
+        rate = min(workers_rate, client_rate, link or float("inf"))
+        extra = f", link {link:.0f}/s" if link else ""
         print(f"MODEL {k} workers ({label}): {rate:6.1f} photos/s = min({k} x {args.chunk} / ({chunk_s:.2f} s chunk "
-              f"+ {overhead:.2f} s round trip), client {client_rate:.0f}/s from {per_chunk * 1000:.0f} ms/chunk); "
-              f"efficiency {rate / (k * r1):.2f} vs {k} x the 1-worker rate")
+              f"+ {overhead:.2f} s round trip), client {client_rate:.0f}/s from {per_chunk * 1000:.0f} ms/chunk"
+              f"{extra}); efficiency {rate / (k * r1):.2f} vs {k} x the 1-worker rate")
     return 0
 
 

@@ -29,6 +29,7 @@ import os
 import threading
 import time
 import uuid
+import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -350,8 +351,10 @@ def _embed_with(client, folder, rows, extractor, store, progress, cancel, chunk,
         t0 = time.perf_counter()
         items = items_of(k)
         run.client_seconds += time.perf_counter() - t0
-        fut = client.submit(embed_chunk, items, model, precision, extractor.id, by_host,
-                            key=f"kinfold-embed-{tag}-{k}", retries=2, pure=False)
+        with warnings.catch_warnings():  # bytes mode sends the photos in the task: large by design
+            warnings.filterwarnings("ignore", message="Sending large graph")
+            fut = client.submit(embed_chunk, items, model, precision, extractor.id, by_host,
+                                key=f"kinfold-embed-{tag}-{k}", retries=2, pure=False)
         in_flight[fut] = k
 
     def top_up() -> None:
