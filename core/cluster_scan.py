@@ -384,6 +384,10 @@ def _embed_with(client, folder, rows, extractor, store, progress, cancel, chunk,
                     done = distributed.wait(list(in_flight), timeout=0.25, return_when="FIRST_COMPLETED").done
                 except TimeoutError:  # nothing finished within the poll interval
                     pass
+                except Exception:  # futures cancelled (the scheduler connection dropped, say): looked at below
+                    done = {f for f in in_flight if f.status == "cancelled"}
+                    if done:
+                        time.sleep(0.5)  # the client notices a lost connection a moment after its futures
             if not _connected(client):
                 disconnected_since = disconnected_since or time.monotonic()
                 if time.monotonic() - disconnected_since > LOST_SECONDS:

@@ -125,10 +125,13 @@ def test_scheduler_gone_is_one_line_and_the_next_scan_carries_on(scanned_templat
                         "--scheduler-file", str(sched_file)], ROOT)
     worker = None
     try:
-        deadline = time.monotonic() + 60
-        while not sched_file.exists() and time.monotonic() < deadline:
-            time.sleep(0.2)
-        address = json.loads(sched_file.read_text())["address"]
+        deadline, address = time.monotonic() + 60, None
+        while address is None and time.monotonic() < deadline:
+            try:  # the file appears before it is whole
+                address = json.loads(sched_file.read_text())["address"]
+            except (OSError, ValueError, KeyError):
+                time.sleep(0.2)
+        assert address, "the scheduler did not start"
         worker = _start(["distributed.cli.dask_worker", address, "--nthreads", "1", "--no-dashboard",
                          "--host", "127.0.0.1"], ROOT)
 
