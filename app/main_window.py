@@ -208,6 +208,7 @@ class MainWindow(QMainWindow):
             ("preview", "Preview", ["Ctrl+P"], "Views", self.preview),
             ("review", "Review labels", ["Ctrl+R"], "Views", self.open_review),
             ("mistakes", "Find mistakes", ["Ctrl+M"], "Views", self.open_mistakes),
+            ("stats", "Statistics…", ["Ctrl+Shift+S"], "Views", self.open_statistics),
             ("help", "Keys", ["F1", "?"], "Views", lambda: self.help.toggle()),
             ("open", "Open folder…", ["Ctrl+O"], "Folder", self.choose_folder),
             ("export", "Export…", ["Ctrl+E"], "Folder", self.export),
@@ -226,6 +227,7 @@ class MainWindow(QMainWindow):
             "preview": "Show the photo full size with its nearest photos (or double-click it)",
             "relearn": "Relearn from the decisions so far, then propose again",
             "mistakes": "Labelled photos whose label is most likely wrong, one at a time: confirm or fix each",
+            "stats": "Photos per label, labels per hour, suggestions accepted as they were, per annotator",
         }
         actions = {}
         for key, text, keys, section, slot in spec:
@@ -243,7 +245,7 @@ class MainWindow(QMainWindow):
         bar = self.menuBar()
         for title, keys in (("&Folder", ("open", "export", "relearn", "close", "quit")),
                             ("&Group", ("accept", "toggle", "split", "later", "aside", "undo")),
-                            ("&View", ("preview", "review", "mistakes", "help"))):
+                            ("&View", ("preview", "review", "mistakes", "stats", "help"))):
             menu = bar.addMenu(title)
             for k in keys:
                 menu.addAction(self.actions[k])
@@ -271,6 +273,7 @@ class MainWindow(QMainWindow):
         self.actions["export"].setEnabled(idle and page in (self.work, self.review_page))
         self.actions["relearn"].setEnabled(idle and page is self.work)
         self.actions["close"].setEnabled(self.project is not None)
+        self.actions["stats"].setEnabled(idle)
         self.actions["open"].setEnabled(self.job is None)
 
     def idle(self) -> bool:
@@ -929,6 +932,16 @@ class MainWindow(QMainWindow):
         project, seconds = self.project, self.relearn_seconds
         self._run("relearning", lambda progress, cancel: project.relearn(progress=progress, seconds=seconds,
                                                                         cancel=cancel), page.busy, done)
+
+    # --- cli: statistics (app/stats_dialog.py) ---
+    def open_statistics(self) -> None:
+        if self.project is None or self._busy():
+            return
+        from app.stats_dialog import StatsDialog
+        dlg = StatsDialog(self.project.statistics(), self)
+        dlg.setStyleSheet(theme.STYLE)
+        self.last_stats = dlg
+        dlg.open()
 
     def export(self) -> None:
         if self.project is None or self._busy():

@@ -149,6 +149,14 @@ def render(out: Path, source: Path) -> list[Path]:
             written.append(out / "8-mistakes.png")
             w.back_to_groups()
 
+        w.open_statistics()   # --- cli: 10-statistics ---
+        st = w.last_stats
+        st.resize(820, st.sizeHint().height())
+        _settle(app, 0.5)
+        _save(st, out / "10-statistics.png")
+        written.append(out / "10-statistics.png")
+        st.reject()
+
         w.export()
         exp = w.last_export
         exp.destination.setText("spare-parts-labels")

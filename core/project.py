@@ -55,6 +55,10 @@ class ProjectError(Exception):
     """A request Kinfold cannot carry out; the message says why, in one line."""
 
 
+class FolderInUse(ProjectError):
+    """The folder's project is open in another Kinfold window or command (its lock is held)."""
+
+
 @dataclass
 class ScanReport:
     photos: int                                   # photos ready to propose
@@ -110,7 +114,7 @@ class _Lock:
         except OSError:
             self.handle.close()
             self.handle = None
-            raise ProjectError(f"this folder is already open in another Kinfold window or command "
+            raise FolderInUse(f"this folder is already open in another Kinfold window or command "
                                f"(lock {self.path}); close it there first") from None
 
     def release(self) -> None:
@@ -817,6 +821,21 @@ class Project:
                 changes[fp] = self._new_row(fp, "labelled", label or lr.label, mistakes.CONFIRMED)
             return self.store.record_decision("confirm", self.annotator, [self._rows[i].path for i in idx],
                                               changes, label=label)
+
+    # --- cli: statistics and the set-aside list (core/statistics.py) ---
+    @_serialised
+    def statistics(self) -> "statistics.Statistics":
+        """Photos per label, labels per hour, suggestions accepted as they were, per annotator."""
+        from core import statistics
+        st = self.status()
+        return statistics.from_store(self.store, st.by_label, st.photos)
+
+    @_serialised
+    def set_aside_photos(self) -> list[str]:
+        """The photos set aside (belonging to no class), in catalogue order."""
+        labels = self.store.labels()
+        return [r.path for r in self._rows
+                if r.fingerprint in labels and labels[r.fingerprint].state == "set_aside"]
 
     # --- dask: embedding a scan on a Dask cluster (core/cluster_scan.py) ---
     @staticmethod
