@@ -188,9 +188,11 @@ def connect(target, cancel: Cancel | None = None) -> Iterator:
     try:
         if isinstance(target, int):
             try:
-                cluster = distributed.LocalCluster(
-                    n_workers=target, threads_per_worker=1, processes=True, host="127.0.0.1",
-                    dashboard_address=None, silence_logs=logging.ERROR)
+                with warnings.catch_warnings():  # "port 8787 is in use": its HTTP routes take another port
+                    warnings.filterwarnings("ignore", message="Port .* is already in use")
+                    cluster = distributed.LocalCluster(
+                        n_workers=target, threads_per_worker=1, processes=True, host="127.0.0.1",
+                        dashboard_address=None, silence_logs=logging.ERROR)
                 client = distributed.Client(cluster, timeout=CONNECT_SECONDS)
             except Exception as exc:
                 raise ClusterError(f"could not start {target} local worker processes: "
