@@ -451,6 +451,44 @@ def _version() -> str:
             return "unknown"
 
 
+def cmd_import(args):
+    bar = _Bar(not args.json)
+    with _InterruptToCancel() as interrupt, _open(args) as p:
+        rep = p.import_labels(csv=args.csv, coco=args.coco, folders=args.folders, subfolders=args.subfolders,
+                              path_column=args.path_column, label_column=args.label_column,
+                              replace=args.replace, dry_run=args.dry_run, progress=bar,
+                              cancel=interrupt.asked.is_set)
+    if args.json:
+        _print(rep, True)
+    else:
+        print("\n".join(rep.lines()))
+    if rep.cancelled:
+        print("kinfold: import interrupted; nothing was imported", file=sys.stderr)
+        return 130
+
+
+def cmd_rename(args):
+    from core.label_rename import NameQuestion
+
+    with _open(args) as p:
+        try:
+            done = p.rename_label(args.old, args.new, confirm=args.yes)
+        except NameQuestion as q:
+            print(f"kinfold: {_one_line(q)}; to merge: kinfold rename FOLDER {_quoted(args.old)} "
+                  f"{_quoted(q.near[0])}; to keep the new name: add --yes", file=sys.stderr)
+            return 1
+    if args.json:
+        _print(done, True)
+    else:
+        verb = "merged into" if done.merged else "renamed to"
+        print(f"{done.old!r} {verb} {done.new!r}: {done.photos} photos (undo reverses it)")
+
+
+def _quoted(text: str) -> str:
+    import shlex
+    return shlex.quote(text)
+
+
 def cmd_open(args):
     # The engine never imports the window: the window replaces this process (same pid, so whoever
     # started `kinfold open` can still stop it), and Qt loads only there.
@@ -611,6 +649,26 @@ def build_parser() -> argparse.ArgumentParser:
                                  "per annotator")
     s.add_argument("--csv", metavar="FILE", help="also write the figures to FILE as a CSV table")
     s.add_argument("--overwrite", action="store_true", help="replace FILE if it exists")
+    # --- import: import, rename ---
+    s = verb("import", cmd_import, "bring in labels the photos already have (one undoable decision)")
+    s.add_argument("--csv", metavar="FILE", help="a CSV file with a header row: a path and a label column")
+    s.add_argument("--path-column", metavar="NAME", help="the CSV column holding the photo paths (relative to "
+                                                          "FOLDER, or absolute inside it); default: path, file, ...")
+    s.add_argument("--label-column", metavar="NAME", help="the CSV column holding the labels; default: label, "
+                                                           "class, category, ...")
+    s.add_argument("--coco", metavar="FILE", help="a COCO JSON file: each image takes its annotations' category")
+    s.add_argument("--folders", metavar="DIR", help="a class-folder tree: each subfolder of DIR is a label; files "
+                                                    "match photos by content, wherever they lie")
+    s.add_argument("--subfolders", action="store_true", help="each photo takes the name of the subfolder of "
+                                                             "FOLDER it lies in")
+    s.add_argument("--replace", action="store_true", help="give photos that carry another label the incoming one "
+                                                          "(default: keep theirs and list the conflict)")
+    s.add_argument("--dry-run", action="store_true", help="report what would happen, change nothing")
+    s = verb("rename", cmd_rename, "rename a label; onto an existing label, merge the two (undoable)")
+    s.add_argument("old", help="the label as it is now")
+    s.add_argument("new", help="the new name (an existing label: merge)")
+    s.add_argument("--yes", action="store_true", help="keep the new name even when it is close to an existing "
+                                                      "label (case, spacing or a prefix)")
     s = sub.add_parser("open", help="open the desktop window", description="open the desktop window")
     s.add_argument("folder", nargs="?", help="the photo folder to open (default: choose in the window)")
     s.set_defaults(func=cmd_open)
@@ -677,6 +735,14 @@ def main(argv=None) -> int:
     if args.func is cmd_export:
         if not (args.csv or args.coco or args.folders):
             args.parser.error("say what to export: --csv FILE, --coco FILE and/or --folders DIR")
+    if args.func is cmd_import:
+        given = [o for o, v in (("--csv", args.csv), ("--coco", args.coco), ("--folders", args.folders),
+                                ("--subfolders", args.subfolders)) if v]
+        if len(given) != 1:
+            args.parser.error("say where the labels come from, one of --csv FILE, --coco FILE, --folders DIR, "
+                              "--subfolders" + (f" (given: {' '.join(given)})" if given else ""))
+        if (args.path_column or args.label_column) and not args.csv:
+            args.parser.error("--path-column and --label-column choose columns of --csv FILE")
     try:
         rc = args.func(args)
         sys.stdout.flush()  # a closed pipe shows here, inside the handler
