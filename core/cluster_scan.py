@@ -140,9 +140,13 @@ def embed_chunk(items: Sequence, name: str, precision: str, expected_id: str,
     opens, or the photos' bytes. Returns plain data: indices embedded, their vectors, failures."""
     t0 = time.perf_counter()
     threads = _threads_for_this_host(threads_by_host)
-    extractor = _worker_extractor(name, precision, threads)
+    try:
+        extractor = _worker_extractor(name, precision, threads)
+    except (ValueError, OSError, ImportError) as exc:  # unknown name, weights missing, Kinfold not installed
+        return dict(refused=f"a Dask worker cannot build the extractor {name!r}: {_one_line(exc)}")
     if extractor.id != expected_id:
-        return dict(mismatch=f"the worker's extractor is {extractor.id}, this scan's is {expected_id}")
+        return dict(refused=f"a Dask worker's extractor is {extractor.id}, this scan's is {expected_id}; "
+                            f"install the same Kinfold and weights on every worker")
     from core.embedding import embed_files
 
     sources = [io.BytesIO(x) if isinstance(x, (bytes, bytearray, memoryview)) else Path(x) for x in items]
@@ -401,8 +405,8 @@ def _embed_with(client, folder, rows, extractor, store, progress, cancel, chunk,
                 k = in_flight.pop(fut)
                 if fut.status == "finished":
                     out = fut.result()
-                    if "mismatch" in out:
-                        raise ClusterError(out["mismatch"])
+                    if "refused" in out:
+                        raise ClusterError(out["refused"])
                     rows_k = chunks[k]
                     bad_here = {pos: (reason, again) for pos, reason, again in unread.pop(k, [])}
                     fps = [rows_k[i].fingerprint for i in out["ok"] if i not in bad_here]
@@ -435,6 +439,8 @@ def _embed_with(client, folder, rows, extractor, store, progress, cancel, chunk,
     except ClusterLost:
         run.lost = (f"lost the Dask scheduler at {_address(client)} after {run.embedded} of {total} photos; "
                     f"those are stored, run the scan again to carry on")
+    except ClusterError as exc:  # a worker refused the work (cannot build the same extractor)
+        run.lost = f"{exc}; {run.embedded} of {total} photos embedded and stored"
     except OSError as exc:
         run.lost = (f"the Dask scheduler at {_address(client)} stopped answering ({_one_line(exc)}) after "
                     f"{run.embedded} of {total} photos; those are stored, run the scan again to carry on")

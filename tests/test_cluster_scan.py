@@ -219,3 +219,8 @@ def test_the_window_scans_where_the_start_page_says(scanned_template, tmp_path, 
     qtbot.addWidget(again)
     assert again.start.scan_on.text() == client.scheduler.address
     _assert_same(folder, scanned_template)
+
+
+def test_a_worker_that_cannot_build_the_extractor_refuses_in_one_line():
+    out = cluster_scan.embed_chunk([b"x"], "no-such-model", "fp32", "no-such-model:x:fp32")
+    assert out.keys() == {"refused"} and "no-such-model" in out["refused"] and "\n" not in out["refused"]
