@@ -854,6 +854,79 @@ class Project:
         name close to an existing label raises `label_rename.NameQuestion` unless `confirm`."""
         from core import label_rename
         return label_rename.rename_label(self, old, new, confirm=confirm)
+    # --- browse: every photo by state/label/subfolder/name, neighbours with labels, redo ---------
+    # (core/browse.py, core/redo.py hold the work; these only delegate)
+    @_serialised
+    def browse(self, state: str | None = None, label: str | None = None, subfolder: str | None = None,
+               name: str | None = None, offset: int = 0, limit: int | None = None):
+        """Photos matching the filters, by path, a page at a time: `core.browse.Browsed` (total, photos
+        as (path, state, label)). `state`: None, "unlabelled", "aside" or "labelled"."""
+        from core import browse as browsing
+        try:
+            return browsing.browse(self.store, self.extractor_id, state=state, label=label, subfolder=subfolder,
+                                   name=name, offset=offset, limit=limit)
+        except browsing.BrowseError as exc:
+            raise ProjectError(str(exc)) from None
+
+    @_serialised
+    def subfolders(self) -> list[tuple[str, int]]:
+        """Folders holding photos directly, with how many ("" is the top level)."""
+        from core import browse as browsing
+        return browsing.subfolders(self.store, self.extractor_id)
+
+    @_serialised
+    def neighbours_labelled(self, path: str, k: int = 8) -> list[tuple[str, float, str, str | None]]:
+        """`neighbours` with each photo's state and label: [(path, similarity, state, label)]."""
+        from core import browse as browsing
+        near = self.neighbours(path, k)
+        fps = [self._rows[self._index[p]].fingerprint for p, _ in near]
+        known = browsing.states_of(self.store, fps)
+        return [(p, s, *known[fp]) for (p, s), fp in zip(near, fps)]
+
+    @_serialised
+    def redo(self) -> dict:
+        """Apply again the decision the last undo reversed; only right after an undo (or a redo): any
+        other decision ends the redo history. A new logged decision of the same kind (undoable again).
+        Returns {decision, kind, photos}; ProjectError when there is nothing to redo."""
+        from core import redo as redoing
+        with self.store.transaction():
+            u = redoing.pending_undo(self.store)
+            if u is None:
+                raise ProjectError("nothing to redo: redo only follows an undo, and a decision made since "
+                                   "the undo ends what can be redone")
+            d = redoing.original(self.store, u["undoes"])
+            kind, gid = d["kind"], d["group_id"]
+            if kind == "split":
+                parts = self.split(gid)          # the cut is deterministic: the same parts come back
+                with self.store.transaction() as db:   # the split just logged names the undo it reverses
+                    dec = db.execute("SELECT MAX(id) FROM decisions").fetchone()[0]
+                    db.execute("UPDATE decisions SET undoes = ? WHERE id = ?", (u["id"], dec))
+                return {"decision": dec, "kind": kind, "photos": sum(len(p.members) for p in parts)}
+            if kind == "later":
+                members = [m for m in d["photos"] if m in self._index]
+                previous = self.store.defer(self._rows[self._index[m]].fingerprint for m in members)
+                dec = self.store.record_decision("later", self.annotator, members, {}, group_id=gid,
+                                                 close_proposals=[gid] if gid is not None else [],
+                                                 before=previous, undoes=u["id"])
+                return {"decision": dec, "kind": kind, "photos": len(members)}
+            # The undo found each photo as the undone decision left it: that is what comes back.
+            changes = {fp: (LabelRow(fp, *row) if row else None) for fp, row in u["before"].items()}
+            rejected = []
+            if kind == "accept" and gid is not None and self.store.proposal(gid) is not None:
+                # Members neither labelled by the accept nor carrying a label: the ones taken out.
+                labels, kept = self.store.labels(), set(d["photos"])
+                rejected = [self._rows[self._index[m]].fingerprint for m in self.store.proposal(gid).members
+                            if m in self._index and m not in kept
+                            and self._rows[self._index[m]].fingerprint not in labels]
+            elif kind == "rename":
+                # A rename carried the old name's "not this label" marks over to the new name.
+                old = next((row[1] for row in d["before"].values() if row), None)
+                rejected = [fp for fp, names in self.store.rejections().items() if old in names]
+            dec = self.store.record_decision(kind, self.annotator, d["photos"], changes, label=d["label"],
+                                             group_id=gid,
+                                             close_proposals=[gid] if kind == "accept" and gid is not None else [],
+                                             rejected=rejected, undoes=u["id"])
+            return {"decision": dec, "kind": kind, "photos": len(changes)}
 
     # --- dask: embedding a scan on a Dask cluster (core/cluster_scan.py) ---
     @staticmethod
