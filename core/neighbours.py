@@ -138,31 +138,26 @@ def mutual_mask(idx: np.ndarray, k: int) -> np.ndarray:
 
 
 def bursts(sims: np.ndarray, idx: np.ndarray, threshold: float) -> np.ndarray:
-    """Near-duplicate bursts: connected components of neighbour pairs with similarity >= threshold.
-    Returns a burst id per photo (-1 for photos without a near-duplicate)."""
+    """Near-duplicate bursts: connected components (scipy.sparse.csgraph) of neighbour pairs with
+    similarity >= threshold. Returns a burst id per photo (-1 for photos without a near-duplicate);
+    bursts are numbered in the order of their lowest photo index."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
     n = len(idx)
-    parent = np.arange(n)
-
-    def find(a):
-        while parent[a] != a:
-            parent[a] = parent[parent[a]]
-            a = parent[a]
-        return a
-
-    rows, cols = np.nonzero((sims >= threshold) & (idx >= 0))
-    for i, j in zip(rows, idx[rows, cols]):
-        ri, rj = find(i), find(int(j))
-        if ri != rj:
-            parent[max(ri, rj)] = min(ri, rj)
-    roots = np.array([find(i) for i in range(n)])
     out = np.full(n, -1, np.int64)
-    uniq, counts = np.unique(roots, return_counts=True)
-    multi = uniq[counts > 1]
-    out_ids = {r: b for b, r in enumerate(multi)}
-    for i, r in enumerate(roots):
-        if r in out_ids:
-            out[i] = out_ids[r]
-    return out
+    rows, cols = np.nonzero((sims >= threshold) & (idx >= 0))
+    if n == 0 or len(rows) == 0:
+        return out
+    pairs = coo_matrix((np.ones(len(rows), np.int8), (rows, idx[rows, cols].astype(np.int64))), shape=(n, n))
+    _, comp = connected_components(pairs, directed=False)
+    sizes = np.bincount(comp)
+    lowest = np.full(len(sizes), n, np.int64)
+    np.minimum.at(lowest, comp, np.arange(n))
+    multi = np.nonzero(sizes > 1)[0]
+    burst_of = np.full(len(sizes), -1, np.int64)
+    burst_of[multi[np.argsort(lowest[multi], kind="stable")]] = np.arange(len(multi))
+    return burst_of[comp]
 
 
 @dataclass
