@@ -156,6 +156,15 @@ class StartPage(QWidget):
         self.recent.setMaximumWidth(640)
         self.error = _label(name="problem", wrap=True)
         self.error.hide()
+        # Where a scan embeds the photos (setting "scan_on"): empty is this process; a number of local
+        # worker processes or a Dask scheduler's tcp://host:port (core/cluster_scan.py).
+        self.scan_on = QLineEdit()
+        self.scan_on.setObjectName("scan_on")
+        self.scan_on.setPlaceholderText("this computer  (or a number of worker processes, or tcp://host:port)")
+        self.scan_on.setMaximumWidth(640)
+        self.scan_on.setToolTip("Where a scan embeds the photos: leave empty for this process, give a number of "
+                                "worker processes on this computer, or the address of a Dask scheduler whose "
+                                "workers see the same folder")
         col = QVBoxLayout()
         col.addStretch(1)
         col.addWidget(_label("Kinfold", "title"))
@@ -163,6 +172,9 @@ class StartPage(QWidget):
         col.addSpacing(18)
         col.addWidget(self.choose, 0, Qt.AlignmentFlag.AlignLeft)
         col.addWidget(self.error)
+        col.addSpacing(18)
+        col.addWidget(_label("Embed photos on", "heading"))
+        col.addWidget(self.scan_on)
         col.addSpacing(18)
         col.addWidget(_label("Recently opened", "heading"))
         col.addWidget(self.recent)

@@ -192,12 +192,18 @@ class Project:
             self._extractor = get_extractor(self.extractor_name)
         return self._extractor
 
-    def scan(self, progress: Progress | None = None, cancel: Cancel | None = None) -> ScanReport:
+    def scan(self, progress: Progress | None = None, cancel: Cancel | None = None, cluster=None,
+             **cluster_options) -> ScanReport:
         """Find new and changed photos and embed those not embedded yet (core/scanning.py). Safe to
         cancel: what was embedded is kept, and the next scan goes on from there. A file that is not a
         readable photo is remembered as skipped; a failure that may pass (I/O, memory, the network) is
-        reported in `skipped` for this scan only and tried again by the next one."""
-        return scanning.scan(self, progress, cancel)
+        reported in `skipped` for this scan only and tried again by the next one.
+
+        `cluster`: embed on Dask instead of in this process: a number of local worker processes, a
+        scheduler address "tcp://host:port" or an open distributed.Client (core/cluster_scan.py;
+        `cluster_options` go to its `embed_rows`: chunk, transfer, threads). A scheduler lost mid-scan
+        raises ProjectError once the catalogue and everything embedded are stored."""
+        return scanning.scan(self, progress, cancel, cluster=cluster, **cluster_options)
 
     # -- geometry ----------------------------------------------------------------------------
     def _geometry_version(self) -> int | None:
@@ -631,6 +637,31 @@ class Project:
         figs = cal.calibrate(self.graph(), items)
         return [dataclasses.replace(g, trust=round(t, 4), confidence=None if c is None else round(c, 4))
                 for g, (t, c) in zip(groups, figs)]
+
+    # --- dask: embedding a scan on a Dask cluster (core/cluster_scan.py) ---
+    @staticmethod
+    def _cluster_target(cluster):
+        from core import cluster_scan
+
+        try:
+            return cluster_scan.parse_target(cluster)
+        except ValueError as exc:
+            raise ProjectError(str(exc)) from None
+
+    def _embed_on_cluster(self, cluster, rows, extractor, progress, cancel, failed, retry, paths_of, options):
+        """Embed `rows` on the cluster, storing each chunk; fills `failed` / `retry` as the in-process
+        loop does. Returns (embedded, cancelled, one-line reason the cluster was lost or None)."""
+        from core import cluster_scan
+
+        try:
+            run = cluster_scan.embed_rows(self.folder, rows, extractor, self.store, cluster, progress=progress,
+                                          cancel=cancel, extractor_name=self.extractor_name, **options)
+        except cluster_scan.ClusterError as exc:  # before any work was sent: nothing embedded
+            return 0, True, str(exc)
+        failed.update(run.failed)
+        for fp, reason in run.retry.items():
+            retry.update((path, reason) for path in paths_of[fp])
+        return run.embedded, run.cancelled or run.lost is not None, run.lost
 
 
 def _check_extractor(obj) -> None:
