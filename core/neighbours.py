@@ -200,9 +200,9 @@ def exact_rows(src: Source, queries: np.ndarray, k: int, temperature: float = 0.
         scale = np.exp(m - new_m)
         e = np.exp(zt - new_m[:, None])
         zsum = zsum * scale + e.sum(1)
-        ssum = ssum * scale + np.where(e > 0, e * zt, 0.0).sum(1)
+        ssum = ssum * scale + (e * np.where(np.isfinite(zt), zt, 0.0)).sum(1)
         m = new_m
-    ent = np.log(zsum) - ssum / zsum
+    ent = np.log(zsum) + m - ssum / zsum
     return best_s, best_i, ent.astype(np.float32)
 
 

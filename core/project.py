@@ -47,8 +47,8 @@ _UNDOABLE = ("accept", "label", "set_aside", "clear", "split", "later", "confirm
 PROPOSAL_BATCH = 3
 # What the neighbour graph is built with; all of it is part of the graph cache's key.
 _GRAPH_SETTINGS = dict(k=64, temperature=0.1, burst_threshold=0.97, centre=True)
-_GRAPH_FORMAT = 2
-_GRAPH_FIELDS = ("x", "sims", "idx", "entropy", "mutual", "burst")
+_GRAPH_FORMAT = 3          # 3: no features inside (the graph is handed them), their mean kept
+_GRAPH_FIELDS = ("sims", "idx", "entropy", "mutual", "burst")
 
 
 class ProjectError(Exception):
@@ -152,6 +152,7 @@ class Project:
         self._mutex = threading.RLock()
         self._extractor = None
         self._graph: neighbours.Graph | None = None
+        self._open_vectors()
         self._load_catalogue()
 
     # -- opening -----------------------------------------------------------------------------
@@ -219,8 +220,7 @@ class Project:
         embedded = self.store.embedded_fingerprints(ext) if ext else set()
         self._rows: list[PhotoRow] = [r for r in rows if r.fingerprint in embedded]
         self._index = {r.path: i for i, r in enumerate(self._rows)}
-        self._features = (self.store.embeddings(ext, [r.fingerprint for r in self._rows])
-                          if self._rows else np.zeros((0, 0), np.float32))
+        self._features_map = None            # read when first needed (`_features`)
         self._graph = None
         self._graph_version = None
         self._classifier_cache: tuple = (None, None)
@@ -289,6 +289,7 @@ class Project:
             self.store.replace_catalogue(photos, skipped)
             self.store.set_setting("skipped_format", _SKIPPED_FORMAT)
             self._load_catalogue()
+            self._compact_vectors()
         shown = [(p, v[2]) for p, v in skipped.items()]
         shown += [(p, f"{reason} (tried again at the next scan)") for p, reason in retry.items()]
         ready = {r.path for r in photos}  # new and changed count photos, not files later left out
@@ -342,35 +343,44 @@ class Project:
             self._graph_version = version
         return self._graph
 
-    def _load_or_build_graph(self) -> neighbours.Graph:
+    def _load_or_build_graph(self, progress: Progress | None = None, cancel: Cancel | None = None) -> neighbours.Graph:
         """The neighbour graph, from the cache in the store folder when it was built from exactly these
-        features with exactly these settings; a cache that fails to load for any reason is rebuilt."""
+        features with exactly these settings; a cache that fails to load for any reason is rebuilt.
+        The graph holds no copy of the features: it is handed them (`Graph.rows`)."""
         feats = self.features()
         key = hashlib.sha1(json.dumps(dict(
             format=_GRAPH_FORMAT, settings=_GRAPH_SETTINGS, extractor=self.extractor_id, shape=feats.shape,
-            limits=[neighbours.EXACT_KNN_LIMIT, neighbours.EXACT_ENTROPY_LIMIT, neighbours.BURST_NEIGHBOURS]),
-            sort_keys=True).encode())
+            neighbours=neighbours.settings_key()), sort_keys=True).encode())
         for r in self._rows:
             key.update(r.fingerprint.encode())
         # The features themselves: the extractor's output, the photos and their order, and the
-        # relearned version's head when it adapts the embedding.
-        key.update(np.ascontiguousarray(feats, np.float32).tobytes())
+        # relearned version's head when it adapts the embedding. The backbone's features are named by
+        # their vectors file (its token changes with every rewrite, rows are only ever appended), so
+        # they are not read to make the key; other features are hashed.
+        entry = self.store.vectors.file_entry(self.extractor_id) if self.extractor_id else None
+        if feats is self._features and entry is not None:
+            key.update(json.dumps(["vectors", *entry]).encode())
+        else:
+            key.update(np.ascontiguousarray(feats, np.float32).tobytes())
         cache = self.store.directory / f"graph-{key.hexdigest()[:16]}.npz"
+        centre = _GRAPH_SETTINGS.get("centre", True)
         if cache.exists():
             try:
                 with np.load(cache, allow_pickle=False) as z:
                     g = neighbours.Graph(**{k: z[k] for k in _GRAPH_FIELDS})
+                    mean = z["mean"] if centre else None
                 _check_graph(g, len(self._rows))
-                return g
+                return g.attach(neighbours.Source(feats, centre=centre, mean=mean))
             except Exception:  # truncated (BadZipFile, EOFError), pickled, garbage, wrong shapes...
                 try:
                     cache.unlink(missing_ok=True)
                 except OSError:
                     pass  # a read-only store keeps its damaged cache; the graph is rebuilt in memory
-        g = neighbours.build_graph(feats, **_GRAPH_SETTINGS)
+        g = neighbours.build_graph(feats, **_GRAPH_SETTINGS, progress=progress, cancel=cancel)
         tmp = cache.with_name(f"graph-{os.getpid()}-{threading.get_ident()}.tmp.npz")
         try:
-            np.savez(tmp, **{k: getattr(g, k) for k in _GRAPH_FIELDS})
+            mean = g.source.mean if g.source.mean is not None else np.zeros(0, np.float32)
+            np.savez(tmp, mean=mean, **{k: getattr(g, k) for k in _GRAPH_FIELDS})
             os.replace(tmp, cache)
             for old in self.store.directory.glob("graph-*.npz"):
                 if old != cache:
@@ -598,7 +608,7 @@ class Project:
             raise ProjectError(f"group {group_id} has {len(members)} photos; splitting needs at least "
                                f"{proposals.MIN_SPLIT} (take the odd ones out instead)")
         g = self.graph()
-        part = proposals.split_members(g.x[[self._index[m] for m in members]])
+        part = proposals.split_members(g.rows([self._index[m] for m in members]))
         parts = [[m for m, p in zip(members, part) if p == k] for k in (0, 1)]
         # The part holding the anchor keeps its place first.
         if members[0] in parts[1]:
@@ -701,7 +711,7 @@ class Project:
         if label not in names:
             raise ProjectError(f"no photo carries the label {label!r}")
         members = np.nonzero((state == proposals.LABELLED) & (label_of == names.index(label)))[0]
-        x = self.graph().x[members]
+        x = self.graph().rows(members)
         total = x.sum(0)
         others = total[None, :] - x
         norms = np.maximum(np.linalg.norm(others, axis=1), 1e-12)
@@ -805,6 +815,43 @@ class Project:
                                               changes, label=label)
 
 
+    # --- scale: embeddings in a memory-mapped file (core/vectors.py), read only when needed ---
+    def _open_vectors(self) -> None:
+        """Move embeddings of a store from before schema 3 into files; delete files a crash left."""
+        if not self.store.read_only:
+            self.store.vectors.upgrade()
+            self.store.vectors.remove_stale_files()
+
+    def _compact_vectors(self) -> None:
+        """After a scan: keep only the current extractor's rows of the catalogued photos, in catalogue
+        order, so `_features` is the file's memory map itself (no copy)."""
+        if not self.store.read_only and self.store.vectors.compact(self.extractor_id,
+                                                                    [r.fingerprint for r in self._rows]):
+            self._features_map = None
+            self._graph = None
+
+    @property
+    def _features(self) -> np.ndarray:
+        """The backbone's embeddings of the catalogued photos (a read-only memory map when stored in
+        catalogue order); read at the first call, not at opening."""
+        if self._features_map is None:
+            with self._mutex:
+                if self._features_map is None:
+                    self._features_map = (self.store.embeddings(self.extractor_id, [r.fingerprint for r in self._rows])
+                                          if self._rows else np.zeros((0, 0), np.float32))
+        return self._features_map
+
+    @_serialised
+    def prepare_graph(self, progress: Progress | None = None, cancel: Cancel | None = None) -> neighbours.Graph:
+        """Load or build the neighbour graph now, with progress; `cancel()` returning True stops a
+        build with `neighbours.Cancelled` (nothing kept)."""
+        version = self.store.active_relearn_version()
+        if self._graph is None or self._graph_version != version:
+            self._graph = self._load_or_build_graph(progress, cancel)
+            self._graph_version = version
+        return self._graph
+
+
 class _RelearnView:
     """What relearning reads from a project, taken under its lock, so the long fit runs without it
     while decisions go on (they count from the next relearn)."""
@@ -846,7 +893,7 @@ def _ranked(groups: list[Proposal], every: int) -> list[Proposal]:
 def _check_graph(g: neighbours.Graph, n: int) -> None:
     """Raise ValueError unless `g` has the shapes and indices of a graph over n photos."""
     k = g.idx.shape[1] if g.idx.ndim == 2 else -1
-    ok = (g.x.ndim == 2 and len(g.x) == n and g.idx.shape == (n, k) and g.sims.shape == (n, k)
+    ok = (g.idx.ndim == 2 and g.idx.shape == (n, k) and g.sims.shape == (n, k)
           and g.mutual.shape == (n, k) and g.entropy.shape == (n,) and g.burst.shape == (n,)
           and (n == 0 or (g.idx.min() >= -1 and g.idx.max() < n)))
     if not ok:
