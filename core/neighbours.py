@@ -92,6 +92,30 @@ class Source:
                 total += np.asarray(features[start:start + 8192], np.float64).sum(0)
             self.mean = (total / max(self.n, 1)).astype(np.float32)
 
+    _norms: np.ndarray | None = None
+
+    @property
+    def norms(self) -> np.ndarray:
+        """|f - mean| of every row (one pass over the features, at the first call)."""
+        if self._norms is None:
+            out = np.empty(self.n, np.float32)
+            for start in range(0, self.n, 16384):
+                x = self.raw(slice(start, start + 16384))
+                if self.mean is not None:
+                    x = x - self.mean            # never in place: raw() may be a view of the caller's array
+                out[start:start + 16384] = np.sqrt(np.einsum("ij,ij->i", x, x))
+            self._norms = np.maximum(out, 1e-12)
+        return self._norms
+
+    def scores(self, q: np.ndarray, ids) -> np.ndarray:
+        """Prepared similarities of prepared rows q to the photos ids, from their raw rows (one gather,
+        no preparing): q.(f - mean)/|f - mean| = (q.f - q.mean) / |f - mean|."""
+        z = q @ self.raw(ids).T
+        if self.mean is not None:
+            z -= (q @ self.mean)[:, None]
+        z /= self.norms[ids][None, :]
+        return z
+
     def raw(self, ids) -> np.ndarray:
         return np.asarray(self.features[ids], np.float32)
 
@@ -102,7 +126,7 @@ class Source:
         if self.mean is not None:
             x = x - self.mean
         norms = np.sqrt(np.einsum("ij,ij->i", x, x))[:, None]
-        x /= np.maximum(norms, 1e-12)
+        x = x / np.maximum(norms, 1e-12)             # a new array: raw() may be a view of the caller's
         return np.ascontiguousarray(x, np.float32)
 
     def raw_terms(self, ids) -> tuple[np.ndarray, np.ndarray]:
@@ -174,7 +198,7 @@ def _exact(src: Source, k: int, temperature: float, progress, cancel, want_entro
 
 
 def exact_rows(src: Source, queries: np.ndarray, k: int, temperature: float = 0.1,
-               chunk: int = 65536) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+               chunk: int = 16384) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Exact k nearest (self left out) and exact entropy of the photos `queries`, streaming the
     collection in chunks (no full copy): the reference the approximation is measured against."""
     queries = np.asarray(queries, np.int64)
@@ -293,7 +317,7 @@ def _approximate(src: Source, k: int, temperature: float, progress, cancel, *, p
         near = near[np.argsort(-row[near])]
         cand = np.concatenate([lists.members(j) for j in near])
         q = src.rows(q_ids)
-        z = q @ src.rows(cand).T                          # own list first: self at (r, r)
+        z = src.scores(q, cand)                           # own list first: self at (r, r)
         z[np.arange(len(q_ids)), np.arange(len(q_ids))] = -np.inf
         s, pos = _top_k(z, k)
         sims[q_ids] = s
@@ -319,7 +343,7 @@ def _approximate(src: Source, k: int, temperature: float, progress, cancel, *, p
                 wdraw = sizes[lists_drawn] / (tail_sample * prob[draws])
                 uniq, inv = np.unique(members, return_inverse=True)
                 wt = np.bincount(inv, weights=wdraw, minlength=len(uniq))
-                zs = (q @ src.rows(uniq).T) / temperature
+                zs = src.scores(q, uniq) / temperature
                 ts, tss = _entropy_parts(zs, m, wt)
                 zsum, ssum = zsum + ts, ssum + tss
             ent[q_ids] = _entropy_from_parts(zsum, ssum)

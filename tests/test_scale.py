@@ -163,3 +163,12 @@ def test_graph_build_reports_progress_and_cancels(fashion_pixels):
     with pytest.raises(neighbours.Cancelled):               # the exact path too
         neighbours.build_graph(x[:3000], k=10, progress=lambda d, t, m: seen.append(d), cancel=lambda: bool(seen))
     assert seen == [1024]
+
+
+def test_features_handed_over_are_left_unchanged(fashion_pixels):
+    x, _ = fashion_pixels
+    x = x[:3000].copy()
+    before = x.copy()
+    for centre in (True, False):
+        neighbours.build_graph(x, k=5, exact_limit=500, centre=centre)
+    np.testing.assert_array_equal(x, before)
