@@ -295,7 +295,7 @@ def make_lists(src: Source, n_lists: int | None = None, *, cancel: Cancel | None
 def _approximate(src: Source, k: int, temperature: float, progress, cancel, *, probes: int = PROBES,
                  tail_sample: int = TAIL_SAMPLE, want_entropy: bool = True, lists: Lists | None = None):
     n = src.n
-    lists = lists or make_lists(src, cancel=cancel)
+    lists = lists or make_lists(src, cancel=cancel, progress=progress)
     L = len(lists.starts) - 1
     sizes = lists.sizes
     between = lists.means @ lists.means.T                 # (L, L) approx. mean similarity
