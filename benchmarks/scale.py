@@ -147,8 +147,9 @@ def main(argv=None) -> int:
     # Written by a child process, so this one's peak memory is the engine's alone.
     import subprocess
 
-    subprocess.run([sys.executable, "-m", "benchmarks.scale", "--n", str(n), "--write-only"]
-                   + (["--synthetic"] if args.synthetic else []), check=True)
+    if not (path.exists() and path.with_suffix(".classes.npy").exists()):   # made once, then reused
+        subprocess.run([sys.executable, "-m", "benchmarks.scale", "--n", str(n), "--write-only"]
+                       + (["--synthetic"] if args.synthetic else []), check=True)
     feats, classes = np.load(path, mmap_mode="r"), np.load(path.with_suffix(".classes.npy"))
     print(f"collection: {n:,} x {DIM} ({min(n, 70_000) if use_fashion else 0:,} Fashion-MNIST stand-in, "
           f"the rest synthetic) written in {time.perf_counter() - t0:.0f} s; peak {peak_gb():.2f} GB", flush=True)

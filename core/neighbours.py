@@ -27,6 +27,9 @@ reports progress after each block and stops with `Cancelled` when `cancel()` say
 from __future__ import annotations
 
 import math
+import os
+import threading
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Callable
 
@@ -34,6 +37,7 @@ import faiss
 import numpy as np
 from scipy import sparse
 from scipy.sparse.csgraph import connected_components
+from threadpoolctl import threadpool_limits
 
 EXACT_LIMIT = 20_000         # exact kNN and entropy up to here; approximate above
 EXACT_KNN_LIMIT = EXACT_LIMIT        # (names kept for callers of the earlier two limits)
@@ -44,10 +48,11 @@ PROBES = 24                  # lists scored exactly for each list's photos
 TAIL_SAMPLE = 4096           # importance-sampled photos per block for the entropy's tail
 UNIFORM_SHARE = 0.2          # share of the tail draws spread by list size alone (defensive mixture)
 PCA_TRAIN = 20_000           # rows the projection is fitted on
-KMEANS_TRAIN_PER_LIST = 40   # rows per list k-means is trained on
-KMEANS_ITER = 12
+KMEANS_TRAIN_PER_LIST = 24   # rows per list k-means is trained on
+KMEANS_ITER = 10
 SEED = 0
 _BLOCK = 1024
+WORKERS = max(1, min(2, os.cpu_count() or 1))   # threads scoring blocks (each one BLAS thread)
 BURST_NEIGHBOURS = 8
 # Everything above that changes a graph; a cache key must include it (see `settings_key`).
 APPROXIMATION = dict(exact_limit=EXACT_LIMIT, pca_dim=PCA_DIM, list_factor=LIST_FACTOR, probes=PROBES,
@@ -181,9 +186,8 @@ def _exact(src: Source, k: int, temperature: float, progress, cancel, want_entro
     sims = np.empty((n, k), np.float32)
     idx = np.empty((n, k), np.int64)
     ent = np.zeros(n, np.float64)
-    for start in range(0, n, _BLOCK):
-        if cancel is not None and cancel():
-            raise Cancelled()
+
+    def block(start: int) -> int:
         stop = min(start + _BLOCK, n)
         z = x[start:stop] @ x.T
         z[np.arange(stop - start), np.arange(start, stop)] = -np.inf
@@ -192,9 +196,26 @@ def _exact(src: Source, k: int, temperature: float, progress, cancel, want_entro
             zt = z / temperature
             m = zt.max(1)
             ent[start:stop] = _entropy_from_parts(*_entropy_parts(zt, np.where(np.isfinite(m), m, 0.0)))
-        if progress is not None:
-            progress(stop, n, "neighbours")
+        return stop - start
+
+    _run_blocks(block, range(0, n, _BLOCK), n, progress, cancel)
     return sims, idx, ent.astype(np.float32)
+
+
+def _run_blocks(block: Callable[[int], int], items, total: int, progress, cancel, message: str = "neighbours") -> None:
+    """Run block(item) for every item on WORKERS threads, each with one BLAS thread (on shared
+    cores, one BLAS team per worker spins far less than a multi-threaded BLAS: 6.5 times faster
+    measured with other jobs on the 2 cores); progress after each round, cancel checked before each."""
+    items = list(items)
+    done = 0
+    step = max(1, 4 * WORKERS)
+    with threadpool_limits(limits=1, user_api="blas"), ThreadPoolExecutor(WORKERS) as pool:
+        for start in range(0, len(items), step):
+            if cancel is not None and cancel():
+                raise Cancelled()
+            done += sum(pool.map(block, items[start:start + step]))
+            if progress is not None:
+                progress(done, total, message)
 
 
 def exact_rows(src: Source, queries: np.ndarray, k: int, temperature: float = 0.1,
@@ -266,24 +287,32 @@ def make_lists(src: Source, n_lists: int | None = None, *, cancel: Cancel | None
     pk = np.ascontiguousarray(src.rows(ksample) @ proj)
     if cancel is not None and cancel():
         raise Cancelled()
-    km = faiss.Kmeans(p, L, niter=KMEANS_ITER, seed=SEED, spherical=True, max_points_per_centroid=10 ** 9,
-                      min_points_per_centroid=1)
-    km.train(pk)
-    index = faiss.IndexFlatIP(p)
-    index.add(km.centroids)
+    threads = faiss.omp_get_max_threads()
+    faiss.omp_set_num_threads(1)                          # see _run_blocks: one thread per worker
+    try:
+        km = faiss.Kmeans(p, L, niter=KMEANS_ITER, seed=SEED, spherical=True, max_points_per_centroid=10 ** 9,
+                          min_points_per_centroid=1)
+        with threadpool_limits(limits=1, user_api="blas"):
+            km.train(pk)
+    finally:
+        faiss.omp_set_num_threads(threads)
+    centroids = np.ascontiguousarray(km.centroids.T)
     assign = np.empty(n, np.int64)
     means = np.zeros((L, p), np.float64)
-    for start in range(0, n, 16384):
-        if cancel is not None and cancel():
-            raise Cancelled()
-        stop = min(start + 16384, n)
+    lock = threading.Lock()
+
+    def block(start: int) -> int:
+        stop = min(start + 4096, n)
         pc = np.ascontiguousarray(src.rows(slice(start, stop)) @ proj)
-        _, a = index.search(pc, 1)
-        assign[start:stop] = a[:, 0]
-        ind = sparse.csr_matrix((np.ones(stop - start), (a[:, 0], np.arange(stop - start))), shape=(L, stop - start))
-        means += ind @ pc.astype(np.float64)
-        if progress is not None:
-            progress(stop, n, "dividing the collection")
+        a = np.argmax(pc @ centroids, axis=1)
+        assign[start:stop] = a
+        ind = sparse.csr_matrix((np.ones(stop - start), (a, np.arange(stop - start))), shape=(L, stop - start))
+        part = ind @ pc.astype(np.float64)
+        with lock:
+            means[:] += part
+        return stop - start
+
+    _run_blocks(block, range(0, n, 4096), n, progress, cancel, "dividing the collection")
     order = np.argsort(assign, kind="stable")
     starts = np.zeros(L + 1, np.int64)
     np.cumsum(np.bincount(assign, minlength=L), out=starts[1:])
@@ -299,18 +328,17 @@ def _approximate(src: Source, k: int, temperature: float, progress, cancel, *, p
     L = len(lists.starts) - 1
     sizes = lists.sizes
     between = lists.means @ lists.means.T                 # (L, L) approx. mean similarity
-    rng = np.random.default_rng(SEED + 1)
     sims = np.empty((n, k), np.float32)
     idx = np.empty((n, k), np.int64)
     ent = np.zeros(n, np.float64)
-    done = 0
     probes = min(probes, L)
-    for c in range(L):
+    src.norms                                             # computed once, before the workers share it
+
+    def block(c: int) -> int:
         q_ids = lists.members(c)
         if len(q_ids) == 0:
-            continue
-        if cancel is not None and cancel():
-            raise Cancelled()
+            return 0
+        rng = np.random.default_rng([SEED + 1, c])         # the same draws whatever the thread order
         row = between[c].copy()
         row[c] = np.inf                                   # the block's own list first
         near = np.argpartition(-row, probes - 1)[:probes] if probes < L else np.arange(L)
@@ -347,9 +375,9 @@ def _approximate(src: Source, k: int, temperature: float, progress, cancel, *, p
                 ts, tss = _entropy_parts(zs, m, wt)
                 zsum, ssum = zsum + ts, ssum + tss
             ent[q_ids] = _entropy_from_parts(zsum, ssum)
-        done += len(q_ids)
-        if progress is not None:
-            progress(done, n, "neighbours")
+        return len(q_ids)
+
+    _run_blocks(block, range(L), n, progress, cancel)
     return sims, idx, ent.astype(np.float32)
 
 

@@ -162,7 +162,7 @@ def test_graph_build_reports_progress_and_cancels(fashion_pixels):
     seen.clear()
     with pytest.raises(neighbours.Cancelled):               # the exact path too
         neighbours.build_graph(x[:3000], k=10, progress=lambda d, t, m: seen.append(d), cancel=lambda: bool(seen))
-    assert seen == [1024]
+    assert len(seen) == 1
 
 
 def test_features_handed_over_are_left_unchanged(fashion_pixels):
