@@ -19,8 +19,8 @@ import sys
 import threading
 import time
 
-from core.export import ExportError
-from core.project import STORE_DIR, Project, ProjectError
+from core.export import WHY_LINKS, ExportError, folder_export_mode
+from core.project import STORE_DIR, FolderInUse, Project, ProjectError
 from core.store import StoreError
 
 DEBUG_ENV = "KINFOLD_DEBUG"
@@ -73,7 +73,74 @@ def _print(obj, as_json: bool) -> None:
 
 
 def _open(args, lock: bool = True) -> Project:
-    return Project.open(args.folder, store=args.store, annotator=getattr(args, "annotator", None), lock=lock)
+    """Open the project; with `--wait SECONDS`, a folder another window or command holds is tried
+    again (twice a second) until it is free or the wait is over."""
+    wait = getattr(args, "wait", None)
+    deadline = time.monotonic() + (wait or 0)
+    while True:
+        try:
+            return Project.open(args.folder, store=args.store, annotator=getattr(args, "annotator", None),
+                                lock=lock)
+        except FolderInUse as exc:
+            left = deadline - time.monotonic()
+            if wait is None:
+                raise FolderInUse(f"{exc}, or add --wait SECONDS to wait for it") from None
+            if left <= 0:
+                raise FolderInUse(f"the folder was still open in another Kinfold window or command after "
+                                  f"waiting {wait:g} s; close it there, or wait longer") from None
+            time.sleep(min(0.5, left))
+
+
+def _table(rows, indent: str = "") -> list[str]:
+    """Rows of cells as aligned text: text left-aligned, numbers right-aligned, two spaces apart."""
+    rows = [[("" if c is None else c) for c in r] for r in rows]
+    if not rows:
+        return []
+    widths = [max(len(str(r[i])) for r in rows if i < len(r)) for i in range(max(map(len, rows)))]
+    out = []
+    for r in rows:
+        cells = [(f"{c!s:>{widths[i]}}" if _numeric(c) else f"{c!s:<{widths[i]}}") for i, c in enumerate(r)]
+        out.append((indent + "  ".join(cells)).rstrip())
+    return out
+
+
+def _numeric(cell) -> bool:
+    if isinstance(cell, bool):
+        return False
+    if isinstance(cell, (int, float)):
+        return True
+    try:
+        float(str(cell).rstrip("%"))
+        return True
+    except ValueError:
+        return False
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}" + ("" if n == 1 else "s")
+
+
+def _show_status(st) -> None:
+    rows = [("photos", st.photos), ("labelled", st.labelled), ("set aside", st.set_aside),
+            ("unlabelled", st.unlabelled), ("actions", st.actions), ("skipped files", st.skipped),
+            ("relearned", f"version {st.relearned_version}" if st.relearned_version else "no")]
+    print("\n".join(_table(rows)))
+    if st.by_label:
+        print()
+        print("\n".join(_table([("label", "photos")] + list(st.by_label.items()))))
+
+
+def _show_figures(figures: dict, indent: str = "") -> None:
+    """A dict of figures (relearn's, say) as aligned `name  value` lines; nested dicts indented."""
+    flat = []
+    for key, value in figures.items():
+        if isinstance(value, dict):
+            flat.append((str(key).replace("_", " "), ""))
+            flat += [("  " + str(k).replace("_", " "), v) for k, v in value.items()]
+        else:
+            flat.append((str(key).replace("_", " "), "yes" if value is True else "no" if value is False
+                         else "-" if value is None else value))
+    print("\n".join(_table(flat, indent)))
 
 
 class _InterruptToCancel:
@@ -133,31 +200,52 @@ def cmd_propose(args):
 def cmd_accept(args):
     with _open(args) as p:
         p.accept(args.group, args.label, drop=args.drop)
-        _print(p.status(), args.json)
+        _report_status(p.status(), args.json)
 
 
 def cmd_label(args):
     with _open(args) as p:
         p.label(args.paths, args.label)
-        _print(p.status(), args.json)
+        _report_status(p.status(), args.json)
+
+
+def _report_status(st, as_json: bool) -> None:
+    if as_json:
+        _print(st, True)
+    else:
+        _show_status(st)
 
 
 def cmd_split(args):
     with _open(args) as p:
         parts = p.split(args.group)
-        _print([dataclasses.asdict(g) for g in parts], args.json)
+    if args.json:
+        _print([dataclasses.asdict(g) for g in parts], True)
+        return
+    print(f"group {args.group} split in {len(parts)}; the parts come first in the next proposals:")
+    for g in parts:
+        print(f"group {g.id}: {len(g.members)} photos")
+        for m in g.members[: args.show]:
+            print(f"    {m}")
+        if len(g.members) > args.show:
+            print(f"    ... {len(g.members) - args.show} more")
 
 
 def cmd_set_aside(args):
     with _open(args) as p:
         p.set_aside(args.paths)
-        _print(p.status(), args.json)
+        _report_status(p.status(), args.json)
 
 
 def cmd_undo(args):
     with _open(args) as p:
         done = p.undo()
-        _print(done or {"undone": None, "reason": "nothing to undo"}, args.json)
+        if args.json:
+            _print(done or {"undone": None, "reason": "nothing to undo"}, True)
+        elif done is None:
+            print("nothing to undo")
+        else:
+            print(f"undid decision {done['decision']} ({done['kind']}): {done['photos']} photos back as they were")
 
 
 def cmd_mistakes(args):
@@ -178,12 +266,12 @@ def cmd_mistakes(args):
 def cmd_confirm(args):
     with _open(args) as p:
         p.confirm(args.paths, args.label)
-        _print(p.status(), args.json)
+        _report_status(p.status(), args.json)
 
 
 def cmd_status(args):
     with _open(args, lock=False) as p:
-        _print(p.status(), args.json)
+        _report_status(p.status(), args.json)
 
 
 def cmd_export(args):
@@ -194,16 +282,207 @@ def cmd_export(args):
         if "csv" in written:
             out["csv"] = {"path": args.csv, "rows": written["csv"]}
         if "coco" in written:
-            out["coco"] = {"path": args.coco, **written["coco"]}
+            # With a split: one file per split, {split: {"path", "images", ...}}.
+            out["coco"] = written["coco"] if args.split else {"path": args.coco, **written["coco"]}
         if "folders" in written:
             out["folders"] = {"path": args.folders, **written["folders"]}
-        _print(out, args.json)
+            mode = folder_export_mode(args.folders)
+    if args.json:
+        _print(out, True)
+        return
+    rows = []
+    if "csv" in out:
+        rows.append(("csv", out["csv"]["path"], out["csv"]["rows"], "rows" + (", with a split column" if args.split
+                                                                                else "")))
+    if "coco" in out:
+        parts = out["coco"].items() if args.split else [(None, out["coco"])]
+        for part, w in parts:
+            rows.append((f"coco {part}" if part else "coco", w["path"], w["images"],
+                         f"images, {_plural(w['categories'], 'category').replace('ys', 'ies')}"))
+    if "folders" in out:
+        counts = written["folders"]
+        if args.split:
+            for part, by_label in counts.items():
+                rows.append((f"folders {part}", os.path.join(args.folders, part), sum(by_label.values()),
+                             f"photos in {_plural(len(by_label), 'label folder')}"))
+        else:
+            rows.append(("folders", args.folders, sum(counts.values()),
+                         f"photos in {_plural(len(counts), 'label folder')}"))
+    print("\n".join(_table(rows)))
+    if "folders" in out:
+        how = ("symbolic links to the photos" if mode == "link" else
+               "copies (links failed on this disk)" if args.mode == "link" else "copies, as asked")
+        print(f"\nThe class folders hold {how}.\n{WHY_LINKS}")
 
 
 def cmd_relearn(args):
     with _open(args) as p:
         result = p.relearn(progress=_Bar(not args.json), seconds=args.seconds, adapt_embedding=args.adapt_embedding)
-        _print(result, args.json)
+    if args.json:
+        _print(result, True)
+    else:
+        _show_figures(result)
+
+
+def cmd_later(args):
+    with _open(args) as p:
+        p.defer(args.group)
+        n = len(p.group(args.group).members)
+    if args.json:
+        _print({"later": args.group, "photos": n}, True)
+    else:
+        print(f"group {args.group} left for later: its {n} photos come back after everything else "
+              "(undo brings it back now)")
+
+
+def cmd_clear(args):
+    with _open(args) as p:
+        p.clear(args.paths)
+        _report_status(p.status(), args.json)
+
+
+def cmd_restore(args):
+    with _open(args) as p:
+        aside = p.set_aside_photos()
+        if args.paths:
+            known = set(aside)
+            for path in args.paths:
+                info = p.photo_info(path)        # an unknown photo: a one-line reason
+                if info["path"] not in known:
+                    raise ProjectError(f"{path} is not set aside (it is {info['state']}); 'kinfold clear' "
+                                       "removes a label")
+            chosen = [p.photo_info(path)["path"] for path in args.paths]
+        else:
+            chosen = aside
+        if chosen:
+            p.clear(chosen)
+        st = p.status()
+    if args.json:
+        _print({"restored": chosen, "status": dataclasses.asdict(st)}, True)
+        return
+    print(f"{len(chosen)} set-aside photo{'s' if len(chosen) != 1 else ''} back in the pool"
+          + ("" if chosen else " (none was set aside)"))
+    print()
+    _show_status(st)
+
+
+def cmd_review(args):
+    with _open(args, lock=False) as p:     # only reads
+        found = p.review(args.label)
+    shown = found[: args.limit]
+    if args.json:
+        _print([{"path": path, "typicality": round(t, 4)} for path, t in shown], True)
+        return
+    print(f"{len(found)} photos labelled {args.label!r}, least typical first (typicality: cosine similarity "
+          "to the label's other photos)")
+    print("\n".join(_table([("typicality", "photo")] + [(f"{t:.3f}", path) for path, t in shown])))
+    if len(found) > len(shown):
+        print(f"... {len(found) - len(shown)} more (--limit)")
+
+
+def cmd_stats(args):
+    with _open(args, lock=False) as p:     # only reads: works while the window has the folder open
+        st = p.statistics()
+        protected = [(p.folder, "the photo folder"), (p.store.directory, "the project store")]
+    if args.csv:
+        _write_new_file(args.csv, st, args.overwrite, protected)
+    if args.json:
+        _print(st.as_dict(), True)
+        return
+    if args.csv:
+        print(f"statistics written to {args.csv}")
+        return
+    total = st.total
+    print(f"{st.photos} photos, {sum(st.by_label.values())} labelled under {_plural(len(st.by_label), 'label')}")
+    if st.by_label:
+        print()
+        top = max(st.by_label.values())
+        print("\n".join(_table([("label", "photos", "")] + [(label, n, "#" * max(1, round(30 * n / top)))
+                                                             for label, n in st.by_label.items()])))
+
+    def rate(a):
+        return "-" if a.labels_per_hour is None else f"{a.labels_per_hour:.0f}"
+
+    def share(a):
+        return "-" if a.as_suggested_share is None else f"{a.as_suggested_share:.0%} of {a.suggested}"
+    print()
+    rows = [("annotator", "actions", "labels", "active h", "labels/h", "accepted as suggested")]
+    for a in st.annotators + ([total] if len(st.annotators) > 1 else []):
+        rows.append((a.annotator, a.actions, a.labels_given, f"{a.active_seconds / 3600:.2f}", rate(a), share(a)))
+    print("\n".join(_table(rows)))
+    if st.per_hour:
+        print()
+        print("\n".join(_table([("hour (UTC)", "labels")] + [(h.replace("T", " ") + ":00", n)
+                                                             for h, n in st.per_hour.items()])))
+
+
+def _write_new_file(path: str, stats, overwrite: bool, protected) -> None:
+    """Write the statistics table to `path`; an existing file is replaced only with `overwrite`;
+    never inside the photo folder or the store (as exports)."""
+    from pathlib import Path
+
+    real = Path(path).expanduser().resolve()
+    for root, what in protected:
+        root = Path(root).resolve()
+        if real == root or root in real.parents:
+            raise ProjectError(f"cannot write {path}: it is inside {what} {root}; choose a file outside it")
+    if os.path.isdir(path):
+        raise ProjectError(f"{path} is a folder; give a file name")
+    if os.path.lexists(path) and not overwrite:
+        raise ProjectError(f"{path} exists; choose another name, or replace it with --overwrite")
+    stats.write_csv(path)
+
+
+def _version() -> str:
+    from importlib import metadata
+    try:
+        return metadata.version("kinfold")
+    except metadata.PackageNotFoundError:  # run from a checkout that was never installed
+        import tomllib
+        pyproject = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "pyproject.toml")
+        try:
+            with open(pyproject, "rb") as f:
+                return tomllib.load(f)["project"]["version"]
+        except (OSError, KeyError, ValueError):
+            return "unknown"
+
+
+def cmd_import(args):
+    bar = _Bar(not args.json)
+    with _InterruptToCancel() as interrupt, _open(args) as p:
+        rep = p.import_labels(csv=args.csv, coco=args.coco, folders=args.folders, subfolders=args.subfolders,
+                              path_column=args.path_column, label_column=args.label_column,
+                              replace=args.replace, dry_run=args.dry_run, progress=bar,
+                              cancel=interrupt.asked.is_set)
+    if args.json:
+        _print(rep, True)
+    else:
+        print("\n".join(rep.lines()))
+    if rep.cancelled:
+        print("kinfold: import interrupted; nothing was imported", file=sys.stderr)
+        return 130
+
+
+def cmd_rename(args):
+    from core.label_rename import NameQuestion
+
+    with _open(args) as p:
+        try:
+            done = p.rename_label(args.old, args.new, confirm=args.yes)
+        except NameQuestion as q:
+            print(f"kinfold: {_one_line(q)}; to merge: kinfold rename FOLDER {_quoted(args.old)} "
+                  f"{_quoted(q.near[0])}; to keep the new name: add --yes", file=sys.stderr)
+            return 1
+    if args.json:
+        _print(done, True)
+    else:
+        verb = "merged into" if done.merged else "renamed to"
+        print(f"{done.old!r} {verb} {done.new!r}: {done.photos} photos (undo reverses it)")
+
+
+def _quoted(text: str) -> str:
+    import shlex
+    return shlex.quote(text)
 
 
 def cmd_open(args):
@@ -261,61 +540,121 @@ def _split(text: str) -> tuple[float, ...]:
     raise argparse.ArgumentTypeError(f"{text!r}: {problem}; {hint}")
 
 
+_PATHS_HELP = "photos, as paths relative to FOLDER (as 'kinfold propose' lists them)"
+
+
 def build_parser() -> argparse.ArgumentParser:
-    ap = _Parser(prog="kinfold", description="Label a folder of photos a group at a time.")
-    sub = ap.add_subparsers(dest="command", required=True)
+    ap = _Parser(prog="kinfold", description="Label a folder of photos a group at a time.",
+                 epilog="'kinfold VERB --help' describes a verb and its arguments.")
+    ap.add_argument("--version", action="version", version=f"kinfold {_version()}",
+                    help="print the version and stop")
+    sub = ap.add_subparsers(dest="command", required=True, metavar="VERB")
 
     def verb(name, func, help_, folder=True):
-        s = sub.add_parser(name, help=help_)
+        s = sub.add_parser(name, help=help_, description=help_)
         if folder:
             s.add_argument("folder", help="the photo folder")
             s.add_argument("--store", help="keep the project store here instead of FOLDER/.kinfold")
             s.add_argument("--annotator", help="name recorded with each decision (default: your login)")
             s.add_argument("--json", action="store_true", help="machine-readable output")
+            s.add_argument("--wait", type=_seconds, metavar="SECONDS",
+                           help="if another Kinfold window or command has the folder open, try again until "
+                                "it is free or SECONDS have passed (default: stop at once)")
         s.set_defaults(func=func, parser=s)
         return s
 
-    verb("scan", cmd_scan, "find and embed new or changed photos")
+    verb("scan", cmd_scan, "find and embed new or changed photos (a progress bar when run in a terminal)")
     s = verb("propose", cmd_propose, "list the next groups to confirm")
-    s.add_argument("--limit", type=_whole(1, 100_000, "--limit"), default=10)
+    s.add_argument("--limit", type=_whole(1, 100_000, "--limit"), default=10, help="groups listed (default 10)")
     s.add_argument("--show", type=_whole(0, 100_000, "--show"), default=6, help="members listed per group")
     s = verb("accept", cmd_accept, "label a proposed group")
-    s.add_argument("group", type=_group_id)
-    s.add_argument("label")
+    s.add_argument("group", type=_group_id, help="the group id, as 'kinfold propose' shows it")
+    s.add_argument("label", help="the label for its members")
     s.add_argument("--drop", nargs="*", default=[], help="members to leave out (they go back to the pool)")
     s = verb("label", cmd_label, "label photos directly")
-    s.add_argument("label")
-    s.add_argument("paths", nargs="+")
+    s.add_argument("label", help="the label to give")
+    s.add_argument("paths", nargs="+", help=_PATHS_HELP)
     s = verb("split", cmd_split, "break a group into two coherent parts")
-    s.add_argument("group", type=_group_id)
+    s.add_argument("group", type=_group_id, help="the group id, as 'kinfold propose' shows it")
+    s.add_argument("--show", type=_whole(0, 100_000, "--show"), default=6, help="members listed per part")
     s = verb("set-aside", cmd_set_aside, "mark photos as belonging to no class")
-    s.add_argument("paths", nargs="+")
+    s.add_argument("paths", nargs="+", help=_PATHS_HELP)
     verb("undo", cmd_undo, "reverse the last label decision")
     verb("status", cmd_status, "counts by state and label")
     s = verb("mistakes", cmd_mistakes, "labelled photos whose label is most likely wrong, likeliest first")
-    s.add_argument("--limit", type=_whole(1, 1_000_000, "--limit"), default=20)
+    s.add_argument("--limit", type=_whole(1, 1_000_000, "--limit"), default=20, help="photos listed (default 20)")
     s = verb("confirm", cmd_confirm, "say the photos' labels are right (or, with --label, fix them): they "
                                      "leave the mistakes list")
-    s.add_argument("paths", nargs="+")
+    s.add_argument("paths", nargs="+", help=_PATHS_HELP)
     s.add_argument("--label", help="the right label, when the present one is wrong")
     s = verb("export", cmd_export, "write the labelled photos out")
-    s.add_argument("--csv", metavar="FILE")
-    s.add_argument("--coco", metavar="FILE")
-    s.add_argument("--folders", metavar="DIR")
-    s.add_argument("--split", type=_split, help="train,val,test fractions for --folders, e.g. 0.8,0.1,0.1")
-    s.add_argument("--mode", choices=["link", "copy"], default="link")
+    s.add_argument("--csv", metavar="FILE", help="a CSV table (RFC 4180): path, label, how, annotator, time "
+                                                 "(and split, with --split)")
+    s.add_argument("--coco", metavar="FILE", help="a COCO JSON file (image-level categories); with --split, "
+                                                  "one file per split: FILE's name with -train, -val, -test")
+    s.add_argument("--folders", metavar="DIR", help="a class-folder tree, DIR/<label>/<photo> "
+                                                    "(DIR/<split>/<label>/<photo> with --split)")
+    s.add_argument("--split", type=_split, help="train,val,test fractions, e.g. 0.8,0.1,0.1: stratified by label, "
+                                                "near-duplicates kept on one side; applies to every format asked")
+    s.add_argument("--mode", choices=["link", "copy"], default="link",
+                   help="class folders hold symbolic links to the photos (default: no extra disk space, "
+                        "written in seconds) or copies (to move the set elsewhere)")
     s.add_argument("--overwrite", action="store_true",
                    help="replace a file that is not a Kinfold export, or write into a non-empty folder that is "
                         "not one (its files are kept unless a photo takes their name)")
     s = verb("relearn", cmd_relearn, "relearn the label classifier from the decisions so far")
-    s.add_argument("--seconds", type=float, default=None, help="time budget")
+    s.add_argument("--seconds", type=float, default=None, help="time budget in seconds (default: none)")
     s.add_argument("--adapt-embedding", action="store_true",
                    help="also train the projection head that adapts the embedding "
                         "(slower; it lowered yield in our benchmark)")
-    s = sub.add_parser("open", help="open the desktop window")
-    s.add_argument("folder", nargs="?")
+    # --- cli: later, clear, restore, review, stats ---
+    s = verb("later", cmd_later, "leave a group for later: its photos come back after everything else")
+    s.add_argument("group", type=_group_id, help="the group id, as 'kinfold propose' shows it")
+    s = verb("clear", cmd_clear, "remove photos' labels (or set-aside marks): they go back to the pool")
+    s.add_argument("paths", nargs="+", help=_PATHS_HELP)
+    s = verb("restore", cmd_restore, "bring set-aside photos back to the pool (all of them, or those named)")
+    s.add_argument("paths", nargs="*", help="set-aside photos to bring back (default: every one)")
+    s = verb("review", cmd_review, "a label's photos, least typical first (where a wrong label shows)")
+    s.add_argument("label", help="the label to review")
+    s.add_argument("--limit", type=_whole(1, 1_000_000, "--limit"), default=50, help="photos listed (default 50)")
+    s = verb("stats", cmd_stats, "photos per label, labels per hour, suggestions accepted as they were, "
+                                 "per annotator")
+    s.add_argument("--csv", metavar="FILE", help="also write the figures to FILE as a CSV table")
+    s.add_argument("--overwrite", action="store_true", help="replace FILE if it exists")
+    # --- import: import, rename ---
+    s = verb("import", cmd_import, "bring in labels the photos already have (one undoable decision)")
+    s.add_argument("--csv", metavar="FILE", help="a CSV file with a header row: a path and a label column")
+    s.add_argument("--path-column", metavar="NAME", help="the CSV column holding the photo paths (relative to "
+                                                          "FOLDER, or absolute inside it); default: path, file, ...")
+    s.add_argument("--label-column", metavar="NAME", help="the CSV column holding the labels; default: label, "
+                                                           "class, category, ...")
+    s.add_argument("--coco", metavar="FILE", help="a COCO JSON file: each image takes its annotations' category")
+    s.add_argument("--folders", metavar="DIR", help="a class-folder tree: each subfolder of DIR is a label; files "
+                                                    "match photos by content, wherever they lie")
+    s.add_argument("--subfolders", action="store_true", help="each photo takes the name of the subfolder of "
+                                                             "FOLDER it lies in")
+    s.add_argument("--replace", action="store_true", help="give photos that carry another label the incoming one "
+                                                          "(default: keep theirs and list the conflict)")
+    s.add_argument("--dry-run", action="store_true", help="report what would happen, change nothing")
+    s = verb("rename", cmd_rename, "rename a label; onto an existing label, merge the two (undoable)")
+    s.add_argument("old", help="the label as it is now")
+    s.add_argument("new", help="the new name (an existing label: merge)")
+    s.add_argument("--yes", action="store_true", help="keep the new name even when it is close to an existing "
+                                                      "label (case, spacing or a prefix)")
+    s = sub.add_parser("open", help="open the desktop window", description="open the desktop window")
+    s.add_argument("folder", nargs="?", help="the photo folder to open (default: choose in the window)")
     s.set_defaults(func=cmd_open)
     return ap
+
+
+def _seconds(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--wait takes a number of seconds, not {text!r}") from None
+    if not (math.isfinite(value) and 0 <= value <= 86400 * 7):
+        raise argparse.ArgumentTypeError(f"--wait must be between 0 and 604800 seconds, not {text}")
+    return value
 
 
 def _one_line(text) -> str:
@@ -368,8 +707,14 @@ def main(argv=None) -> int:
     if args.func is cmd_export:
         if not (args.csv or args.coco or args.folders):
             args.parser.error("say what to export: --csv FILE, --coco FILE and/or --folders DIR")
-        if args.split is not None and not args.folders:
-            args.parser.error("--split divides the class folders: add --folders DIR")
+    if args.func is cmd_import:
+        given = [o for o, v in (("--csv", args.csv), ("--coco", args.coco), ("--folders", args.folders),
+                                ("--subfolders", args.subfolders)) if v]
+        if len(given) != 1:
+            args.parser.error("say where the labels come from, one of --csv FILE, --coco FILE, --folders DIR, "
+                              "--subfolders" + (f" (given: {' '.join(given)})" if given else ""))
+        if (args.path_column or args.label_column) and not args.csv:
+            args.parser.error("--path-column and --label-column choose columns of --csv FILE")
     try:
         rc = args.func(args)
         sys.stdout.flush()  # a closed pipe shows here, inside the handler

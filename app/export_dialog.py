@@ -13,7 +13,7 @@ from PySide6.QtWidgets import (QCheckBox, QDialog, QDoubleSpinBox, QFileDialog, 
                                QLabel, QLineEdit, QPushButton, QRadioButton, QVBoxLayout, QWidget)
 
 from app.jobs import Job, JobProgress
-from core.export import ExportError, ExportRefused
+from core.export import WHY_LINKS, ExportError, ExportRefused, folder_export_mode
 
 CSV_NAME, COCO_NAME, FOLDERS_NAME = "labels.csv", "labels.coco.json", "classes"
 
@@ -25,11 +25,13 @@ def _count_text(counts: dict) -> str:
 def export_report(written: dict) -> str:
     lines = []
     if "csv" in written:
-        lines.append(f"CSV: {written['csv']['rows']} rows → {written['csv']['path']}")
+        column = ", with a split column" if written["csv"].get("split") else ""
+        lines.append(f"CSV: {written['csv']['rows']} rows{column} → {written['csv']['path']}")
     if "coco" in written:
         w = written["coco"]
-        lines.append(f"COCO JSON: {w['images']} images, {w['annotations']} annotations, "
-                     f"{w['categories']} categories → {w['path']}")
+        for part, one in (w.items() if "path" not in w else [(None, w)]):   # one file per split
+            lines.append(f"COCO JSON{f' ({part})' if part else ''}: {one['images']} images, "
+                         f"{one['annotations']} annotations, {one['categories']} categories → {one['path']}")
     if "folders" in written:
         w = written["folders"]
         counts = w["counts"]
@@ -39,6 +41,9 @@ def export_report(written: dict) -> str:
         else:
             lines.append(f"folders: {sum(counts.values())} photos in {len(counts)} classes")
         lines.append(f"    → {w['path']}")
+        mode = w.get("mode")
+        if mode:
+            lines.append("    the photos are " + ("symbolic links to the originals" if mode == "link" else "copies"))
     return "\n".join(lines)
 
 
@@ -73,11 +78,16 @@ def run_export(project, destination: Path, csv: bool, coco: bool, folders: bool,
         raise
     written: dict = {}
     if "csv" in result:
-        written["csv"] = {"path": str(paths["csv"]), "rows": result["csv"]}
+        written["csv"] = {"path": str(paths["csv"]), "rows": result["csv"], "split": split is not None}
     if "coco" in result:
-        written["coco"] = {"path": str(paths["coco"]), **result["coco"]}
+        if split:   # one file per split, named beside the one asked for (core.export.split_file_name)
+            written["coco"] = {part: {**one, "path": str(paths["coco"].parent / Path(one["path"]).name)}
+                               for part, one in result["coco"].items()}
+        else:
+            written["coco"] = {"path": str(paths["coco"]), **result["coco"]}
     if "folders" in result:
-        written["folders"] = {"path": str(paths["folders"]), "counts": result["folders"]}
+        written["folders"] = {"path": str(paths["folders"]), "counts": result["folders"],
+                              "mode": folder_export_mode(paths["folders"])}
     return written
 
 
@@ -105,7 +115,7 @@ class ExportDialog(QDialog):
             spin.setSingleStep(0.05)
             spin.setDecimals(2)
             spin.setValue(value)
-        self.link = QRadioButton("links to the photos")
+        self.link = QRadioButton("links to the photos (default)")
         self.copy = QRadioButton("copies")
         self.link.setChecked(True)
         self.progress = JobProgress(unit="steps")
@@ -147,8 +157,12 @@ class ExportDialog(QDialog):
         what_w = QWidget()
         what_w.setLayout(what)
         form.addRow("Write", what_w)
-        form.addRow("Folders", split_row)
+        form.addRow("Split", split_row)
         form.addRow("Photos as", mode_row)
+        self.why_links = QLabel(WHY_LINKS)
+        self.why_links.setWordWrap(True)
+        self.why_links.setObjectName("muted")
+        form.addRow("", self.why_links)
         buttons = QHBoxLayout()
         buttons.addStretch(1)
         buttons.addWidget(self.replace)
@@ -164,7 +178,8 @@ class ExportDialog(QDialog):
         self.run.clicked.connect(lambda: self.start())
         self.replace.clicked.connect(lambda: self.start(overwrite=True))
         close.clicked.connect(self.reject)
-        self.folders.toggled.connect(self._sync)
+        for box in (self.csv, self.coco, self.folders):
+            box.toggled.connect(self._sync)
         self.split.toggled.connect(self._sync)
         # A refusal is about the destination and formats it was given: any change withdraws the offer.
         self.destination.textChanged.connect(self._withdraw)
@@ -175,9 +190,11 @@ class ExportDialog(QDialog):
         self._sync()
 
     def _sync(self) -> None:
-        self.split.setEnabled(self.folders.isChecked())
+        # One split serves every format: a CSV column, one COCO file per split, a folder level.
+        anything = self.csv.isChecked() or self.coco.isChecked() or self.folders.isChecked()
+        self.split.setEnabled(anything)
         for spin in self.fractions:
-            spin.setEnabled(self.folders.isChecked() and self.split.isChecked())
+            spin.setEnabled(anything and self.split.isChecked())
         self.link.setEnabled(self.folders.isChecked())
         self.copy.setEnabled(self.folders.isChecked())
 
@@ -203,8 +220,7 @@ class ExportDialog(QDialog):
         if not text:
             self.report.setText("⚠  choose a destination folder")
             return None
-        split = (tuple(s.value() for s in self.fractions)
-                 if self.folders.isChecked() and self.split.isChecked() else None)
+        split = tuple(s.value() for s in self.fractions) if self.split.isChecked() else None
         args = (self.project, Path(text).expanduser(), self.csv.isChecked(), self.coco.isChecked(),
                 self.folders.isChecked(), split, "copy" if self.copy.isChecked() else "link", overwrite)
         self.job = Job("exporting", lambda progress, cancel: run_export(*args), self)
@@ -233,6 +249,7 @@ class ExportDialog(QDialog):
             return
         self.written = written
         self.report.setText("Written:\n" + export_report(written))
+        self.adjustSize()   # the report can be longer than the room the dialog had
         self._ended()
         if self.on_written:
             self.on_written(written)

@@ -10,7 +10,8 @@ from __future__ import annotations
 
 from typing import Iterable
 
-_NEW_STATE = {"accept": "labelled", "label": "labelled", "set_aside": "set_aside", "clear": None}
+_NEW_STATE = {"accept": "labelled", "label": "labelled", "set_aside": "set_aside", "clear": None,
+              "import": "labelled"}
 
 
 def labelled_curve(decisions: Iterable[dict]) -> list[tuple[int, int]]:

@@ -133,6 +133,9 @@ class MainWindow(QMainWindow):
         self.last_scan = None
         self.last_preview = None
         self.last_export = None
+        self.last_import = None
+        self.last_rename = None
+        self.last_label_menu = None
         self.relearn_seconds: float | None = None   # time budget handed to the engine (None: its default)
         self.accepted_as: dict[int, str] = {}       # group id -> the label it was accepted under here
         self.setWindowTitle("Kinfold")
@@ -190,6 +193,9 @@ class MainWindow(QMainWindow):
         self.mistakes_page.fix_requested.connect(self.fix_mistake)
         self.mistakes_page.back.connect(self.back_to_groups)
         self.stack.currentChanged.connect(lambda _: self._sync_actions())
+        for lst in (self.side.labels, self.review_page.labels):   # right-click a label: Rename…
+            lst.setContextMenuPolicy(Qt.ContextMenuPolicy.CustomContextMenu)
+            lst.customContextMenuRequested.connect(lambda pos, w=lst: self._label_menu(w, pos))
         self.start.show_recent(self.recent_folders())
         self._sync_actions()
 
@@ -206,9 +212,12 @@ class MainWindow(QMainWindow):
             ("preview", "Preview", ["Ctrl+P"], "Views", self.preview),
             ("review", "Review labels", ["Ctrl+R"], "Views", self.open_review),
             ("mistakes", "Find mistakes", ["Ctrl+M"], "Views", self.open_mistakes),
+            ("stats", "Statistics…", ["Ctrl+Shift+S"], "Views", self.open_statistics),
             ("help", "Keys", ["F1", "?"], "Views", lambda: self.help.toggle()),
             ("open", "Open folder…", ["Ctrl+O"], "Folder", self.choose_folder),
             ("export", "Export…", ["Ctrl+E"], "Folder", self.export),
+            ("import", "Import labels…", ["Ctrl+Shift+I"], "Folder", self.import_labels),
+            ("rename", "Rename label…", ["F2"], "Views", self.rename_label),
             ("relearn", "Relearn", ["Ctrl+Shift+R"], "Folder", self.relearn),
             ("close", "Close folder", ["Ctrl+W"], "Folder", self.close_folder),
             ("quit", "Quit", ["Ctrl+Q"], "Folder", self.close),
@@ -224,6 +233,9 @@ class MainWindow(QMainWindow):
             "preview": "Show the photo full size with its nearest photos (or double-click it)",
             "relearn": "Relearn from the decisions so far, then propose again",
             "mistakes": "Labelled photos whose label is most likely wrong, one at a time: confirm or fix each",
+            "stats": "Photos per label, labels per hour, suggestions accepted as they were, per annotator",
+            "import": "Bring in labels from a CSV or COCO file, class folders or the subfolder names (checked first)",
+            "rename": "Rename the label chosen in the list; an existing label's name merges the two",
         }
         actions = {}
         for key, text, keys, section, slot in spec:
@@ -239,9 +251,9 @@ class MainWindow(QMainWindow):
 
     def _make_menus(self) -> None:
         bar = self.menuBar()
-        for title, keys in (("&Folder", ("open", "export", "relearn", "close", "quit")),
+        for title, keys in (("&Folder", ("open", "import", "export", "relearn", "close", "quit")),
                             ("&Group", ("accept", "toggle", "split", "later", "aside", "undo")),
-                            ("&View", ("preview", "review", "mistakes", "help"))):
+                            ("&View", ("preview", "review", "mistakes", "stats", "rename", "help"))):
             menu = bar.addMenu(title)
             for k in keys:
                 menu.addAction(self.actions[k])
@@ -269,6 +281,10 @@ class MainWindow(QMainWindow):
         self.actions["export"].setEnabled(idle and page in (self.work, self.review_page))
         self.actions["relearn"].setEnabled(idle and page is self.work)
         self.actions["close"].setEnabled(self.project is not None)
+        self.actions["stats"].setEnabled(idle)
+        self.actions["import"].setEnabled(idle and page in (self.work, self.review_page))
+        self.actions["rename"].setEnabled(idle and page in (self.work, self.review_page)
+                                          and bool(self.status and self.status.by_label))
         self.actions["open"].setEnabled(self.job is None)
 
     def idle(self) -> bool:
@@ -910,10 +926,74 @@ class MainWindow(QMainWindow):
         self._run("relearning", lambda progress, cancel: project.relearn(progress=progress, seconds=seconds,
                                                                         cancel=cancel), page.busy, done)
 
+    # --- cli: statistics (app/stats_dialog.py) ---
+    def open_statistics(self) -> None:
+        if self.project is None or self._busy():
+            return
+        from app.stats_dialog import StatsDialog
+        dlg = StatsDialog(self.project.statistics(), self)
+        dlg.setStyleSheet(theme.STYLE)
+        self.last_stats = dlg
+        dlg.open()
+
     def export(self) -> None:
         if self.project is None or self._busy():
             return
         dlg = ExportDialog(self.project, self)
         dlg.setStyleSheet(theme.STYLE)
         self.last_export = dlg
+        dlg.open()
+
+    # --- import: importing labels (Ctrl+Shift+I) and renaming a label (F2) -----------------------
+    def import_labels(self) -> None:
+        from app.import_dialog import ImportDialog
+
+        if self.project is None or self._busy():
+            return
+        dlg = ImportDialog(self.project, self, on_imported=lambda rep: self._act(
+            "import", None, lambda view: self.group_page.say(f"Imported labels for {photos(rep.labelled)}."),
+            counts="import"))
+        dlg.setStyleSheet(theme.STYLE)
+        self.last_import = dlg
+        dlg.open()
+
+    def _label_menu(self, lst, pos) -> None:
+        from PySide6.QtWidgets import QMenu
+
+        item = lst.itemAt(pos)
+        if item is None:
+            return
+        lst.setCurrentItem(item)
+        menu = QMenu(self)
+        menu.addAction("Rename…", lambda: self.rename_label(item.data(Qt.ItemDataRole.UserRole)))
+        self.last_label_menu = menu
+        menu.popup(lst.viewport().mapToGlobal(pos))
+
+    def rename_label(self, label: str | None = None) -> None:
+        from app.import_dialog import RenameDialog
+
+        if self.project is None or self._busy():
+            return
+        on_review = self.stack.currentWidget() is self.review_page
+        label = label or (self._review_label() if on_review else self._side_label())
+        names = list(self.status.by_label) if self.status else []
+        where = self.review_page if on_review else self.group_page
+        if label not in names:
+            where.say("Choose a label in the list first, then F2 (or right-click it: Rename…).", problem=True)
+            return
+
+        def chosen(old: str, new: str, confirm: bool) -> None:
+            def done(view):
+                r = view.result
+                if on_review and r.new in view.status.by_label:
+                    self._fill_review(r.new, None)
+                verb = "Merged" if r.merged else "Renamed"
+                where.say(f"{verb} “{r.old}” into “{r.new}” ({photos(r.photos)}); Ctrl+Z undoes it."
+                          if r.merged else f"{verb} “{r.old}” to “{r.new}” ({photos(r.photos)}).")
+            self._act("rename", lambda p: p.rename_label(old, new, confirm=confirm), done, counts="rename",
+                      where=where)
+
+        dlg = RenameDialog(label, names, chosen, self)
+        dlg.setStyleSheet(theme.STYLE)
+        self.last_rename = dlg
         dlg.open()

@@ -100,8 +100,10 @@ def render(out: Path, source: Path) -> list[Path]:
             raise SystemExit("the scan did not finish in 5 minutes")
 
         name_of = _names_from_truth(folder) or (lambda members: "part")
+        accepted: list[str] = []
         for _ in range(3):  # a session under way: a few groups accepted, through the window
             g = w.current()
+            accepted += g.members
             w.group_page.label.setText(name_of(g.members))
             w.accept()
             _wait(app, w.idle, 60)  # the decision runs on the engine thread
@@ -149,6 +151,14 @@ def render(out: Path, source: Path) -> list[Path]:
             written.append(out / "8-mistakes.png")
             w.back_to_groups()
 
+        w.open_statistics()   # --- cli: 10-statistics ---
+        st = w.last_stats
+        st.resize(820, st.sizeHint().height())
+        _settle(app, 0.5)
+        _save(st, out / "10-statistics.png")
+        written.append(out / "10-statistics.png")
+        st.reject()
+
         w.export()
         exp = w.last_export
         exp.destination.setText("spare-parts-labels")
@@ -159,6 +169,8 @@ def render(out: Path, source: Path) -> list[Path]:
         _save(exp, out / "7-export.png")
         written.append(out / "7-export.png")
         exp.reject()
+
+        _import_shot(app, w, folder, accepted, name_of, out, written)
         w.close()
     finally:
         os.chdir(saved_cwd)
@@ -169,6 +181,33 @@ def render(out: Path, source: Path) -> list[Path]:
                 os.environ[k] = v
         shutil.rmtree(tmp, ignore_errors=True)
     return written
+
+
+def _import_shot(app, w, folder: Path, accepted: list[str], name_of, out: Path, written: list) -> None:
+    """9-import.png: the import dialog's check of an earlier labelling kept as a CSV file (the demo's true
+    names for 60 photos; two of the photos labelled above carry another name there, two rows name
+    photos that are not in the folder)."""
+    import csv
+
+    photos = sorted(str(p.relative_to(folder).as_posix()) for p in folder.rglob("*")
+                    if p.is_file() and not p.relative_to(folder).parts[0].startswith("."))
+    chosen = accepted[:2] + [p for p in photos if p not in accepted[:2]][:58]
+    with open("previous-labels.csv", "w", newline="", encoding="utf-8") as f:
+        out_csv = csv.writer(f)
+        out_csv.writerow(["file", "category"])
+        for i, p in enumerate(chosen):
+            out_csv.writerow([p, "spares" if i < 2 else name_of([p])])
+        out_csv.writerows([["old-scans/IMG_0412.jpg", "washer"], ["old-scans/IMG_0413.jpg", "washer"]])
+    w.import_labels()
+    imp = w.last_import
+    imp.source.setText("previous-labels.csv")
+    imp.check.click()
+    _wait(app, lambda: imp.checked is not None or "⚠" in imp.message.text(), 60)
+    imp.resize(900, 780)
+    _settle(app, 0.3)
+    _save(imp, out / "9-import.png")
+    written.append(out / "9-import.png")
+    imp.reject()
 
 
 def main(argv=None) -> int:

@@ -34,7 +34,7 @@ QPushButton:focus, QToolButton:focus {{ border: 2px solid {ACCENT}; }}
 QPushButton:disabled, QToolButton:disabled {{ color: #A4A7A9; }}
 QPushButton#primary, QToolButton#primary {{ background: {ACCENT}; color: white; border-color: {ACCENT};
                                            font-weight: 600; }}
-QToolButton#primary:disabled {{ background: #9FB8B5; }}
+QToolButton#primary:disabled, QPushButton#primary:disabled {{ background: #9FB8B5; border-color: #9FB8B5; }}
 QProgressBar {{ background: {SURFACE}; border: 1px solid {LINE}; border-radius: 4px; text-align: center;
                min-height: 18px; }}
 QProgressBar::chunk {{ background: {ACCENT_BAR}; border-radius: 3px; }}

@@ -57,6 +57,12 @@ from typing import Mapping, Sequence
 log = logging.getLogger(__name__)
 
 CSV_HEADER = ("path", "label", "how", "annotator", "time")
+CSV_SPLIT_HEADER = CSV_HEADER + ("split",)     # the header when a split is asked
+# Why class folders hold links unless copies are asked for: shown by the CLI, the export dialog and
+# the README, so the choice is made knowing what each means.
+WHY_LINKS = ("Links are the default because the export then takes no extra disk space, is written in "
+             "seconds and leaves the photos where they are; choose copies to move the set to another "
+             "machine, or to keep it when the originals move or are deleted.")
 MARKER_NAME = ".kinfold-export.json"
 MARKER_VERSION = 2           # 2: the marker lists the files and folders Kinfold wrote
 SPLIT_NAMES = ("train", "val", "test")
@@ -317,6 +323,7 @@ def _new_temp_dir(dest: Path) -> Path:
 # ---------------------------------------------------------------------------- recognising our own
 
 _CSV_HEADER_LINE = (",".join(CSV_HEADER) + "\r\n").encode("ascii")
+_CSV_SPLIT_HEADER_LINE = (",".join(CSV_SPLIT_HEADER) + "\r\n").encode("ascii")
 _COCO_KEYS = {"info", "licenses", "images", "categories", "annotations"}
 
 
@@ -330,8 +337,8 @@ def is_kinfold_file(path) -> bool:
         if st.st_size == 0:
             return True
         with open(path, "rb") as f:
-            head = f.read(len(_CSV_HEADER_LINE))
-            if head == _CSV_HEADER_LINE:
+            head = f.read(len(_CSV_SPLIT_HEADER_LINE))
+            if head.startswith(_CSV_HEADER_LINE) or head == _CSV_SPLIT_HEADER_LINE:
                 return True
             if not head.lstrip().startswith(b"{"):
                 return False
@@ -390,12 +397,13 @@ def _csv_row(photo: LabelledPhoto) -> list[str]:
             else str(getattr(photo, name)) for name in CSV_HEADER]
 
 
-def _write_csv(tmp: Path, photos: list[LabelledPhoto]) -> int:
+def _write_csv(tmp: Path, photos: list[LabelledPhoto], split_of: dict[str, str] | None = None) -> int:
+    """``split_of``: photo path -> split name, written in a last ``split`` column."""
     with open(tmp, "w", encoding="utf-8", newline="") as f:
         writer = csv.writer(f, lineterminator="\r\n", quoting=csv.QUOTE_MINIMAL)
-        writer.writerow(CSV_HEADER)
+        writer.writerow(CSV_HEADER if split_of is None else CSV_SPLIT_HEADER)
         for photo in photos:
-            writer.writerow(_csv_row(photo))
+            writer.writerow(_csv_row(photo) + ([] if split_of is None else [split_of[photo.path]]))
         f.flush()
         os.fsync(f.fileno())
     return len(photos)
@@ -417,11 +425,13 @@ def _iso_utc(when) -> str:
 
 
 def coco_document(photos: Sequence[LabelledPhoto], *, description: str = "Kinfold export",
-                  date_created=None) -> dict:
-    """The COCO dictionary: image-level classification, one annotation per photo, no boxes."""
+                  date_created=None, labels=None) -> dict:
+    """The COCO dictionary: image-level classification, one annotation per photo, no boxes.
+    ``labels``: the categories to list (default: the photos' labels); the files of one split give
+    every label, so a category id means the same in each."""
     photos = _check_photos(photos)
     created = _iso_utc(date_created)
-    labels = sorted({p.label for p in photos})
+    labels = sorted({p.label for p in photos} | set(labels or ()))
     category_id = {label: i for i, label in enumerate(labels, start=1)}
     return {
         "info": {
@@ -839,6 +849,11 @@ def export_all(photos: Sequence[LabelledPhoto], *, csv=None, coco=None, folders=
     :func:`export_folders`. ``photo_folder`` and ``store`` are protected: nothing is written
     inside them. Returns, for the formats asked, ``{"csv": rows, "coco": {"images": n,
     "annotations": n, "categories": k}, "folders": counts}``.
+
+    With a ``split``, one split serves every format asked: the CSV gets a last ``split`` column,
+    COCO becomes one file per split named by :func:`split_file_name` (``labels.json`` ->
+    ``labels-train.json``, ...; every file lists every label, so category ids agree), returned
+    as ``"coco": {split: {"path": ..., "images": n, ...}}``, and folders get a level per split.
     """
     photos = _check_photos(photos)
     asked = {}
@@ -849,16 +864,31 @@ def export_all(photos: Sequence[LabelledPhoto], *, csv=None, coco=None, folders=
             asked[kind] = _absolute(value)
     if not asked:
         raise ExportError("Say what to export: a CSV file, a COCO file and/or class folders.")
-    if split is not None and "folders" not in asked:
-        raise ExportError("A split applies to class folders only; ask for class folders too.")
+    split_of = None
+    if split is not None:
+        # One split for every format: the CSV's split column, one COCO file per split, the folders.
+        parts = stratified_split(photos, split, seed)
+        split_of = {p.path: name for name, members in parts.items() for p in members}
+        if "coco" in asked:
+            whole = asked.pop("coco")
+            for name in parts:
+                asked[f"coco:{name}"] = split_file_name(whole, name)
     if mode not in ("link", "copy"):
         raise ExportError(f"mode must be 'link' or 'copy', not {mode!r}")
     protected = [(Path(p), what) for p, what in ((photo_folder, "the photo folder"),
                                                  (store, "the project store")) if p is not None]
     _check_destinations(asked, protected, overwrite)
 
-    document = coco_document(photos, description=description, date_created=date_created) \
-        if "coco" in asked else None
+    documents = {}
+    if "coco" in asked:
+        documents["coco"] = coco_document(photos, description=description, date_created=date_created)
+    elif split_of is not None:
+        every_label = {p.label for p in photos}
+        for name, members in parts.items():
+            if f"coco:{name}" in asked:
+                documents[f"coco:{name}"] = coco_document(
+                    members, description=f"{description} ({name})", date_created=date_created,
+                    labels=every_label)
     plan, kept = None, {}
     if "folders" in asked:
         if photo_folder is None or not Path(photo_folder).is_dir():
@@ -890,8 +920,13 @@ def export_all(photos: Sequence[LabelledPhoto], *, csv=None, coco=None, folders=
                 written[kind] = plan[3]
             else:
                 targets.append(_Target(dest, _new_temp_file(dest), False))
-                written[kind] = (_write_csv(targets[-1].tmp, photos) if kind == "csv"
-                                 else _write_coco(targets[-1].tmp, document))
+                if kind == "csv":
+                    written[kind] = _write_csv(targets[-1].tmp, photos, split_of)
+                elif kind == "coco":
+                    written[kind] = _write_coco(targets[-1].tmp, documents[kind])
+                else:  # one COCO file of a split: {"coco": {split: {"path", "images", ...}}}
+                    counts = _write_coco(targets[-1].tmp, documents[kind])
+                    written.setdefault("coco", {})[kind.split(":", 1)[1]] = {"path": str(dest), **counts}
         current = None
         _commit(targets)
     except OSError as e:
@@ -904,6 +939,27 @@ def export_all(photos: Sequence[LabelledPhoto], *, csv=None, coco=None, folders=
             _roll_back(t)
         raise
     return written
+
+
+def split_file_name(path, split: str) -> Path:
+    """Where the COCO file of one split goes: the split name joins the file name before its first
+    suffix (``labels.json`` -> ``labels-train.json``, ``out/labels.coco.json`` ->
+    ``out/labels-train.coco.json``)."""
+    path = Path(path)
+    stem, dot, rest = path.name.partition(".")
+    if not stem:                                     # a name starting with a dot
+        return path.with_name(f"{path.name}-{split}")
+    return path.with_name(f"{stem}-{split}{dot}{rest}")
+
+
+def folder_export_mode(directory) -> str | None:
+    """How a class-folder export holds its photos, from its marker: "link" or "copy" (copy also
+    when links failed on that disk); None when ``directory`` is not a Kinfold export."""
+    try:
+        mode = json.loads((Path(directory) / MARKER_NAME).read_text("utf-8")).get("mode")
+    except (OSError, ValueError, AttributeError):
+        return None
+    return mode if mode in ("link", "copy") else None
 
 
 def export_csv(path, photos: Sequence[LabelledPhoto], *, overwrite: bool = False,

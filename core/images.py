@@ -1,6 +1,6 @@
 """Decoding one photo to 8-bit RGB.
 
-Handles EXIF orientation, grey / palette / alpha / 16-bit / float / CMYK pixels, the first
+Handles HEIC/HEIF (pillow-heif) and AVIF (when Pillow reads it), EXIF orientation, grey / palette / alpha / 16-bit / float / CMYK pixels, the first
 frame of animated or multi-page files, and JPEG draft mode (DCT-domain downscaling, which
 makes a 12-megapixel JPEG several times cheaper to decode when only a small copy is needed).
 Only regular files are opened, and never so that the open can block. Every failure becomes a
@@ -17,6 +17,30 @@ import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
 
 IMAGE_SUFFIXES = {".jpg", ".jpeg", ".png", ".webp", ".bmp", ".tif", ".tiff", ".gif"}
+
+
+def _register_phone_formats() -> None:
+    """HEIC/HEIF (phone cameras) through the pillow-heif plugin, and AVIF when the installed Pillow
+    reads it. pillow-heif applies the HEIF rotation/mirror boxes while decoding and reports EXIF
+    orientation 1 afterwards (a phone's EXIF orientation is written into those boxes), so a HEIC photo
+    comes out upright and is not turned twice; Pillow's own AVIF reader keeps the EXIF orientation,
+    which `load_rgb` applies like a JPEG's."""
+    try:
+        from pillow_heif import register_heif_opener
+    except ImportError:  # without the plugin, .heic files are skipped as unknown formats
+        pass
+    else:
+        register_heif_opener()
+        IMAGE_SUFFIXES.update({".heic", ".heif", ".hif"})
+    try:
+        from PIL import features
+        if features.check("avif"):
+            IMAGE_SUFFIXES.add(".avif")
+    except Exception:  # an old Pillow without the "avif" feature name
+        pass
+
+
+_register_phone_formats()
 
 _EXIF_ORIENTATION = 0x0112
 _ORIENTATIONS_SWAPPING_SIDES = {5, 6, 7, 8}  # transpose / rotate 90 / transverse / rotate 270

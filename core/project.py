@@ -39,7 +39,7 @@ STORE_DIR = ".kinfold"
 DEFAULT_EXTRACTOR = "efficientnet-lite0"
 _EMBED_CHUNK = 1024          # photos embedded and committed per step, so a crash loses at most this
 _SKIPPED_FORMAT = 2          # remembered skips: final failures only, reasons without absolute paths
-_UNDOABLE = ("accept", "label", "set_aside", "clear", "split", "later", "confirm")
+_UNDOABLE = ("accept", "label", "set_aside", "clear", "split", "later", "confirm", "import", "rename")
 # Groups are formed this many at a time (each batch ranked on its own), so the first groups do not
 # depend on how many are asked for. 3 is what the yield figures were measured with (the simulator
 # asks for 3 at a time): with hold=1 its run on Fashion-MNIST 2,000 is the same, group for group,
@@ -53,6 +53,10 @@ _GRAPH_FIELDS = ("sims", "idx", "entropy", "mutual", "burst")
 
 class ProjectError(Exception):
     """A request Kinfold cannot carry out; the message says why, in one line."""
+
+
+class FolderInUse(ProjectError):
+    """The folder's project is open in another Kinfold window or command (its lock is held)."""
 
 
 @dataclass
@@ -110,7 +114,7 @@ class _Lock:
         except OSError:
             self.handle.close()
             self.handle = None
-            raise ProjectError(f"this folder is already open in another Kinfold window or command "
+            raise FolderInUse(f"this folder is already open in another Kinfold window or command "
                                f"(lock {self.path}); close it there first") from None
 
     def release(self) -> None:
@@ -813,6 +817,39 @@ class Project:
                 changes[fp] = self._new_row(fp, "labelled", label or lr.label, mistakes.CONFIRMED)
             return self.store.record_decision("confirm", self.annotator, [self._rows[i].path for i in idx],
                                               changes, label=label)
+
+    # --- cli: statistics and the set-aside list (core/statistics.py) ---
+    @_serialised
+    def statistics(self) -> "statistics.Statistics":
+        """Photos per label, labels per hour, suggestions accepted as they were, per annotator."""
+        from core import statistics
+        st = self.status()
+        return statistics.from_store(self.store, st.by_label, st.photos)
+
+    @_serialised
+    def set_aside_photos(self) -> list[str]:
+        """The photos set aside (belonging to no class), in catalogue order."""
+        labels = self.store.labels()
+        return [r.path for r in self._rows
+                if r.fingerprint in labels and labels[r.fingerprint].state == "set_aside"]
+
+    # --- import: bringing labels in, renaming and merging labels (core/label_import.py, core/label_rename.py) ---
+    def import_labels(self, csv=None, coco=None, folders=None, subfolders: bool = False, *,
+                      path_column: str | None = None, label_column: str | None = None, replace: bool = False,
+                      dry_run: bool = False, progress: Progress | None = None, cancel: Cancel | None = None):
+        """Labels from a CSV file, a COCO file, a class-folder tree (matched by content fingerprint) or the
+        photo folder's own subfolder names, as one undoable decision of kind 'import'; returns an
+        `ImportReport` (conflicts are kept unless `replace`; `dry_run` writes nothing)."""
+        from core import label_import
+        return label_import.import_labels(self, csv=csv, coco=coco, folders=folders, subfolders=subfolders,
+                                          path_column=path_column, label_column=label_column, replace=replace,
+                                          dry_run=dry_run, progress=progress, cancel=cancel)
+
+    def rename_label(self, old: str, new: str, confirm: bool = False):
+        """Rename a label (onto an existing one: merge) as one undoable decision of kind 'rename'; a new
+        name close to an existing label raises `label_rename.NameQuestion` unless `confirm`."""
+        from core import label_rename
+        return label_rename.rename_label(self, old, new, confirm=confirm)
 
 
     # --- scale: embeddings in a memory-mapped file (core/vectors.py), read only when needed ---

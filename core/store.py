@@ -573,6 +573,12 @@ class Store:
             r = self._conn().execute("SELECT id FROM relearn_versions WHERE active=1").fetchone()
         return r[0] if r else None
 
+    def taken_out_counts(self) -> dict[int, int]:
+        """Decision id -> photos taken out of the group it accepted (for the statistics)."""
+        with self._lock:
+            rows = self._conn().execute("SELECT decision, COUNT(*) FROM rejections GROUP BY decision").fetchall()
+        return {r[0]: r[1] for r in rows}
+
 
 def _proposal_row(r) -> ProposalRow:
     return ProposalRow(id=r[0], members=json.loads(r[1]), trust=r[2], suggested_label=r[3],

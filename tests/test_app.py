@@ -194,8 +194,12 @@ def test_label_a_folder_by_keyboard(qtbot, window, folder, tmp_path):
     # Outside reference: pycocotools reads the COCO file.
     from pycocotools.coco import COCO
 
-    coco = COCO(str(dest / "labels.coco.json"))
-    assert len(coco.getImgIds()) == n and {c["name"] for c in coco.loadCats(coco.getCatIds())} == set(by_label)
+    # A split writes one COCO file per split; together they hold every labelled photo once.
+    cocos = [COCO(str(f)) for f in sorted(dest.glob("labels-*.coco.json"))]
+    assert len(cocos) >= 2
+    assert sum(len(c.getImgIds()) for c in cocos) == n
+    for c in cocos:
+        assert {cat["name"] for cat in c.loadCats(c.getCatIds())} == set(by_label)
     # Outside reference: torchvision's ImageFolder reads the class folders of every split.
     from torchvision.datasets import ImageFolder
 

@@ -109,7 +109,8 @@ def test_cli_export_to_an_unwritable_folder_is_one_line(labelled, tmp_path):
     ["--folders", "OUT", "--split", "0.5,0.2,0.2,0.1"],
     ["--folders", "OUT", "--split", ""],           # silently ignored once
     ["--folders", "OUT", "--split", "a,b"],
-    ["--csv", "OUT.csv", "--split", "0.8,0.2"],    # no --folders: silently ignored once
+    # ["--csv", "OUT.csv", "--split", ...] is no longer a mistake: the CSV gets a split column
+    # (issue 20; tests/test_cli_verbs.py reads it back).
     [],                                            # nothing to export
 ])
 def test_cli_split_mistakes_are_usage_errors(labelled, tmp_path, args):

@@ -466,7 +466,8 @@ def test_export_outside_the_demo_folder_still_works(demo_folder, tmp_path, monke
         written = p.export(csv="labels.csv", coco="labels.json", folders="out", split=(0.8, 0.2))
         again = p.export(csv="labels.csv", coco="labels.json", folders="out", split=(0.8, 0.2))
     assert written == again and written["csv"] == 5
-    assert sorted(entries(work)) == ["labels.csv", "labels.json", "out"]
+    # A split gives one COCO file per split (issue 20), named after the one asked for.
+    assert sorted(entries(work)) == ["labels-train.json", "labels-val.json", "labels.csv", "out"]
 
 
 def _tree(root):
@@ -746,3 +747,36 @@ def test_reexport_removes_the_folders_kinfold_made(tmp_path, source):
     export_folders(out, photos[:3], root)
     assert entries(out) == [export.MARKER_NAME, "a_b", "val"]
     assert entries(out / "val") == ["mine.txt"]
+
+
+# ---------------------------------------------------------------------------- a split in every format (issue 20)
+
+def test_split_file_names():
+    assert export.split_file_name("labels.json", "train") == Path("labels-train.json")
+    assert export.split_file_name("out/labels.coco.json", "val") == Path("out/labels-val.coco.json")
+    assert export.split_file_name("labels", "test") == Path("labels-test")
+    assert export.split_file_name(".hidden", "test") == Path(".hidden-test")
+
+
+def test_split_csv_and_coco_files_are_replaced_as_kinfold_exports(tmp_path):
+    """A split CSV (its extra column) and the per-split COCO files are recognised as Kinfold's own, so
+    the next export replaces them without --overwrite; both read back with csv / json."""
+    from pycocotools.coco import COCO
+
+    photos = [photo(f"p{i:02d}.jpg", "ab"[i % 2]) for i in range(20)]
+    csv_path, coco_path = tmp_path / "l.csv", tmp_path / "l.json"
+    for seed in (0, 1):
+        written = export.export_all(photos, csv=csv_path, coco=coco_path, split=(0.6, 0.2, 0.2), seed=seed)
+        assert written["csv"] == 20 and set(written["coco"]) == {"train", "val", "test"}
+    assert export.is_kinfold_file(csv_path) and not coco_path.exists()
+    with open(csv_path, newline="", encoding="utf-8") as f:
+        rows = list(csv.DictReader(f))
+    expected = export.stratified_split(photos, (0.6, 0.2, 0.2), seed=1)
+    assert {r["path"]: r["split"] for r in rows} == {p.path: s for s, ps in expected.items() for p in ps}
+    ids = set()
+    for part, w in written["coco"].items():
+        coco = COCO(w["path"])
+        assert sorted(i["file_name"] for i in coco.loadImgs(coco.getImgIds())) == [p.path for p in expected[part]]
+        assert w["images"] == len(expected[part]) and w["categories"] == 2
+        ids.add(tuple((c["id"], c["name"]) for c in coco.loadCats(coco.getCatIds())))
+    assert ids == {((1, "a"), (2, "b"))}

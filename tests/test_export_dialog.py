@@ -158,3 +158,43 @@ def test_a_destination_inside_the_photo_folder_leaves_no_trace(qtbot, dialog, pr
     set_destination(qtbot, dialog, missing)
     export(qtbot, dialog)
     assert "does not exist" in dialog.report.text() and not missing.parent.exists()
+
+
+def tick(box) -> None:
+    """Click a check box on its indicator, as a user does."""
+    from PySide6.QtCore import QPoint
+    QTest.mouseClick(box, Qt.MouseButton.LeftButton, Qt.KeyboardModifier.NoModifier, QPoint(8, box.height() // 2))
+
+
+def test_a_split_without_folders_and_the_links_sentence(qtbot, dialog, project, tmp_path):
+    """Issue 20: the split serves the CSV (a split column) and COCO (one file per split, read back with
+    pycocotools) without class folders; the dialog says why links are the default and which it wrote."""
+    from pycocotools.coco import COCO
+
+    from core.export import WHY_LINKS
+
+    assert dialog.why_links.text() == WHY_LINKS and dialog.why_links.isVisible()
+    dest = tmp_path / "split-out"
+    set_destination(qtbot, dialog, dest)
+    tick(dialog.folders)
+    assert not dialog.folders.isChecked() and dialog.split.isEnabled()
+    tick(dialog.split)
+    assert dialog.split.isChecked()
+    export(qtbot, dialog)
+    with open(dest / CSV_NAME, newline="", encoding="utf-8") as f:
+        rows = list(csv.DictReader(f))
+    assert len(rows) == labelled(project) and {r["split"] for r in rows} <= {"train", "val", "test"}
+    stem, _, rest = COCO_NAME.partition(".")
+    seen = {}
+    for part in ("train", "val", "test"):
+        coco = COCO(str(dest / f"{stem}-{part}.{rest}"))
+        seen.update({img["file_name"]: part for img in coco.loadImgs(coco.getImgIds())})
+    assert seen == {r["path"]: r["split"] for r in rows}
+    assert not (dest / COCO_NAME).exists() and "COCO JSON (train)" in dialog.report.text()
+
+    # Class folders alone, default links: the report says links.
+    set_destination(qtbot, dialog, tmp_path / "linked")
+    for box in (dialog.csv, dialog.coco, dialog.folders, dialog.split):
+        tick(box)
+    export(qtbot, dialog)
+    assert "symbolic links to the originals" in dialog.report.text()

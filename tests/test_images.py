@@ -212,3 +212,75 @@ def test_named_pipe_called_jpg_is_refused_without_waiting(tmp_path):
     t.join(10)
     assert not t.is_alive(), "opening a named pipe blocked"
     assert len(errors) == 2 and all("named pipe" in str(e) and not e.retry for e in errors)
+
+
+# ------------------------------------------------------------------ phone photos: HEIC (pillow-heif), AVIF
+def _stored_for_orientation_6():
+    stored = np.zeros((40, 60, 3), np.uint8)
+    stored[:, :] = (0, 0, 255)
+    stored[:10, :15] = (255, 0, 0)  # red block in the stored top-left corner
+    return stored
+
+
+@pytest.mark.parametrize("suffix", [".heic", ".avif"])
+def test_phone_formats_with_exif_rotation_come_out_upright(tmp_path, suffix):
+    if suffix == ".heic":
+        pytest.importorskip("pillow_heif")
+    else:
+        from PIL import features
+        if not features.check("avif"):
+            pytest.skip("this Pillow does not read AVIF")
+    assert suffix in IMAGE_SUFFIXES
+    stored = _stored_for_orientation_6()
+    exif = Image.Exif()
+    exif[EXIF_ORIENTATION] = 6  # EXIF: "rotate 90 degrees clockwise to display"
+    path = tmp_path / f"phone{suffix}"
+    # Written by the format's own writer: pillow-heif (its opener is registered by core.images) or
+    # Pillow's AVIF plugin.
+    Image.fromarray(stored).save(path, quality=95, exif=exif.tobytes())
+
+    assert probe(path) == (40, 60)
+    shown = _rgb(load_rgb(path))
+    assert shown.shape == (60, 40, 3)
+    expected = np.rot90(stored, k=-1).astype(int)   # numpy's clockwise quarter turn: orientation 6
+    assert np.abs(shown - expected).mean() < 8      # lossy coding only
+    assert shown[2, -2, 0] > 200 and shown[2, -2, 2] < 60  # red block now top-right
+
+
+def test_heic_photo_with_exif_rotation_is_scanned_and_embedded_upright(photo_project_folder):
+    pytest.importorskip("pillow_heif")
+    from skimage import data
+
+    from core.project import Project
+
+    upright = Image.fromarray(data.chelsea()).convert("RGB")            # 451 x 300
+    extra = photo_project_folder / "phone"
+    extra.mkdir()
+    upright.save(extra / "upright.jpg", quality=95)
+    sideways = upright.transpose(Image.Transpose.ROTATE_90)           # as a phone held sideways stores it
+    sideways.save(extra / "sideways.jpg", quality=95)                 # ... without saying so
+    exif = Image.Exif()
+    exif[EXIF_ORIENTATION] = 6
+    sideways.save(extra / "IMG_0001.HEIC", quality=95, exif=exif.tobytes())   # ... saying so (pillow-heif)
+    with Project.open(photo_project_folder) as p:
+        rep = p.scan()
+        assert rep.embedded == 3 and "phone/IMG_0001.HEIC" not in dict(rep.skipped)
+        info = p.photo_info("phone/IMG_0001.HEIC")
+        assert (info["width"], info["height"]) == upright.size
+        sims = dict(p.neighbours("phone/IMG_0001.HEIC", k=40))
+    # The embedding is the upright photo's (the same picture), not the sideways one's (measured: 0.998
+    # against the upright JPEG, 0.81 against the sideways one).
+    assert sims["phone/upright.jpg"] > 0.95
+    assert sims["phone/upright.jpg"] > sims.get("phone/sideways.jpg", -1.0) + 0.05
+
+
+def test_cut_short_heic_is_a_final_photo_error(tmp_path):
+    pytest.importorskip("pillow_heif")
+    noise = np.random.default_rng(0).integers(0, 255, (300, 400, 3), np.uint8)
+    Image.fromarray(noise).save(tmp_path / "full.heic", quality=80)      # written by pillow-heif
+    data = (tmp_path / "full.heic").read_bytes()
+    for name, cut in (("half.heic", data[: len(data) // 2]), ("head.heic", data[:200])):
+        (tmp_path / name).write_bytes(cut)
+        with pytest.raises(PhotoError) as err:
+            load_rgb(tmp_path / name)
+        assert not err.value.retry and str(tmp_path) not in str(err.value)
