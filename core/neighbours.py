@@ -187,19 +187,50 @@ def _exact(src: Source, k: int, temperature: float, progress, cancel, want_entro
     idx = np.empty((n, k), np.int64)
     ent = np.zeros(n, np.float64)
 
+    # The neighbours come from faiss's exact inner-product search (as before this module searched
+    # at scale, so a collection below the limit keeps exactly the neighbours it had); the entropy
+    # from the same block's products.
+    index = faiss.IndexFlatIP(x.shape[1])
+    index.add(x)
+    kk = min(k + 1, n)
+
     def block(start: int) -> int:
         stop = min(start + _BLOCK, n)
-        z = x[start:stop] @ x.T
-        z[np.arange(stop - start), np.arange(start, stop)] = -np.inf
-        sims[start:stop], idx[start:stop] = _top_k(z, k)
+        s, i = index.search(x[start:stop], kk)
+        sims[start:stop], idx[start:stop] = _drop_self(s, i, k, start)
         if want_entropy:
+            z = x[start:stop] @ x.T
+            z[np.arange(stop - start), np.arange(start, stop)] = -np.inf
             zt = z / temperature
             m = zt.max(1)
             ent[start:stop] = _entropy_from_parts(*_entropy_parts(zt, np.where(np.isfinite(m), m, 0.0)))
         return stop - start
 
-    _run_blocks(block, range(0, n, _BLOCK), n, progress, cancel)
+    threads = faiss.omp_get_max_threads()
+    faiss.omp_set_num_threads(1)                          # see _run_blocks: one thread per worker
+    try:
+        _run_blocks(block, range(0, n, _BLOCK), n, progress, cancel)
+    finally:
+        faiss.omp_set_num_threads(threads)
     return sims, idx, ent.astype(np.float32)
+
+
+def _drop_self(sims: np.ndarray, idx: np.ndarray, k: int, offset: int = 0) -> tuple[np.ndarray, np.ndarray]:
+    """Leave each row's own photo (row offset + r) out of faiss's k + 1 results."""
+    n = len(idx)
+    rows = offset + np.arange(n)[:, None]
+    is_self = idx == rows
+    # Where self is missing from the list (exact duplicates can push it out), drop the last entry.
+    no_self = ~is_self.any(axis=1)
+    is_self[no_self, -1] = True
+    keep = ~is_self
+    out_i = idx[keep].reshape(n, -1)[:, :k]
+    out_s = sims[keep].reshape(n, -1)[:, :k]
+    if out_i.shape[1] < k:
+        pad = k - out_i.shape[1]
+        out_i = np.pad(out_i, ((0, 0), (0, pad)), constant_values=-1)
+        out_s = np.pad(out_s, ((0, 0), (0, pad)), constant_values=-np.inf)
+    return np.ascontiguousarray(out_s, np.float32), np.ascontiguousarray(out_i, np.int64)
 
 
 def _run_blocks(block: Callable[[int], int], items, total: int, progress, cancel, message: str = "neighbours") -> None:
