@@ -248,6 +248,30 @@ def cmd_undo(args):
             print(f"undid decision {done['decision']} ({done['kind']}): {done['photos']} photos back as they were")
 
 
+def cmd_redo(args):
+    with _open(args) as p:
+        done = p.redo()
+        if args.json:
+            _print(done, True)
+        else:
+            print(f"redid the {done['kind'].replace('_', ' ')} as decision {done['decision']}: "
+                  f"{done['photos']} photos as it left them")
+
+
+def cmd_browse(args):
+    with _open(args, lock=False) as p:   # only reads: works while the window has the folder open
+        found = p.browse(state=args.state, label=args.label, subfolder=args.subfolder, name=args.name,
+                         offset=args.offset, limit=args.limit)
+        if args.json:
+            _print({"total": found.total, "offset": found.offset,
+                    "photos": [dataclasses.asdict(b) for b in found.photos]}, True)
+            return
+        for line in _table([(b.path, b.state, b.label or "") for b in found.photos]):
+            print(line)
+        sys.stdout.flush()    # the table first, then the count on stderr
+        print(f"{len(found.photos)} of {found.total} matching photos shown (from {found.offset})", file=sys.stderr)
+
+
 def cmd_mistakes(args):
     with _open(args, lock=False) as p:   # only reads: works while the window has the folder open
         found = p.likely_mistakes(limit=args.limit)
@@ -580,7 +604,17 @@ def build_parser() -> argparse.ArgumentParser:
     s = verb("set-aside", cmd_set_aside, "mark photos as belonging to no class")
     s.add_argument("paths", nargs="+", help=_PATHS_HELP)
     verb("undo", cmd_undo, "reverse the last label decision")
+    verb("redo", cmd_redo, "apply again the decision the last undo reversed (only right after an undo)")
     verb("status", cmd_status, "counts by state and label")
+    s = verb("browse", cmd_browse, "list photos by state, label, subfolder or file name (path, state, label)")
+    s.add_argument("--state", choices=["unlabelled", "aside", "labelled"], help="only photos in this state")
+    s.add_argument("--label", help="only photos carrying this label")
+    s.add_argument("--subfolder", help="only photos inside this folder ('.' for the top level)")
+    s.add_argument("--name", help="text the file name contains")
+    s.add_argument("--offset", type=_whole(0, 10**12, "--offset"), default=0,
+                   help="skip this many matching photos first (default 0)")
+    s.add_argument("--limit", type=_whole(1, 10**12, "--limit"), default=None,
+                   help="list at most this many (default: all)")
     s = verb("mistakes", cmd_mistakes, "labelled photos whose label is most likely wrong, likeliest first")
     s.add_argument("--limit", type=_whole(1, 1_000_000, "--limit"), default=20, help="photos listed (default 20)")
     s = verb("confirm", cmd_confirm, "say the photos' labels are right (or, with --label, fix them): they "

@@ -25,6 +25,8 @@ from typing import Callable
 import numpy as np
 from PIL import Image, ImageDraw, ImageFilter
 
+from core.atomic import write_bytes
+
 PART_CLASSES = ("hex_nut", "washer", "wood_screw", "coil_spring", "spur_gear",
                 "cartridge_fuse", "resistor", "aa_battery", "led", "key_blank")
 ODD, BROKEN, NON_IMAGE = "odd", "broken", "non_image"
@@ -763,12 +765,6 @@ def _render(shot: dict) -> bytes:
     return data
 
 
-def _atomic_write(path: Path, data: bytes) -> None:
-    tmp = path.with_name(path.name + ".tmp")
-    tmp.write_bytes(data)
-    os.replace(tmp, path)
-
-
 def _clear_previous(out_dir: Path, truth_csv: Path, replace: bool) -> None:
     """Refuse to mix with other files; with replace, remove only the files a previous run listed in its truth."""
     existing = [p for p in out_dir.rglob("*") if p.is_file()
@@ -813,18 +809,18 @@ def generate_demo(out_dir: str | os.PathLike, truth_csv: str | os.PathLike, seed
     for i, shot in enumerate(shots):
         rel = "/".join(p for p in (shot["folder"], f"IMG_{shot['number']:04d}.{shot['format']}") if p)
         (out / rel).parent.mkdir(parents=True, exist_ok=True)
-        _atomic_write(out / rel, _render(shot))
+        write_bytes(out / rel, _render(shot))
         truth[rel] = shot["cls"]
         if progress:
             progress(i + 1, len(shots), rel)
-    _atomic_write(out / "notes.txt", _NOTE.encode("utf-8"))
+    write_bytes(out / "notes.txt", _NOTE.encode("utf-8"))
     truth["notes.txt"] = NON_IMAGE
     truth_path.parent.mkdir(parents=True, exist_ok=True)
     buf = io.StringIO(newline="")
     writer = csv.writer(buf)                                    # RFC 4180 quoting, CRLF line ends
     writer.writerow(("path", "class"))
     writer.writerows(sorted(truth.items()))
-    _atomic_write(truth_path, buf.getvalue().encode("utf-8"))
+    write_bytes(truth_path, buf.getvalue().encode("utf-8"))
     return truth
 
 

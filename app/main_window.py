@@ -34,10 +34,11 @@ from app.jobs import Job
 from app.mistakes_page import KEYS as MISTAKES_KEYS, MistakesPage
 from app.pages import GroupPage, ReviewPage, ScanPage, StartPage, action_button, scan_summary
 from app.photo_grid import PhotoModel
-from app.preview import PreviewDialog
+from app.preview import KEYS as PREVIEW_KEYS, PreviewDialog
+from app.browse_page import KEYS as BROWSE_KEYS, PAGE as BROWSE_PAGE, BrowseModel, BrowsePage
 from app.side_panel import SidePanel, photos
 from app.thumbnails import Thumbnails
-from core.label_names import near_duplicates, shown_suggestion
+from core.label_names import near_duplicates, number_keys, shown_suggestion
 from core.project import Project, ProjectError
 from core.proposals import MIN_SPLIT
 from core.store import StoreError
@@ -163,8 +164,14 @@ class MainWindow(QMainWindow):
         self.review_model = PhotoModel(self.thumbs, self)
         self.review_page = ReviewPage(self.review_model)
         self.mistakes_page = MistakesPage(self.thumbs)
+        self.browse_model = BrowseModel(self.thumbs, self)
+        self.browse_page = BrowsePage(self.browse_model)
+        self.browse_folders: list = []      # [(subfolder, photos)], read when the browse page opens
+        self.browse_serial = 0              # the newest browse query; older answers are dropped
+        self.browse_loading = False
+        self.number_keys: dict[str, int] = {}   # label -> its number key (1-9), most used first
         self.stack = QStackedWidget()
-        for page in (self.start, self.scan_page, self.work, self.review_page, self.mistakes_page):
+        for page in (self.start, self.scan_page, self.work, self.review_page, self.mistakes_page, self.browse_page):
             self.stack.addWidget(page)
         container = QWidget()
         lay = QVBoxLayout(container)
@@ -177,10 +184,10 @@ class MainWindow(QMainWindow):
         self.start.choose_requested.connect(self.choose_folder)
         self.start.open_requested.connect(self.open_folder)
         self.group_page.label.accept_requested.connect(self.accept)
-        self.group_page.grid.typed.connect(lambda t: self._start_label(self.group_page.label, t))
+        self.group_page.grid.typed.connect(lambda t: self._typed(self.group_page.label, t))
         self.group_page.grid.opened.connect(self.preview)
         self.review_page.grid.opened.connect(self.preview)
-        self.review_page.grid.typed.connect(lambda t: self._start_label(self.review_page.new_label, t))
+        self.review_page.grid.typed.connect(lambda t: self._typed(self.review_page.new_label, t, focus=True))
         self.review_page.labels.currentItemChanged.connect(lambda it, _: it and self._show_review(
             it.data(Qt.ItemDataRole.UserRole)))
         # The review field's Return arrives as accept_requested (LabelField keeps Return to itself).
@@ -192,6 +199,7 @@ class MainWindow(QMainWindow):
         self.mistakes_page.confirm_requested.connect(self.confirm_mistake)
         self.mistakes_page.fix_requested.connect(self.fix_mistake)
         self.mistakes_page.back.connect(self.back_to_groups)
+        self._wire_browse()
         self.stack.currentChanged.connect(lambda _: self._sync_actions())
         for lst in (self.side.labels, self.review_page.labels):   # right-click a label: Rename…
             lst.setContextMenuPolicy(Qt.ContextMenuPolicy.CustomContextMenu)
@@ -209,9 +217,13 @@ class MainWindow(QMainWindow):
             # Not Ctrl+N: most people know it as "new"; setting aside a whole group also asks first.
             ("aside", "Set aside", ["Ctrl+Shift+A"], "Group", self.set_aside),
             ("undo", "Undo", ["Ctrl+Z"], "Group", self.undo),
+            ("redo", "Redo", ["Ctrl+Shift+Z"], "Group", self.redo),
+            ("keep", "Keep only these", ["Ctrl+K"], "Group", self.keep_only),
             ("preview", "Preview", ["Ctrl+P"], "Views", self.preview),
             ("review", "Review labels", ["Ctrl+R"], "Views", self.open_review),
             ("mistakes", "Find mistakes", ["Ctrl+M"], "Views", self.open_mistakes),
+            ("browse", "Browse all photos", ["Ctrl+B"], "Views", self.open_browse),
+            ("find", "Filter by file name", ["Ctrl+F"], "Views", self.focus_browse_name),
             ("stats", "Statistics…", ["Ctrl+Shift+S"], "Views", self.open_statistics),
             ("help", "Keys", ["F1", "?"], "Views", lambda: self.help.toggle()),
             ("open", "Open folder…", ["Ctrl+O"], "Folder", self.choose_folder),
@@ -230,6 +242,11 @@ class MainWindow(QMainWindow):
             "aside": "Mark the taken-out photos — or, if none, the whole group (asks first) — as belonging "
                      "to no class",
             "undo": "Reverse the last decision (repeat to go further back)",
+            "redo": "Apply again what the last undo reversed (only right after an undo)",
+            "keep": "Swap in and out: the photos taken out are kept, every other one is taken out "
+                    "(click the few that belong, then this)",
+            "browse": "Every photo of the folder, by state, label, subfolder or file name",
+            "find": "In the browse view: type part of a file name",
             "preview": "Show the photo full size with its nearest photos (or double-click it)",
             "relearn": "Relearn from the decisions so far, then propose again",
             "mistakes": "Labelled photos whose label is most likely wrong, one at a time: confirm or fix each",
@@ -252,8 +269,8 @@ class MainWindow(QMainWindow):
     def _make_menus(self) -> None:
         bar = self.menuBar()
         for title, keys in (("&Folder", ("open", "import", "export", "relearn", "close", "quit")),
-                            ("&Group", ("accept", "toggle", "split", "later", "aside", "undo")),
-                            ("&View", ("preview", "review", "mistakes", "stats", "rename", "help"))):
+                            ("&Group", ("accept", "toggle", "keep", "split", "later", "aside", "undo", "redo")),
+                            ("&View", ("preview", "review", "mistakes", "browse", "find", "stats", "rename", "help"))):
             menu = bar.addMenu(title)
             for k in keys:
                 menu.addAction(self.actions[k])
@@ -264,7 +281,9 @@ class MainWindow(QMainWindow):
             keys = "  or  ".join(s.toString(QKeySequence.SequenceFormat.NativeText) for s in a.shortcuts())
             sections.setdefault(a.property("section"), []).append((keys, a.text()))
         return [(t, rows) for t, rows in sections.items()] + [("In the grid", GRID_KEYS),
-                                                               ("Finding mistakes", MISTAKES_KEYS)]
+                                                               ("Finding mistakes", MISTAKES_KEYS),
+                                                               ("Preview", PREVIEW_KEYS),
+                                                               ("Number keys, browsing", BROWSE_KEYS)]
 
     def _sync_actions(self) -> None:
         page = self.stack.currentWidget()
@@ -275,7 +294,13 @@ class MainWindow(QMainWindow):
         # The engine offers a split only for groups large enough to hold two parts worth confirming.
         self.actions["split"].setEnabled(on_group and self.current().splittable)
         self.actions["preview"].setEnabled(idle and page in (self.work, self.review_page))
-        self.actions["undo"].setEnabled(idle and page in (self.work, self.review_page, self.mistakes_page))
+        self.actions["undo"].setEnabled(idle and page in (self.work, self.review_page, self.mistakes_page,
+                                                          self.browse_page))
+        self.actions["redo"].setEnabled(self.actions["undo"].isEnabled())
+        self.actions["keep"].setEnabled(on_group)
+        self.actions["browse"].setEnabled(idle and page in (self.work, self.review_page))
+        self.actions["find"].setEnabled(idle and page is self.browse_page)
+        self.actions["preview"].setEnabled(idle and page in (self.work, self.review_page, self.browse_page))
         self.actions["review"].setEnabled(idle and page is self.work)
         self.actions["mistakes"].setEnabled(idle and page in (self.work, self.review_page))
         self.actions["export"].setEnabled(idle and page in (self.work, self.review_page))
@@ -358,6 +383,7 @@ class MainWindow(QMainWindow):
         self.group_model.set_photos([])
         self.review_model.set_photos([])
         self.mistakes_page.show_queue([])
+        self.browse_model.set_photos([])
         self.setWindowTitle("Kinfold")
         self.stack.setCurrentWidget(self.start)
         self._sync_actions()
@@ -527,7 +553,7 @@ class MainWindow(QMainWindow):
 
     def _is_own_popup(self, win) -> bool:
         return any(win is f.completer().popup() for f in (self.group_page.label, self.review_page.new_label,
-                                                          self.mistakes_page.fix))
+                                                          self.mistakes_page.fix, self.browse_page.new_label))
 
     def _deliver_held(self) -> None:
         """Deliver the held keys as a window system does: ShortcutOverride to the focus widget (or the
@@ -556,7 +582,7 @@ class MainWindow(QMainWindow):
             where.say(f"{refused} was pressed before this was on screen, so it decided nothing: "
                       "press it again to apply it here.", problem=True)
 
-    _DECIDING = ("accept", "split", "later", "aside", "undo")
+    _DECIDING = ("accept", "split", "later", "aside", "undo", "redo")
 
     def _decides(self, key, mods) -> bool:
         plain = mods & ~Qt.KeyboardModifier.KeypadModifier
@@ -582,6 +608,9 @@ class MainWindow(QMainWindow):
             self._fill_review(*view.review)
         elif self.stack.currentWidget() is self.review_page and not view.status.by_label:
             self.back_to_groups()
+        if self.stack.currentWidget() is self.browse_page:   # a decision may move photos in or out of view
+            self.browse_page.set_choices(list(view.status.by_label), self.browse_folders)
+            self._browse_query(keep=True)
 
     # -- the group ----------------------------------------------------------------------------
     def current(self):
@@ -607,6 +636,8 @@ class MainWindow(QMainWindow):
         names = list(self.status.by_label)
         self.group_page.label.set_names(names)
         self.review_page.new_label.set_names(names)
+        self.browse_page.new_label.set_names(names)
+        self.number_keys = number_keys(self.status.by_label)
         if len(self.groups) > 1:  # so the next group appears without waiting for its thumbnails
             nxt = self.groups[1].members
             self.thumbs.prefetch(nxt, self.group_page.grid.side_for(len(nxt)))
@@ -730,7 +761,7 @@ class MainWindow(QMainWindow):
 
     def undo(self) -> None:
         where = self.stack.currentWidget()
-        where = where if where in (self.review_page, self.mistakes_page) else self.group_page
+        where = where if where in (self.review_page, self.mistakes_page, self.browse_page) else self.group_page
         if self._busy(where):
             return
 
@@ -760,7 +791,9 @@ class MainWindow(QMainWindow):
     def preview(self, path: str | None = None) -> None:
         if self.project is None or self._busy():
             return
-        grid = self.review_page.grid if self.stack.currentWidget() is self.review_page else self.group_page.grid
+        page = self.stack.currentWidget()
+        grid = {self.review_page: self.review_page.grid, self.browse_page: self.browse_page.grid}.get(
+            page, self.group_page.grid)
         path = path or grid.current_path()
         if not path:
             return
@@ -768,12 +801,16 @@ class MainWindow(QMainWindow):
 
         def fetch(p, then):
             """The dialog's engine reads, on the engine thread; `then(info, near)` on the GUI thread."""
-            job = Job("preview", lambda progress, cancel: (project.photo_info(p), project.neighbours(p, 8)), self)
+            job = Job("preview", lambda progress, cancel: (project.photo_info(p), project.neighbours_labelled(p, 8)),
+                      self)
             job.finished.connect(lambda r: then(*r))
             job.failed.connect(lambda m: self.group_page.say(f"preview failed: {m}", problem=True))
             job.start()
 
-        dlg = PreviewDialog(fetch, self.thumbs, path, self)
+        on_group = page is self.work
+        dlg = PreviewDialog(fetch, self.thumbs, path, self, sequence=grid.photo_model().paths,
+                            toggle=self._toggle_path if on_group else None,
+                            is_out=(lambda q: q in self.group_model.out) if on_group else None)
         dlg.setStyleSheet(theme.STYLE)
         dlg.open()
         self.last_preview = dlg
@@ -819,8 +856,9 @@ class MainWindow(QMainWindow):
     def _show_review(self, label: str) -> None:
         if self.project is None or self._busy(self.review_page):
             return
-        self._act("review", lambda p: p.review(label),
-                  lambda view: self._review_rows(label, view.result), where=self.review_page)
+        # engine_view reads the review of the label current in the list (set by _fill_review), and
+        # _apply shows it: the label's photos are ranked and put in the grid once, not twice.
+        self._act("review", None, where=self.review_page)
 
     def _review_rows(self, label: str, rows) -> None:
         self.review_model.set_photos([p for p, _ in rows], [f"typicality {t:.2f}" for _, t in rows])
@@ -997,3 +1035,135 @@ class MainWindow(QMainWindow):
         dlg.setStyleSheet(theme.STYLE)
         self.last_rename = dlg
         dlg.open()
+
+    # --- browse: the browse page, number keys, redo, keep only these, preview steps ---------------
+    def _wire_browse(self) -> None:
+        # A label of thousands of photos: every card has one size, laid out in batches between events.
+        for grid in (self.review_page.grid,):
+            grid.setUniformItemSizes(True)
+            grid.setLayoutMode(grid.LayoutMode.Batched)
+            grid.setBatchSize(200)
+        page = self.browse_page
+        page.query_changed.connect(lambda: self._browse_query())
+        page.more_wanted.connect(lambda: self._browse_query(append=True))
+        page.label_requested.connect(self.browse_label)
+        page.aside_requested.connect(lambda paths: self._browse_decide(
+            "set aside", lambda p: p.set_aside(paths), f"Set {photos(len(paths))} aside as no class.", "set_aside"))
+        page.clear_requested.connect(lambda paths: self._browse_decide(
+            "remove", lambda p: p.clear(paths), f"Removed the label from {photos(len(paths))}; back in the pool.",
+            "clear"))
+        page.back.connect(self.back_to_groups)
+        page.grid.opened.connect(self.preview)
+        page.grid.typed.connect(lambda t: self._typed(page.new_label, t, focus=True))
+
+    def open_browse(self) -> None:
+        if self.project is None or self._busy():
+            return
+        page = self.browse_page
+        self.stack.setCurrentWidget(page)
+        names = list(self.status.by_label) if self.status else []
+        page.set_choices(names, self.browse_folders)
+        page.grid.setFocus()
+        project = self.project
+        job = Job("browse folders", lambda progress, cancel: project.subfolders(), self)
+
+        def folders(found):
+            self.browse_folders = found
+            page.set_choices(names, found)
+        job.finished.connect(folders)
+        job.failed.connect(lambda m: page.say(f"listing the folders failed: {m}", problem=True))
+        job.start()
+        self._browse_query()
+
+    def focus_browse_name(self) -> None:
+        if self.stack.currentWidget() is self.browse_page:
+            self.browse_page.focus_name()
+
+    def _browse_query(self, append: bool = False, keep: bool = False) -> None:
+        """Ask the engine for the photos matching the page's filters: the first page (`keep`: as many
+        as are loaded now, after a decision), or (`append`) the next page after those loaded."""
+        page, project = self.browse_page, self.project
+        if project is None or (append and self.browse_loading):
+            return
+        filters = page.filters()
+        offset = page.loaded() if append else 0
+        limit = max(BROWSE_PAGE, page.loaded()) if keep else BROWSE_PAGE
+        self.browse_serial += 1
+        serial = self.browse_serial
+        self.browse_loading = append
+        job = Job("browse", lambda progress, cancel: project.browse(offset=offset, limit=limit, **filters), self)
+
+        def shown_(found):
+            if serial != self.browse_serial or self.project is not project:
+                return  # a newer query was asked for meanwhile, or the folder closed
+            self.browse_loading = False
+            page.show_page(found, append)
+
+        def failed(message):
+            if serial == self.browse_serial:
+                self.browse_loading = False
+                page.say(message, problem=True)
+        job.finished.connect(shown_)
+        job.failed.connect(failed)
+        job.start()
+
+    def browse_label(self, paths: list, label: str) -> None:
+        page = self.browse_page
+        if self._busy(page):
+            return
+        label = self._settle_label(label, page)
+        if label is None:
+            return
+        page.new_label.reset()
+        page.grid.setFocus()
+        self._browse_decide("label", lambda p: p.label(paths, label), f"Labelled {photos(len(paths))} “{label}”.",
+                            "label")
+
+    def _browse_decide(self, name: str, call, said: str, counts: str) -> None:
+        page = self.browse_page
+        self._act(name, call, lambda view: page.say(said), counts=counts, where=page)
+
+    def _typed(self, field, text: str, focus: bool = False) -> None:
+        """A key typed on a grid: a number key 1-9 fills the label field with the label of that number
+        (the side panel shows the numbers); any other key starts typing a label. `focus`: the field
+        takes the keyboard after a number key too (where Return in the field is what applies it)."""
+        by_key = {k: name for name, k in self.number_keys.items()}
+        if text.isdigit() and len(text) == 1 and int(text) in by_key:
+            field.reset(by_key[int(text)])
+            if focus:
+                field.setFocus(Qt.FocusReason.ShortcutFocusReason)
+            return
+        self._start_label(field, text)
+
+    def redo(self) -> None:
+        where = self.stack.currentWidget()
+        where = where if where in (self.review_page, self.mistakes_page, self.browse_page) else self.group_page
+        if self._busy(where):
+            return
+
+        def done(view):
+            redone = view.result
+            where.say(f"Redid the {redone['kind'].replace('_', ' ')} ({photos(redone['photos'])}).")
+            if where is self.mistakes_page:
+                self._load_mistakes()
+
+        self._act("redo", lambda p: p.redo(), done, counts="redo", where=where)
+
+    def keep_only(self) -> None:
+        """Swap the take-outs of the current group: the photos taken out are kept, the rest go out."""
+        m = self.group_model
+        if self.current() is None or not m.paths:
+            return
+        m.out = set(m.paths) - m.out
+        m.dataChanged.emit(m.index(0), m.index(len(m.paths) - 1))
+        m.out_changed.emit()
+        kept = len(m.paths) - len(m.taken_out())
+        self.group_page.say(f"Keeping only {photos(kept)}; the other {len(m.taken_out())} are taken out "
+                            "(Ctrl+K again swaps back).")
+
+    def _toggle_path(self, path: str) -> bool:
+        """Space in a preview opened from the group: take the photo out or put it back."""
+        m = self.group_model
+        if path in m.paths:
+            m.toggle(m.paths.index(path))
+        return path in m.out

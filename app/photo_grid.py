@@ -177,7 +177,8 @@ class PhotoCard(QStyledItemDelegate):
             painter.setFont(font)
             painter.setPen(QColor(theme.MUTED))
             painter.drawText(text_rect.translated(0, fm.height() + 2), Qt.AlignmentFlag.AlignHCenter,
-                             str(index.data(NOTE_ROLE) or ""))
+                             fm.elidedText(str(index.data(NOTE_ROLE) or ""), Qt.TextElideMode.ElideRight,
+                                           text_rect.width()))
         if current:  # the keyboard position: a thick outline, visible without colour vision
             painter.setBrush(Qt.BrushStyle.NoBrush)
             painter.setPen(QPen(QColor(theme.INK), 3))

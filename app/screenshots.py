@@ -134,6 +134,7 @@ def render(out: Path, source: Path) -> list[Path]:
         written.append(out / "5-preview.png")
         dlg.close()
 
+
         w.open_review()
         _wait(app, w.idle, 60)
         grid = w.review_page.grid
@@ -141,6 +142,39 @@ def render(out: Path, source: Path) -> list[Path]:
         _settle(app, 1.5)
         _save(w, out / "6-review.png")
         written.append(out / "6-review.png")
+
+        # 12: the preview at 100 % and more, moved with the arrow keys, the neighbours with their labels.
+        from PySide6.QtTest import QTest
+        w.preview(w.review_model.paths[-1])   # a typical photo of a label: its neighbours carry labels
+        dlg = w.last_preview
+        _wait(app, lambda: bool(dlg.near_model.paths) and dlg.picture.photo_size is not None, 30)
+        dlg.resize(1000, 720)
+        _settle(app, 0.5)
+        for k in (Qt.Key.Key_Z, Qt.Key.Key_Plus, Qt.Key.Key_Plus, Qt.Key.Key_Plus, Qt.Key.Key_Plus,
+                  Qt.Key.Key_Right, Qt.Key.Key_Down):
+            QTest.keyClick(dlg.picture, k)
+        _settle(app, 1.5)
+        _save(dlg, out / "12-preview-zoom.png")
+        written.append(out / "12-preview-zoom.png")
+        dlg.close()
+        w.back_to_groups()
+
+        # 11: every photo, browsed: not labelled ones in one subfolder, two selected, a label typed.
+        w.open_browse()
+        page = w.browse_page
+        _wait(app, lambda: w.idle() and page.folder.count() > 1 and page.total > 0, 60)
+        page.state.setCurrentIndex(page.state.findData("unlabelled"))
+        page.folder.setCurrentIndex(2 if page.folder.count() > 2 else 1)
+        _wait(app, lambda: w.idle() and page.model.paths and all(n.startswith("no label") for n in page.model.notes), 60)
+        _settle(app, 0.5)
+        sel = page.grid.selectionModel()
+        for row in (0, 1):
+            sel.select(page.model.index(row), sel.SelectionFlag.Select)
+        page.new_label.setText(name_of(page.model.paths[:1]))
+        page.say("Select photos, type a label (or press its number key), Return: they are labelled.")
+        _settle(app, 1.5)
+        _save(w, out / "11-browse.png")
+        written.append(out / "11-browse.png")
         w.back_to_groups()
 
         if len(w.status.by_label) >= 2:   # the mistakes list needs two labels to compare

@@ -7,6 +7,7 @@ from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QProgressBar, QVBoxLayout, QWidget
 
 from app.chart import LabelledChart
+from core.label_names import number_keys
 
 
 def _heading(text: str) -> QLabel:
@@ -87,8 +88,11 @@ class SidePanel(QWidget):
             self.next_list.addItem("nothing after this group")
         current = self.labels.currentItem().data(Qt.ItemDataRole.UserRole) if self.labels.currentItem() else None
         self.labels.clear()
+        keys = number_keys(status.by_label)     # the most used labels' number keys, shown beside them
         for name, count in status.by_label.items():
-            it = QListWidgetItem(f"{name}  —  {count}")
+            it = QListWidgetItem(f"{keys[name]}   {name}  —  {count}" if name in keys else f"     {name}  —  {count}")
+            if name in keys:
+                it.setToolTip(f"Key {keys[name]} on the photos puts “{name}” in the label field")
             it.setData(Qt.ItemDataRole.UserRole, name)
             self.labels.addItem(it)
             if name == current:

@@ -28,6 +28,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
+from core.atomic import write_with  # noqa: E402
 from core.embedding import embed_files, get_extractor  # noqa: E402
 from core.images import IMAGE_SUFFIXES, load_rgb  # noqa: E402
 
@@ -60,9 +61,8 @@ def _make_photo(i: int) -> str:
     x0, y0 = rng.integers(0, w - cw + 1), rng.integers(0, h - ch + 1)
     big = base.resize(SIZE, Image.Resampling.BICUBIC, box=(x0, y0, x0 + cw, y0 + ch))
     pixels = np.asarray(big, dtype=np.int16) + rng.normal(0, 4, (SIZE[1], SIZE[0], 3)).astype(np.int16)
-    tmp = path.with_suffix(".part")
-    Image.fromarray(np.clip(pixels, 0, 255).astype(np.uint8)).save(tmp, "JPEG", quality=90)
-    os.replace(tmp, path)
+    write_with(path, lambda tmp: Image.fromarray(np.clip(pixels, 0, 255).astype(np.uint8)).save(tmp, "JPEG",
+                                                                                                  quality=90))
     return str(path)
 
 

@@ -541,7 +541,7 @@ class Checker:
             rejections = {(r[0], r[1], r[2]) for r in db.execute("SELECT fingerprint, label, decision FROM rejections")}
             ext = db.execute("SELECT value FROM settings WHERE key='extractor_id'").fetchone()
             ext = json.loads(ext[0]) if ext else None
-            embedded = {r[0] for r in db.execute("SELECT fingerprint FROM embeddings WHERE extractor=?", (ext,))}
+            embedded = {r[0] for r in db.execute("SELECT fingerprint FROM vector_rows WHERE extractor=?", (ext,))}
             photos = sorted(r[0] for r in db.execute("SELECT path, fingerprint FROM photos") if r[1] in embedded)
             path_fp = dict(db.execute("SELECT path, fingerprint FROM photos").fetchall())
         finally:

@@ -84,6 +84,7 @@ def run_demo(rate: float, seed: int, work: Path) -> None:
         with p.store.transaction() as db:   # start from no labels, every run
             for t in ("labels", "decisions", "proposals", "deferred", "rejections", "relearn_versions"):
                 db.execute(f"DELETE FROM {t}")
+        p.reload()                          # the tables changed behind the project's back
         paths = [q for q in p.photos() if q in truth]
         classes = sorted({truth[q] for q in paths})
         y = np.array([classes.index(truth[q]) for q in paths])

@@ -87,7 +87,7 @@ def geometry_figures(project: Project, truth: dict[str, str], top: int = 100) ->
     hit = (y[np.maximum(idx, 0)] == y[:, None]) & ok
     purity = float(hit.sum() / max(ok.sum(), 1))
     # Over the photos still unlabelled: the relearned head was trained on the others' labels.
-    free = project._state_arrays()[0] == FREE
+    free = project.label_arrays()[0] == FREE
     purity_free = float(hit[free].sum() / max(ok[free].sum(), 1)) if free.any() else float("nan")
     groups = project.propose(limit=top, hold=0)
     sizes = [len(gr.members) for gr in groups]
@@ -313,7 +313,7 @@ def _reset_decisions(p: Project) -> None:
     with p.store.transaction() as db:
         for t in ("labels", "decisions", "proposals", "deferred", "rejections", "relearn_versions"):
             db.execute(f"DELETE FROM {t}")
-    p._graph = None
+    p.reload()                              # the tables changed behind the project's back
 
 
 if __name__ == "__main__":

@@ -14,7 +14,7 @@ from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Iterable, NamedTuple, Protocol, Sequence
+from typing import Callable, Iterable, NamedTuple, Protocol, Sequence, runtime_checkable
 
 import numpy as np
 import torch
@@ -41,11 +41,25 @@ Progress = Callable[[int, int, str], None]
 Cancel = Callable[[], bool]
 
 
+@runtime_checkable
 class Extractor(Protocol):
-    id: str  # model, weights and precision, e.g. "efficientnet-lite0:imagenet:bf16"
+    """What Kinfold needs of a backbone; any object with these five members can be handed to
+    `Project.open(folder, extractor=obj)` (tests/test_custom_extractor.py plugs in a tiny one).
+
+    - ``id``: names the model, its weights and precision, e.g. "efficientnet-lite0:imagenet:bf16";
+      embeddings are stored under it, so a different backbone never mixes with another's vectors.
+    - ``dim``: the length of each vector ``embed`` returns.
+    - ``decode_side``: photos are decoded so that their short side is at least this (JPEGs decode at
+      a reduced scale, which is much faster); 0 or None decodes at full size.
+    - ``preprocess(img)``: an upright 8-bit RGB PIL image -> a torch tensor; tensors of one batch are
+      stacked with ``torch.stack``, so all must have one shape. Called from decoding threads.
+    - ``embed(batch)``: the stacked batch -> (B, dim) float32 numpy features, NOT L2-normalised
+      (Kinfold normalises). Called from one thread at a time.
+
+    The built-in extractors also have ``input_size`` (the square network input), not required."""
+    id: str
     dim: int
-    input_size: int  # square network input, in pixels
-    decode_side: int  # decode photos so that their short side is at least this
+    decode_side: int
 
     def preprocess(self, img: Image.Image) -> torch.Tensor:
         """RGB PIL image -> float tensor (3, input_size, input_size)."""

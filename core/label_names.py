@@ -45,3 +45,11 @@ def shown_suggestion(kind: str, label: str | None, confidence: float | None) -> 
     if confidence is not None and confidence < SHOW_FLOOR:
         return None
     return label
+
+
+def number_keys(counts: dict[str, int], keys: int = 9) -> dict[str, int]:
+    """The labels the number keys 1..`keys` stand for: the most used first (most photos; a tie goes
+    to the name first in alphabetical order). {label: key}. Recomputed as counts change, so a key
+    can move to another label once that label has more photos."""
+    ranked = sorted(counts.items(), key=lambda kv: (-kv[1], kv[0]))
+    return {name: i + 1 for i, (name, n) in enumerate(ranked[:keys]) if n > 0}

@@ -471,22 +471,26 @@ def mutual_mask(idx: np.ndarray, k: int) -> np.ndarray:
 
 
 def bursts(sims: np.ndarray, idx: np.ndarray, threshold: float) -> np.ndarray:
-    """Near-duplicate bursts: connected components of neighbour pairs with similarity >= threshold.
-    Returns a burst id per photo (-1 for photos without a near-duplicate)."""
+    """Near-duplicate bursts: connected components (scipy.sparse.csgraph) of neighbour pairs with
+    similarity >= threshold. Returns a burst id per photo (-1 for photos without a near-duplicate);
+    bursts are numbered in the order of their lowest photo index."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
     n = len(idx)
-    rows, cols = np.nonzero((sims >= threshold) & (idx >= 0))
-    adj = sparse.coo_matrix((np.ones(len(rows), np.int8), (rows, idx[rows, cols])), shape=(n, n))
-    _, comp = connected_components(adj, directed=True, connection="weak")
-    counts = np.bincount(comp, minlength=n)
-    # Number bursts in the order of their first photo, as before.
-    multi = counts[comp] > 1
     out = np.full(n, -1, np.int64)
-    if multi.any():
-        firsts, first_pos = np.unique(comp[multi], return_index=True)
-        rank = np.empty(len(firsts), np.int64)
-        rank[np.argsort(np.nonzero(multi)[0][first_pos], kind="stable")] = np.arange(len(firsts))
-        out[multi] = rank[np.searchsorted(firsts, comp[multi])]
-    return out
+    rows, cols = np.nonzero((sims >= threshold) & (idx >= 0))
+    if n == 0 or len(rows) == 0:
+        return out
+    pairs = coo_matrix((np.ones(len(rows), np.int8), (rows, idx[rows, cols].astype(np.int64))), shape=(n, n))
+    _, comp = connected_components(pairs, directed=False)
+    sizes = np.bincount(comp)
+    lowest = np.full(len(sizes), n, np.int64)
+    np.minimum.at(lowest, comp, np.arange(n))
+    multi = np.nonzero(sizes > 1)[0]
+    burst_of = np.full(len(sizes), -1, np.int64)
+    burst_of[multi[np.argsort(lowest[multi], kind="stable")]] = np.arange(len(multi))
+    return burst_of[comp]
 
 
 @dataclass

@@ -14,22 +14,23 @@ Example (runs on the demo folder; the first scan embeds a few hundred photos in 
 """
 from __future__ import annotations
 
-import contextlib
 import functools
 import getpass
-import hashlib
-import json
 import os
 import threading
-import time
-import unicodedata
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Iterable, Sequence
 
 import numpy as np
 
-from core import catalogue, export, mistakes, neighbours, proposals
+from core import decisions, export, geometry, mistakes, neighbours, proposal_queue, proposals, scanning
+from core.decisions import UNDOABLE as _UNDOABLE, clean_label  # noqa: F401  (callers import them from here)
+from core.errors import FolderInUse, ProjectError  # noqa: F401  (callers import them from here)
+from core.folder_lock import FolderLock
+from core.group import Group, Proposal  # noqa: F401  (Proposal: the older name)
+from core.label_state import LabelState
+from core.scanning import ScanReport  # noqa: F401  (callers import it from here)
 from core.store import LabelRow, PhotoRow, Store, StoreError, utc_now
 
 Progress = Callable[[int, int, str], None]
@@ -37,53 +38,7 @@ Cancel = Callable[[], bool]
 
 STORE_DIR = ".kinfold"
 DEFAULT_EXTRACTOR = "efficientnet-lite0"
-_EMBED_CHUNK = 1024          # photos embedded and committed per step, so a crash loses at most this
-_SKIPPED_FORMAT = 2          # remembered skips: final failures only, reasons without absolute paths
-_UNDOABLE = ("accept", "label", "set_aside", "clear", "split", "later", "confirm", "import", "rename")
-# Groups are formed this many at a time (each batch ranked on its own), so the first groups do not
-# depend on how many are asked for. 3 is what the yield figures were measured with (the simulator
-# asks for 3 at a time): with hold=1 its run on Fashion-MNIST 2,000 is the same, group for group,
-# as before group numbers were kept (yield@80 3.691).
-PROPOSAL_BATCH = 3
-# What the neighbour graph is built with; all of it is part of the graph cache's key.
-_GRAPH_SETTINGS = dict(k=64, temperature=0.1, burst_threshold=0.97, centre=True)
-_GRAPH_FORMAT = 3          # 3: no features inside (the graph is handed them), their mean kept
-_GRAPH_FIELDS = ("sims", "idx", "entropy", "mutual", "burst")
-
-
-class ProjectError(Exception):
-    """A request Kinfold cannot carry out; the message says why, in one line."""
-
-
-class FolderInUse(ProjectError):
-    """The folder's project is open in another Kinfold window or command (its lock is held)."""
-
-
-@dataclass
-class ScanReport:
-    photos: int                                   # photos ready to propose
-    new: int                                      # new photos ready (files left out are in skipped)
-    changed: int
-    removed: int
-    embedded: int                                 # photos embedded by this scan
-    skipped: list[tuple[str, str]]                # (path, reason) for every file left out
-    cancelled: bool = False
-    seconds: float = 0.0
-
-
-@dataclass
-class Proposal:
-    id: int
-    members: list[str]                            # relative POSIX paths, anchor first
-    trust: float
-    suggested_label: str | None
-    confidence: float | None
-    kind: str                                     # "new area", "probable label" or "split part"
-
-    @property
-    def splittable(self) -> bool:
-        """Whether `split` is offered: below MIN_SPLIT photos, taking members out is no more work."""
-        return len(self.members) >= proposals.MIN_SPLIT
+_GRAPH_SETTINGS = geometry.GRAPH_SETTINGS     # the same dict (kept under its old name for callers)
 
 
 @dataclass
@@ -98,31 +53,6 @@ class Status:
     relearned_version: int | None = None
 
 
-@dataclass
-class _Lock:
-    path: Path
-    handle: object = field(default=None, repr=False)
-
-    def acquire(self) -> None:
-        try:
-            import fcntl
-        except ImportError:  # not POSIX: no cross-process lock
-            return
-        self.handle = open(self.path, "a+")
-        try:
-            fcntl.flock(self.handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except OSError:
-            self.handle.close()
-            self.handle = None
-            raise FolderInUse(f"this folder is already open in another Kinfold window or command "
-                               f"(lock {self.path}); close it there first") from None
-
-    def release(self) -> None:
-        if self.handle is not None:
-            self.handle.close()
-            self.handle = None
-
-
 def _serialised(method):
     """Run a public verb under the project's lock: the GUI thread and its workers share one Project,
     and its in-memory state (catalogue arrays, graph, classifier cache) changes as a whole."""
@@ -133,38 +63,33 @@ def _serialised(method):
     return wrapper
 
 
-def clean_label(label: str) -> str:
-    if not isinstance(label, str):
-        raise ProjectError("a label must be text")
-    label = unicodedata.normalize("NFC", " ".join(label.split()))
-    if not label:
-        raise ProjectError("a label cannot be empty")
-    if any(unicodedata.category(ch).startswith("C") for ch in label):
-        raise ProjectError(f"label {label!r} contains control characters")
-    if len(label) > 200:
-        raise ProjectError("a label is at most 200 characters")
-    return label
-
-
 class Project:
-    def __init__(self, folder: Path, store: Store, annotator: str, extractor: str, lock: _Lock | None):
+    def __init__(self, folder: Path, store: Store, annotator: str, extractor, lock: FolderLock | None):
         self.folder = folder
         self.store = store
         self.annotator = annotator
-        self.extractor_name = extractor
+        # A name (the network loads when a scan first needs it) or an object with the Extractor
+        # protocol of core/embedding.py.
+        self._extractor = None if isinstance(extractor, str) else extractor
+        self.extractor_name = extractor if isinstance(extractor, str) else str(extractor.id)
         self._lock = lock
         self._mutex = threading.RLock()
-        self._extractor = None
         self._graph: neighbours.Graph | None = None
+        self._labels: LabelState | None = None
+        store.after_commit(self._on_commit)
         self._open_vectors()
         self._load_catalogue()
 
     # -- opening -----------------------------------------------------------------------------
     @classmethod
-    def open(cls, folder, store=None, *, extractor: str = DEFAULT_EXTRACTOR, annotator: str | None = None,
+    def open(cls, folder, store=None, *, extractor=DEFAULT_EXTRACTOR, annotator: str | None = None,
              lock: bool = True) -> "Project":
         """Create or reopen the project of `folder`. The store defaults to `<folder>/.kinfold/`;
-        pass `store=` for a separate location (a read-only folder, say)."""
+        pass `store=` for a separate location (a read-only folder, say). `extractor`: the name of a
+        built-in backbone, or any object with the `Extractor` protocol (core/embedding.py: `id`,
+        `dim`, `decode_side`, `preprocess`, `embed`) to plug in a custom one."""
+        if not isinstance(extractor, str):
+            _check_extractor(extractor)
         if folder is None or not str(folder).strip():
             raise ProjectError("no photo folder given (the name is empty); name the folder, '.' for the "
                                "current one")
@@ -185,7 +110,7 @@ class Project:
             raise ProjectError(str(exc)) from exc
         lk = None
         if lock and not st.read_only:  # a read-only store cannot be changed, so it needs no lock
-            lk = _Lock(store_dir / "lock")
+            lk = FolderLock(store_dir / "lock")
             try:
                 lk.acquire()
             except ProjectError:
@@ -228,6 +153,37 @@ class Project:
         self._graph = None
         self._graph_version = None
         self._classifier_cache: tuple = (None, None)
+        self._labels = LabelState.load(self.store, [r.fingerprint for r in self._rows])
+
+    def _on_commit(self, changes: list[tuple]) -> None:
+        """The store's after_commit hook: each decision updates the label state in place."""
+        if any(c[0] == "catalogue" for c in changes):
+            self._labels = None             # a scan reloads the catalogue and the state with it
+            return
+        if self._labels is not None:
+            try:
+                self._labels.apply(changes)
+            except Exception:                # never leave a half-applied state: read the tables again
+                self._labels = None
+
+    @property
+    def label_state(self) -> LabelState:
+        """Where every photo stands (core/label_state.py), kept up to date by each decision."""
+        if self._labels is None:
+            self._labels = LabelState.load(self.store, [r.fingerprint for r in self._rows])
+        return self._labels
+
+    @_serialised
+    def reload(self) -> None:
+        """Read the catalogue, embeddings and label state from the store again (after the store was
+        changed other than through this project's verbs, e.g. a benchmark wiping its decisions)."""
+        self._load_catalogue()
+
+    @_serialised
+    def label_arrays(self) -> tuple[np.ndarray, np.ndarray, list[str]]:
+        """(state, label_of, names): per photo FREE / LABELLED / SET_ASIDE (core.proposals), the index
+        of its label in `names` (-1 when none), and the sorted label names. Copies, safe to keep."""
+        return self.label_state.arrays()
 
     def extractor(self):
         if self._extractor is None:
@@ -236,82 +192,20 @@ class Project:
         return self._extractor
 
     def scan(self, progress: Progress | None = None, cancel: Cancel | None = None) -> ScanReport:
-        """Find new and changed photos and embed those not embedded yet. Safe to cancel: what was
-        embedded is kept, and the next scan goes on from there. A file that is not a readable photo
-        is remembered as skipped; a failure that may pass (I/O, memory, the network) is reported in
-        `skipped` for this scan only and tried again by the next one."""
-        t0 = time.perf_counter()
-        previous = {r.path: r for r in self.store.photos()}
-        # Skips remembered before reasons were checked for being final (and named no path) are
-        # looked at once more.
-        remembered = self.store.skipped() if self.store.get_setting("skipped_format") == _SKIPPED_FORMAT else {}
-        try:
-            cat = catalogue.scan_folder(self.folder, previous, remembered, progress=progress, cancel=cancel)
-        except OSError as exc:  # the folder itself cannot be listed (gone, no permission, I/O error)
-            raise ProjectError(f"cannot read the folder {self.folder}: {exc.strerror or exc}") from exc
-        failed: dict[str, str] = {}
-        retry = dict(cat.retry)
-        embedded = 0
-        cancelled = cat.cancelled or bool(cancel and cancel())
-        todo: dict[str, PhotoRow] = {}
-        paths_of: dict[str, list[str]] = {}
-        if not cancelled:  # a cancelled scan does not wait for the network to load
-            extractor = self.extractor()
-            self.store.set_setting("extractor_id", extractor.id)
-            done_fps = self.store.embedded_fingerprints(extractor.id)
-            for r in cat.photos:
-                paths_of.setdefault(r.fingerprint, []).append(r.path)
-                if r.fingerprint not in done_fps:
-                    todo.setdefault(r.fingerprint, r)
-        todo_rows = list(todo.values())
-        if todo_rows:
-            from core.embedding import embed_files
-
-            for start in range(0, len(todo_rows), _EMBED_CHUNK):
-                chunk = todo_rows[start:start + _EMBED_CHUNK]
-                # Progress counts across the whole scan (every earlier chunk was embedded or unreadable).
-                res = embed_files([self.folder / r.path for r in chunk], extractor, progress=progress,
-                                  cancel=cancel, counted=(embedded, start - embedded, len(todo_rows)))
-                self.store.put_embeddings(extractor.id, [chunk[i].fingerprint for i in res.ok], res.vectors)
-                embedded += len(res.ok)
-                for i, reason in res.failed:
-                    failed[chunk[i].fingerprint] = reason
-                for i, reason in res.retry:
-                    # The photo stays catalogued without an embedding, so the next scan embeds it.
-                    retry.update((path, reason) for path in paths_of[chunk[i].fingerprint])
-                if res.cancelled:
-                    cancelled = True
-                    break
-        skipped = dict(cat.skipped)
-        photos = []
-        for r in cat.photos:
-            if r.fingerprint in failed:
-                skipped[r.path] = (r.size, r.mtime_ns, failed[r.fingerprint])
-            else:
-                photos.append(r)
-        with self._mutex:
-            self.store.replace_catalogue(photos, skipped)
-            self.store.set_setting("skipped_format", _SKIPPED_FORMAT)
-            self._load_catalogue()
-            self._compact_vectors()
-        shown = [(p, v[2]) for p, v in skipped.items()]
-        shown += [(p, f"{reason} (tried again at the next scan)") for p, reason in retry.items()]
-        ready = {r.path for r in photos}  # new and changed count photos, not files later left out
-        return ScanReport(photos=len(self._rows), new=sum(p in ready for p in cat.new),
-                          changed=sum(p in ready for p in cat.changed),
-                          removed=len(cat.removed), embedded=embedded, skipped=sorted(shown),
-                          cancelled=cancelled, seconds=time.perf_counter() - t0)
+        """Find new and changed photos and embed those not embedded yet (core/scanning.py). Safe to
+        cancel: what was embedded is kept, and the next scan goes on from there. A file that is not a
+        readable photo is remembered as skipped; a failure that may pass (I/O, memory, the network) is
+        reported in `skipped` for this scan only and tried again by the next one."""
+        return scanning.scan(self, progress, cancel)
 
     # -- geometry ----------------------------------------------------------------------------
     def _geometry_version(self) -> int | None:
-        """The active relearned version when it adapts the embedding; None when proposals work in the
-        backbone's geometry (no version, or a version with the label classifier only)."""
-        version = self.store.active_relearn_version()
-        if version is None:
-            return None
-        from core import relearning
+        return geometry.geometry_version(self.store)
 
-        return version if relearning.has_head(self.store.relearn_state(version)) else None
+    @_serialised
+    def backbone_features(self) -> np.ndarray:
+        """(photos, dim) the extractor's vectors in the order of `photos()`, before any relearning."""
+        return self._features
 
     @_serialised
     def features(self) -> np.ndarray:
@@ -347,54 +241,14 @@ class Project:
             self._graph_version = version
         return self._graph
 
-    def _load_or_build_graph(self, progress: Progress | None = None, cancel: Cancel | None = None) -> neighbours.Graph:
-        """The neighbour graph, from the cache in the store folder when it was built from exactly these
-        features with exactly these settings; a cache that fails to load for any reason is rebuilt.
-        The graph holds no copy of the features: it is handed them (`Graph.rows`)."""
+    def _load_or_build_graph(self, progress=None, cancel=None) -> neighbours.Graph:
         feats = self.features()
-        key = hashlib.sha1(json.dumps(dict(
-            format=_GRAPH_FORMAT, settings=_GRAPH_SETTINGS, extractor=self.extractor_id, shape=feats.shape,
-            neighbours=neighbours.settings_key()), sort_keys=True).encode())
-        for r in self._rows:
-            key.update(r.fingerprint.encode())
-        # The features themselves: the extractor's output, the photos and their order, and the
-        # relearned version's head when it adapts the embedding. The backbone's features are named by
-        # their vectors file (its token changes with every rewrite, rows are only ever appended), so
-        # they are not read to make the key; other features are hashed.
+        # The backbone's features are named by their vectors file, so the key does not read them.
         entry = self.store.vectors.file_entry(self.extractor_id) if self.extractor_id else None
-        if feats is self._features and entry is not None:
-            key.update(json.dumps(["vectors", *entry]).encode())
-        else:
-            key.update(np.ascontiguousarray(feats, np.float32).tobytes())
-        cache = self.store.directory / f"graph-{key.hexdigest()[:16]}.npz"
-        centre = _GRAPH_SETTINGS.get("centre", True)
-        if cache.exists():
-            try:
-                with np.load(cache, allow_pickle=False) as z:
-                    g = neighbours.Graph(**{k: z[k] for k in _GRAPH_FIELDS})
-                    mean = z["mean"] if centre else None
-                _check_graph(g, len(self._rows))
-                return g.attach(neighbours.Source(feats, centre=centre, mean=mean))
-            except Exception:  # truncated (BadZipFile, EOFError), pickled, garbage, wrong shapes...
-                try:
-                    cache.unlink(missing_ok=True)
-                except OSError:
-                    pass  # a read-only store keeps its damaged cache; the graph is rebuilt in memory
-        g = neighbours.build_graph(feats, **_GRAPH_SETTINGS, progress=progress, cancel=cancel)
-        tmp = cache.with_name(f"graph-{os.getpid()}-{threading.get_ident()}.tmp.npz")
-        try:
-            mean = g.source.mean if g.source.mean is not None else np.zeros(0, np.float32)
-            np.savez(tmp, mean=mean, **{k: getattr(g, k) for k in _GRAPH_FIELDS})
-            os.replace(tmp, cache)
-            for old in self.store.directory.glob("graph-*.npz"):
-                if old != cache:
-                    old.unlink(missing_ok=True)
-        except OSError:  # a read-only store or a full disk: the graph is kept in memory only
-            try:
-                tmp.unlink(missing_ok=True)
-            except OSError:
-                pass
-        return g
+        return geometry.load_or_build_graph(self.store.directory, self.extractor_id,
+                                            [r.fingerprint for r in self._rows], feats,
+                                            named_by=entry if feats is self._features else None,
+                                            progress=progress, cancel=cancel)
 
     def _paths_to_indices(self, paths: Iterable[str]) -> list[int]:
         out = []
@@ -405,34 +259,18 @@ class Project:
             out.append(self._index[p])
         return out
 
-    @_serialised
     def _state_arrays(self):
-        labels = self.store.labels()
-        names = sorted({r.label for r in labels.values() if r.state == "labelled"})
-        pos = {n: i for i, n in enumerate(names)}
-        n = len(self._rows)
-        state = np.zeros(n, np.int8)
-        label_of = np.full(n, -1, np.int64)
-        self._not_label = np.zeros((n, len(names)), bool)
-        rejections = self.store.rejections()
-        for i, r in enumerate(self._rows):
-            for lab in rejections.get(r.fingerprint, ()):
-                if lab in pos:
-                    self._not_label[i, pos[lab]] = True
-            lr = labels.get(r.fingerprint)
-            if lr is None:
-                continue
-            if lr.state == "labelled":
-                state[i] = proposals.LABELLED
-                label_of[i] = pos[lr.label]
-            else:
-                state[i] = proposals.SET_ASIDE
-        return state, label_of, names
+        """Kept for callers of the old name; see label_arrays."""
+        return self.label_arrays()
+
+    @property
+    def _not_label(self) -> np.ndarray:
+        return self.label_state.not_label()
 
     # -- proposals ---------------------------------------------------------------------------
     @_serialised
     def propose(self, limit: int = 20, settings: proposals.Settings | None = None, *,
-                hold: int | None = None) -> list[Proposal]:
+                hold: int | None = None) -> list[Group]:
         """The next groups to confirm, best first; split parts (and groups brought back by undo)
         before anything else. `hold`: how many of the returned groups are held under their ids
         (None: all). A caller that shows the first group and only peeks at the next passes hold=1,
@@ -446,98 +284,14 @@ class Project:
         decision is made the queue stays as it is; after one, the groups not returned yet are formed
         again. A relearn or restore asks for new groups: the open ones formed under another version
         are closed."""
-        if not self._rows or limit <= 0:
-            return []
-        s = settings or proposals.Settings()
-        mark = dict(version=self.store.active_relearn_version(), decisions=self.store.decision_count(),
-                    photos=len(self._rows))
-        saved = self.store.get_setting("proposal_queue") or dict(mark=mark, order=[], unshown=[])
-        same = saved["mark"] == mark
-        new_version = saved["mark"]["version"] != mark["version"]
-        unshown = set(saved["unshown"])
-        state, label_of, names = self._state_arrays()
-        taken = np.zeros(len(self._rows), bool)
-        pinned: list[Proposal] = []
-        kept: dict[int, Proposal] = {}
-        close: list[int] = []
-        for row in self.store.open_proposals():      # pinned first, then in the order they were made
-            idx = [self._index.get(m) for m in row.members]
-            if row.pinned:
-                # Shown with the members still free (the others were decided one by one).
-                idx = [i for i in idx if i is not None and state[i] == proposals.FREE and not taken[i]]
-            elif (new_version or (row.id in unshown and not same) or not idx
-                  or any(i is None or state[i] != proposals.FREE or taken[i] for i in idx)):
-                idx = []                 # formed under other figures, or a member was decided or is gone
-            if not idx:
-                close.append(row.id)
-                continue
-            taken[idx] = True
-            p = Proposal(row.id, [self._rows[i].path for i in idx], row.trust, row.suggested_label,
-                         row.confidence, row.kind)
-            if row.pinned:
-                pinned.append(p)
-            else:
-                kept[row.id] = p
-
-        fresh: list[dict] = []           # groups formed now, stored below; negative ids until then
-        deferred = self.store.deferred()
-        graph = classifier = None
-
-        def batch() -> list[Proposal]:
-            nonlocal graph, classifier
-            if graph is None:
-                graph, classifier = self.graph(), self.label_classifier(names)
-            eligible = ~taken
-            if deferred:
-                rested = eligible & np.array([r.fingerprint not in deferred for r in self._rows])
-                # Photos left for later come back once nothing else is left.
-                if (rested & (state == proposals.FREE)).any():
-                    eligible = rested
-            out = []
-            for gr in proposals.form_groups(graph, state, label_of, len(names), PROPOSAL_BATCH, s, eligible,
-                                            self._not_label, classifier):
-                taken[gr.members] = True
-                fresh.append(dict(members=[self._rows[i].path for i in gr.members], trust=round(gr.trust, 4),
-                                  suggested_label=None if gr.suggested_label is None else names[gr.suggested_label],
-                                  confidence=None if gr.confidence is None else round(gr.confidence, 4),
-                                  kind=gr.kind))
-                r = fresh[-1]
-                out.append(Proposal(-len(fresh), r["members"], r["trust"], r["suggested_label"], r["confidence"],
-                                    r["kind"]))
-            return out
-
-        if same:
-            order = [i for i in saved["order"] if i in kept]
-            queue = [kept[i] for i in order] + [p for i, p in kept.items() if i not in set(order)]
-        else:
-            queue = _ranked(list(kept.values()) + batch(), s.explore_every)
-        want = limit - len(pinned)
-        while len(queue) < want:
-            more = batch()
-            if not more:
-                break
-            queue += _ranked(more, s.explore_every)
-
-        with self.store.transaction() if (close or fresh) else _nothing():
-            ids = self.store.update_open_proposals(close, fresh) if (close or fresh) else []
-            for p in queue:
-                if p.id < 0:
-                    p.id = ids[-p.id - 1]
-            new_ids = set(ids)
-            shown = queue[:max(want, 0)]
-            held = len(shown) if hold is None else max(hold - len(pinned), 0)
-            now = dict(mark=mark, order=[p.id for p in queue],
-                       unshown=[p.id for p in queue[held:] if p.id in unshown or p.id in new_ids])
-            if now != saved:
-                self.store.set_setting("proposal_queue", now)
-        return (pinned + shown)[:limit]
+        return proposal_queue.propose(self, limit, settings, hold)
 
     @_serialised
-    def group(self, group_id: int) -> Proposal:
+    def group(self, group_id: int) -> Group:
         row = self.store.proposal(group_id)
         if row is None:
             raise ProjectError(f"there is no group {group_id}")
-        return Proposal(row.id, row.members, row.trust, row.suggested_label, row.confidence, row.kind)
+        return Group(row.id, row.members, row.trust, row.suggested_label, row.confidence, row.kind)
 
     def _open_group(self, group_id: int):
         row = self.store.proposal(group_id)
@@ -557,85 +311,33 @@ class Project:
     @_serialised
     def accept(self, group_id: int, label: str, drop: Sequence[str] = ()) -> int:
         """Label every member of the group but those in `drop` (they go back to the pool)."""
-        label = clean_label(label)
-        with self.store.transaction():
-            row = self._open_group(group_id)
-            drop = set(drop)
-            unknown = drop - set(row.members)
-            if unknown:
-                raise ProjectError(f"{sorted(unknown)[0]} is not a member of group {group_id}")
-            keep = [m for m in row.members if m not in drop and m in self._index]
-            labels = self.store.labels()
-            keep = [m for m in keep if self._rows[self._index[m]].fingerprint not in labels]
-            changes = {self._rows[self._index[m]].fingerprint: self._new_row(
-                self._rows[self._index[m]].fingerprint, "labelled", label, "group") for m in keep}
-            rejected = [self._rows[self._index[m]].fingerprint for m in drop if m in self._index]
-            return self.store.record_decision("accept", self.annotator, keep, changes, label=label,
-                                              group_id=group_id, close_proposals=[group_id], rejected=rejected)
+        return decisions.accept(self, group_id, label, drop)
 
     @_serialised
     def label(self, paths: Sequence[str], label: str) -> int:
         """Label photos directly (one or many); relabels photos that already carry a label."""
-        label = clean_label(label)
-        idx = self._paths_to_indices(paths)
-        with self.store.transaction():
-            labels = self.store.labels()
-            changes = {}
-            for i in idx:
-                fp = self._rows[i].fingerprint
-                how = "relabel" if fp in labels else "single"
-                changes[fp] = self._new_row(fp, "labelled", label, how)
-            return self.store.record_decision("label", self.annotator, [self._rows[i].path for i in idx], changes,
-                                              label=label)
+        return decisions.label(self, paths, label)
 
     @_serialised
     def set_aside(self, paths: Sequence[str]) -> int:
         """Mark photos as belonging to no class; they are never proposed again (undo brings them back)."""
-        idx = self._paths_to_indices(paths)
-        changes = {self._rows[i].fingerprint: self._new_row(self._rows[i].fingerprint, "set_aside", None,
-                                                            "set aside") for i in idx}
-        return self.store.record_decision("set_aside", self.annotator, [self._rows[i].path for i in idx], changes)
+        return decisions.set_aside(self, paths)
 
     @_serialised
     def clear(self, paths: Sequence[str]) -> int:
         """Remove labels (or set-aside marks) so the photos return to the pool."""
-        idx = self._paths_to_indices(paths)
-        changes = {self._rows[i].fingerprint: None for i in idx}
-        return self.store.record_decision("clear", self.annotator, [self._rows[i].path for i in idx], changes)
+        return decisions.clear(self, paths)
 
     @_serialised
-    def split(self, group_id: int) -> list[Proposal]:
+    def split(self, group_id: int) -> list[Group]:
         """Break a group into two coherent parts; they come back first in the next proposals."""
-        row = self._open_group(group_id)
-        members = [m for m in row.members if m in self._index]
-        if len(members) < proposals.MIN_SPLIT:
-            raise ProjectError(f"group {group_id} has {len(members)} photos; splitting needs at least "
-                               f"{proposals.MIN_SPLIT} (take the odd ones out instead)")
-        g = self.graph()
-        part = proposals.split_members(g.rows([self._index[m] for m in members]))
-        parts = [[m for m, p in zip(members, part) if p == k] for k in (0, 1)]
-        # The part holding the anchor keeps its place first.
-        if members[0] in parts[1]:
-            parts.reverse()
-        records = [dict(members=pm, trust=row.trust, suggested_label=row.suggested_label,
-                        confidence=row.confidence, kind="split part") for pm in parts if pm]
-        with self.store.transaction():
-            self._open_group(group_id)          # still open now that the write lock is held
-            self.store.record_decision("split", self.annotator, members, {}, group_id=group_id)
-            ids = self.store.add_pinned_proposals(records, close=group_id)
-        return [Proposal(i, r["members"], r["trust"], r["suggested_label"], r["confidence"], r["kind"])
-                for i, r in zip(ids, records)]
+        return decisions.split(self, group_id)
 
     @_serialised
     def defer(self, group_id: int) -> int:
         """Leave a group for later: its photos come back after everything else has been proposed.
         Logged as a 'later' decision; undo brings the group back first. Returns the decision id."""
-        with self.store.transaction():
-            row = self._open_group(group_id)
-            members = [m for m in row.members if m in self._index]
-            previous = self.store.defer(self._rows[self._index[m]].fingerprint for m in members)
-            return self.store.record_decision("later", self.annotator, members, {}, group_id=group_id,
-                                              close_proposals=[group_id], before=previous)
+        return decisions.defer(self, group_id)
 
     @_serialised
     def undo(self) -> dict | None:
@@ -643,46 +345,15 @@ class Project:
         back first) or a 'later' (the group comes back first). Repeat to walk further back.
         Returns what was undone (`photos`: how many photos it gave back), or None when there is
         nothing left to undo."""
-        with self.store.transaction():
-            last = self.store.last_undoable_of(_UNDOABLE)
-            if last is None:
-                return None
-            dec_id, kind, before, group_id = last
-            if kind == "later":
-                self.store.record_decision("undo", self.annotator, [], {}, undoes=dec_id)
-                self.store.restore_deferred(before)
-                photos = len(before)
-            else:
-                changes = {fp: (LabelRow(fp, *prev) if prev else None) for fp, prev in before.items()}
-                self.store.record_decision("undo", self.annotator, [], changes, undoes=dec_id)
-                photos = len(changes)
-            if kind in ("accept", "later") and group_id is not None:
-                self.store.repin_proposal(group_id)  # the group comes back first, as it was
-            elif kind == "split" and group_id is not None:
-                # The parts still open give way to the whole group again.
-                whole = self.store.proposal(group_id)
-                members = set(whole.members) if whole else set()
-                parts = [r.id for r in self.store.open_proposals(pinned_only=True)
-                         if r.kind == "split part" and set(r.members) <= members]
-                self.store.repin_proposal(group_id, close=parts)
-                photos = len(members)
-        return {"decision": dec_id, "kind": kind, "photos": photos}
+        return decisions.undo(self)
 
     # -- reading -----------------------------------------------------------------------------
     @_serialised
     def status(self) -> Status:
-        labels = self.store.labels()
-        by_label: dict[str, int] = {}
-        labelled = aside = 0
-        for r in self._rows:
-            lr = labels.get(r.fingerprint)
-            if lr is None:
-                continue
-            if lr.state == "labelled":
-                labelled += 1
-                by_label[lr.label] = by_label.get(lr.label, 0) + 1
-            else:
-                aside += 1
+        ls = self.label_state
+        by_label = ls.counts()
+        labelled = int((ls.state == proposals.LABELLED).sum())
+        aside = int((ls.state == proposals.SET_ASIDE).sum())
         return Status(photos=len(self._rows), labelled=labelled, set_aside=aside,
                       unlabelled=len(self._rows) - labelled - aside, by_label=dict(sorted(by_label.items())),
                       actions=self.store.decision_count(actions_only=True), skipped=len(self.store.skipped()),
@@ -696,7 +367,7 @@ class Project:
     def photo_info(self, path: str) -> dict:
         i = self._paths_to_indices([path])[0]
         r = self._rows[i]
-        lr = self.store.labels().get(r.fingerprint)
+        lr = self.label_state.row(r.fingerprint)
         return dict(path=r.path, width=r.width, height=r.height, bytes=r.size, fingerprint=r.fingerprint,
                     state=lr.state if lr else "unlabelled", label=lr.label if lr else None)
 
@@ -711,7 +382,7 @@ class Project:
     def review(self, label: str) -> list[tuple[str, float]]:
         """Photos carrying `label`, least typical first: typicality is the cosine similarity to the
         mean of the label's other photos, so a mislabelled photo surfaces at the top."""
-        state, label_of, names = self._state_arrays()
+        state, label_of, names = self.label_arrays()
         if label not in names:
             raise ProjectError(f"no photo carries the label {label!r}")
         members = np.nonzero((state == proposals.LABELLED) & (label_of == names.index(label)))[0]
@@ -725,11 +396,11 @@ class Project:
 
     @_serialised
     def labelled_photos(self) -> list[export.LabelledPhoto]:
-        labels = self.store.labels()
+        known = self.label_state
         g = self.graph() if self._rows else None
         out = []
         for i, r in enumerate(self._rows):
-            lr = labels.get(r.fingerprint)
+            lr = known.row(r.fingerprint)
             if lr is None or lr.state != "labelled":
                 continue
             burst = int(g.burst[i]) if g is not None and g.burst[i] >= 0 else None
@@ -739,18 +410,19 @@ class Project:
 
     # -- relearning ---------------------------------------------------------------------------
     def relearn(self, progress: Progress | None = None, seconds: float | None = None,
-                cancel: Cancel | None = None, adapt_embedding: bool = False) -> dict:
+                cancel: Cancel | None = None, adapt_embedding: bool = False, settings=None) -> dict:
         """Relearn from the decisions so far: refit the label classifier on the confirmed labels and
         the photos taken out of groups and, with `adapt_embedding`, also train the projection head
-        that adapts the embedding. Stores a new version and makes it active. Never touches the
+        that adapts the embedding. `settings`: a `core.relearning.Settings` to use instead (its
+        `head` then decides). Stores a new version and makes it active. Never touches the
         decisions. Returns what it measured."""
         from core import relearning
 
         with self._mutex:
-            view = _RelearnView(self)
+            inputs = relearning.Inputs.of(self)
         # The fit runs without the project's lock, so the other verbs go on meanwhile.
-        result = relearning.relearn_project(view, progress=progress, seconds=seconds, cancel=cancel,
-                                            settings=relearning.Settings(head=adapt_embedding))
+        result = relearning.relearn_project(inputs, progress=progress, seconds=seconds, cancel=cancel,
+                                            settings=settings or relearning.Settings(head=adapt_embedding))
         with self._mutex:
             self._graph = None
         return result
@@ -789,10 +461,10 @@ class Project:
     def likely_mistakes(self, limit: int = 100, method: str | None = None) -> list[mistakes.Mistake]:
         """Labelled photos whose label is most likely wrong, first the likeliest, with the label the
         engine would give instead; photos whose label was confirmed are left out."""
-        state, label_of, names = self._state_arrays()
-        labels = self.store.labels()
-        confirmed = np.array([labels[r.fingerprint].how == mistakes.CONFIRMED if r.fingerprint in labels
-                              else False for r in self._rows], bool)
+        state, label_of, names = self.label_arrays()
+        known = self.label_state
+        confirmed = np.array([getattr(known.row(r.fingerprint), "how", None) == mistakes.CONFIRMED
+                              for r in self._rows], bool)
         found = mistakes.rank(self.graph().x, label_of, self.graph().idx, method=method or mistakes.METHOD,
                               keep=~confirmed) if self._rows else []
         return [mistakes.Mistake(self._rows[s.index].path, names[s.label],
@@ -804,19 +476,7 @@ class Project:
         """The annotator says the label is right (with `label`: the right label is this one, a fix):
         the photos leave the likely-mistakes queue (until a later decision changes their label).
         One logged decision (kind 'confirm'), undoable; returns its id."""
-        label = None if label is None else clean_label(label)
-        idx = self._paths_to_indices(paths)
-        with self.store.transaction():
-            labels = self.store.labels()
-            changes = {}
-            for i in idx:
-                fp = self._rows[i].fingerprint
-                lr = labels.get(fp)
-                if label is None and (lr is None or lr.state != "labelled"):
-                    raise ProjectError(f"{self._rows[i].path} has no label to confirm")
-                changes[fp] = self._new_row(fp, "labelled", label or lr.label, mistakes.CONFIRMED)
-            return self.store.record_decision("confirm", self.annotator, [self._rows[i].path for i in idx],
-                                              changes, label=label)
+        return decisions.confirm(self, paths, label)
 
     # --- cli: statistics and the set-aside list (core/statistics.py) ---
     @_serialised
@@ -850,7 +510,79 @@ class Project:
         name close to an existing label raises `label_rename.NameQuestion` unless `confirm`."""
         from core import label_rename
         return label_rename.rename_label(self, old, new, confirm=confirm)
+    # --- browse: every photo by state/label/subfolder/name, neighbours with labels, redo ---------
+    # (core/browse.py, core/redo.py hold the work; these only delegate)
+    @_serialised
+    def browse(self, state: str | None = None, label: str | None = None, subfolder: str | None = None,
+               name: str | None = None, offset: int = 0, limit: int | None = None):
+        """Photos matching the filters, by path, a page at a time: `core.browse.Browsed` (total, photos
+        as (path, state, label)). `state`: None, "unlabelled", "aside" or "labelled"."""
+        from core import browse as browsing
+        try:
+            return browsing.browse(self.store, self.extractor_id, state=state, label=label, subfolder=subfolder,
+                                   name=name, offset=offset, limit=limit)
+        except browsing.BrowseError as exc:
+            raise ProjectError(str(exc)) from None
 
+    @_serialised
+    def subfolders(self) -> list[tuple[str, int]]:
+        """Folders holding photos directly, with how many ("" is the top level)."""
+        from core import browse as browsing
+        return browsing.subfolders(self.store, self.extractor_id)
+
+    @_serialised
+    def neighbours_labelled(self, path: str, k: int = 8) -> list[tuple[str, float, str, str | None]]:
+        """`neighbours` with each photo's state and label: [(path, similarity, state, label)]."""
+        from core import browse as browsing
+        near = self.neighbours(path, k)
+        fps = [self._rows[self._index[p]].fingerprint for p, _ in near]
+        known = browsing.states_of(self.store, fps)
+        return [(p, s, *known[fp]) for (p, s), fp in zip(near, fps)]
+
+    @_serialised
+    def redo(self) -> dict:
+        """Apply again the decision the last undo reversed; only right after an undo (or a redo): any
+        other decision ends the redo history. A new logged decision of the same kind (undoable again).
+        Returns {decision, kind, photos}; ProjectError when there is nothing to redo."""
+        from core import redo as redoing
+        with self.store.transaction():
+            u = redoing.pending_undo(self.store)
+            if u is None:
+                raise ProjectError("nothing to redo: redo only follows an undo, and a decision made since "
+                                   "the undo ends what can be redone")
+            d = redoing.original(self.store, u["undoes"])
+            kind, gid = d["kind"], d["group_id"]
+            if kind == "split":
+                parts = self.split(gid)          # the cut is deterministic: the same parts come back
+                with self.store.transaction() as db:   # the split just logged names the undo it reverses
+                    dec = db.execute("SELECT MAX(id) FROM decisions").fetchone()[0]
+                    db.execute("UPDATE decisions SET undoes = ? WHERE id = ?", (u["id"], dec))
+                return {"decision": dec, "kind": kind, "photos": sum(len(p.members) for p in parts)}
+            if kind == "later":
+                members = [m for m in d["photos"] if m in self._index]
+                previous = self.store.defer(self._rows[self._index[m]].fingerprint for m in members)
+                dec = self.store.record_decision("later", self.annotator, members, {}, group_id=gid,
+                                                 close_proposals=[gid] if gid is not None else [],
+                                                 before=previous, undoes=u["id"])
+                return {"decision": dec, "kind": kind, "photos": len(members)}
+            # The undo found each photo as the undone decision left it: that is what comes back.
+            changes = {fp: (LabelRow(fp, *row) if row else None) for fp, row in u["before"].items()}
+            rejected = []
+            if kind == "accept" and gid is not None and self.store.proposal(gid) is not None:
+                # Members neither labelled by the accept nor carrying a label: the ones taken out.
+                labels, kept = self.store.labels(), set(d["photos"])
+                rejected = [self._rows[self._index[m]].fingerprint for m in self.store.proposal(gid).members
+                            if m in self._index and m not in kept
+                            and self._rows[self._index[m]].fingerprint not in labels]
+            elif kind == "rename":
+                # A rename carried the old name's "not this label" marks over to the new name.
+                old = next((row[1] for row in d["before"].values() if row), None)
+                rejected = [fp for fp, names in self.store.rejections().items() if old in names]
+            dec = self.store.record_decision(kind, self.annotator, d["photos"], changes, label=d["label"],
+                                             group_id=gid,
+                                             close_proposals=[gid] if kind == "accept" and gid is not None else [],
+                                             rejected=rejected, undoes=u["id"])
+            return {"decision": dec, "kind": kind, "photos": len(changes)}
 
     # --- scale: embeddings in a memory-mapped file (core/vectors.py), read only when needed ---
     def _open_vectors(self) -> None:
@@ -889,52 +621,16 @@ class Project:
         return self._graph
 
 
-class _RelearnView:
-    """What relearning reads from a project, taken under its lock, so the long fit runs without it
-    while decisions go on (they count from the next relearn)."""
+def _check_extractor(obj) -> None:
+    """Refuse, in one line, an extractor object that lacks part of the protocol."""
+    from core.embedding import Extractor  # torch loads only when an object is handed in
 
-    def __init__(self, project: Project):
-        self._features = project._features
-        self._arrays = project._state_arrays()
-        self._not_label = project._not_label
-        self._geometry = project.features()
-        self.store = project.store
-        self.extractor_id = project.extractor_id
-
-    def _state_arrays(self):
-        return self._arrays
-
-    def features(self) -> np.ndarray:
-        return self._geometry
-
-
-@contextlib.contextmanager
-def _nothing():
-    yield
-
-
-def _ranked(groups: list[Proposal], every: int) -> list[Proposal]:
-    """Open groups in the order of expected photos per action (proposals.order), from the figures
-    stored with each, ties in the order they were made."""
-    items = []
-    for p in groups:
-        conf = p.confidence if p.kind == "probable label" and p.confidence is not None else p.trust
-        g = proposals.Group(list(range(len(p.members))), p.trust, p.kind, 0 if p.suggested_label else None,
-                            p.confidence)
-        g.extra["expected_yield"] = proposals.expected_yield(g, np.full(len(p.members), conf))
-        g.extra["proposal"] = p
-        items.append(g)
-    return [g.extra["proposal"] for g in proposals.order(items, every)]
-
-
-def _check_graph(g: neighbours.Graph, n: int) -> None:
-    """Raise ValueError unless `g` has the shapes and indices of a graph over n photos."""
-    k = g.idx.shape[1] if g.idx.ndim == 2 else -1
-    ok = (g.idx.ndim == 2 and g.idx.shape == (n, k) and g.sims.shape == (n, k)
-          and g.mutual.shape == (n, k) and g.entropy.shape == (n,) and g.burst.shape == (n,)
-          and (n == 0 or (g.idx.min() >= -1 and g.idx.max() < n)))
-    if not ok:
-        raise ValueError("graph cache does not fit the catalogue")
+    if not isinstance(obj, Extractor):
+        missing = [m for m in ("id", "dim", "decode_side", "preprocess", "embed") if not hasattr(obj, m)]
+        raise ProjectError(f"the extractor {type(obj).__name__} lacks {', '.join(missing)} (see the Extractor "
+                           f"protocol in core/embedding.py)")
+    if not isinstance(obj.id, str) or not obj.id.strip():
+        raise ProjectError(f"the extractor {type(obj).__name__} needs a non-empty text id")
 
 
 def _default_annotator() -> str:

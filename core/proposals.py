@@ -73,7 +73,7 @@ def propagate(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: i
     row-normalised kNN graph; rows are normalised to probabilities at the end.
     """
     n = graph.n
-    idx, w = _graph_weights(graph, settings.propagation_k)
+    step = _propagation_matrix(graph, settings.propagation_k)
     y = np.zeros((n, n_labels + 1), np.float32)
     lab = state == LABELLED
     y[np.nonzero(lab)[0], label_of[lab]] = 1.0
@@ -82,8 +82,30 @@ def propagate(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: i
     f = y.copy()
     a = settings.alpha
     for _ in range(settings.iterations):
-        f = a * np.einsum("nk,nkc->nc", w, f[idx]) + (1 - a) * y
+        f = a * (step @ f) + (1 - a) * y
     return f / np.maximum(f.sum(1, keepdims=True), 1e-12)
+
+
+def _propagation_matrix(graph: Graph, k: int):
+    """The row-normalised kNN weights as a sparse (n, n) matrix, made once per graph: one step of the
+    diffusion is then a sparse product (the same sums, in the same order, as gathering each photo's
+    neighbour rows, without copying n x k x labels values per step)."""
+    from scipy.sparse import csr_matrix
+
+    cache = _cache_of(graph)
+    if ("step", k) not in cache:
+        idx, w = _graph_weights(graph, k)
+        n, kk = idx.shape
+        cache[("step", k)] = csr_matrix((w.ravel(), idx.ravel(), np.arange(0, n * kk + 1, kk)), shape=(n, n))
+    return cache[("step", k)]
+
+
+def _cache_of(graph: Graph) -> dict:
+    """Figures derived from a graph alone, kept with it (a graph never changes once built)."""
+    cache = graph.__dict__.get("_derived")
+    if cache is None:
+        cache = graph.__dict__["_derived"] = {}
+    return cache
 
 
 def _graph_weights(graph: Graph, k: int) -> tuple[np.ndarray, np.ndarray]:
@@ -123,8 +145,20 @@ def _take_unit(j: int, graph: Graph, available: np.ndarray) -> list[int]:
     b = graph.burst[j]
     if b < 0:
         return [j]
-    mates = np.nonzero((graph.burst == b) & available)[0]
-    return [j] + [int(m) for m in mates if m != j]
+    mates = _burst_members(graph)[b]
+    return [j] + [int(m) for m in mates[available[mates]] if m != j]
+
+
+def _burst_members(graph: Graph) -> list[np.ndarray]:
+    """Photos of each burst, in index order, made once per graph (not a pass over all photos per unit)."""
+    cache = _cache_of(graph)
+    if "bursts" not in cache:
+        b = graph.burst
+        order = np.argsort(b, kind="stable")
+        order = order[b[order] >= 0]
+        sizes = np.bincount(b[order], minlength=int(b.max()) + 1 if len(order) else 0)
+        cache["bursts"] = np.split(order, np.cumsum(sizes)[:-1]) if len(order) else []
+    return cache["bursts"]
 
 
 def _fill(candidates, graph: Graph, available: np.ndarray, cap: int) -> list[int]:
@@ -278,7 +312,28 @@ def split_members(x: np.ndarray, seed: int = 0) -> np.ndarray:
 
     Measured with the yield simulator on Fashion-MNIST 2,000: 2-means on the features gave parts
     about as mixed as the group (3.18 photos per action with splits offered against 4.00 without);
-    the spectral cut, offered for groups of at least MIN_SPLIT photos, 3.94."""
+    the spectral cut, offered for groups of at least MIN_SPLIT photos, 3.94.
+
+    Runs with one BLAS thread: for a group-sized matrix, threads only wait on each other (on the
+    2-core machine under load, 0.49 s against 0.023 s per split; the slowest decisions in
+    benchmarks/decision_cost.py were all splits). The parts are the same."""
+    with _one_blas_thread():
+        return _split_members(x)
+
+
+def _one_blas_thread():
+    global _BLAS
+    if _BLAS is None:
+        from threadpoolctl import ThreadpoolController
+
+        _BLAS = ThreadpoolController()
+    return _BLAS.limit(limits=1, user_api="blas")
+
+
+_BLAS = None
+
+
+def _split_members(x: np.ndarray) -> np.ndarray:
     x = np.asarray(x, np.float64)
     m = len(x)
     if m < 2:

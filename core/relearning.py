@@ -521,26 +521,50 @@ def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray
 
 
 # -- the project verb ---------------------------------------------------------------------------
-def relearn_project(project, progress: Progress | None = None, seconds: float | None = None,
+@dataclass
+class Inputs:
+    """What a relearn reads, taken from a project through its public calls (`Inputs.of`), under its
+    lock, so the long fit runs without the lock while decisions go on (they count from the next
+    relearn). Arrays are copies or never changed in place."""
+    features: np.ndarray          # (n, d) the backbone's vectors
+    state: np.ndarray             # (n,) FREE / LABELLED / SET_ASIDE
+    label_of: np.ndarray          # (n,) index into names, -1 when not labelled
+    names: list[str]
+    not_label: np.ndarray         # (n, len(names)) True where a photo was taken out of that label's group
+    geometry: np.ndarray          # (n, d') the space proposals work in now (backbone or adapted)
+    store: object                 # where the new version is stored (core.store.Store)
+    extractor_id: str | None
+
+    @classmethod
+    def of(cls, project) -> "Inputs":
+        state, label_of, names = project.label_arrays()
+        return cls(project.backbone_features(), state, label_of, names, project.label_state.not_label(),
+                   project.features(), project.store, project.extractor_id)
+
+
+def relearn_project(inputs: Inputs, progress: Progress | None = None, seconds: float | None = None,
                     cancel: Cancel | None = None, settings: Settings | None = None) -> dict:
-    """Fit the label classifier (and, when switched on, train a head) on the project's backbone
-    embeddings and confirmed labels, store the result as a new relearned version (which becomes
-    active) and return its figures. Decisions are only read.
+    """Fit the label classifier (and, when switched on, train a head) on the backbone embeddings and
+    confirmed labels of `inputs` (an `Inputs`, or a project: `Inputs.of(project)` is taken), store the
+    result as a new relearned version (which becomes active) and return its figures. Decisions are
+    only read.
 
     When there is nothing to learn from, or on cancel, nothing is stored and the figures say why
     (`version` is None)."""
+    if not isinstance(inputs, Inputs):
+        inputs = Inputs.of(inputs)
     s = settings or Settings()
     t0 = time.perf_counter()
-    features = project._features
+    features = inputs.features
     if len(features) < 2:
         return dict(version=None, reason="fewer than two photos: nothing to relearn")
-    state, label_of, names = project._state_arrays()
+    state, label_of, names = inputs.state, inputs.label_of, inputs.names
     confirmed = np.where(state == LABELLED, label_of, -1)[(state == LABELLED) | (state == SET_ASIDE)]
     trains_head = s.head and (s.neighbourhood or (s.supervised and _can_supervise(confirmed)))
     fits_classifier = s.classifier and len(np.unique(label_of[state == LABELLED])) >= 2
     if not trains_head and not fits_classifier:
         return dict(version=None, reason="relearning needs photos confirmed under at least two labels")
-    before = _label_agreement(neighbours.prepare(project.features()), state, label_of)
+    before = _label_agreement(neighbours.prepare(inputs.geometry), state, label_of)
     blob = None
     figures = dict(photos=len(features), labelled=int((state == LABELLED).sum()),
                    set_aside=int((state == SET_ASIDE).sum()), supervised=False, neighbourhood=False,
@@ -557,9 +581,15 @@ def relearn_project(project, progress: Progress | None = None, seconds: float | 
         if progress:
             progress(0, 1, "fitting the label classifier")
         t1 = time.perf_counter()
-        clf = fit_classifier(features, state, label_of, names, c=s.classifier_c, balanced=s.classifier_balanced,
-                             not_label=project._not_label if s.classifier_rejections else None,
-                             rejection_weight=s.classifier_rejection_weight, cancel=cancel)
+        from core.label_classifier import LabelClassifier
+
+        try:
+            clf = LabelClassifier(c=s.classifier_c, balanced=s.classifier_balanced,
+                                  rejection_weight=s.classifier_rejection_weight).fit(
+                features, state, label_of, names, not_label=inputs.not_label if s.classifier_rejections else None,
+                cancel=cancel).to_classifier()
+        except InterruptedError:
+            clf = None
         if cancel is not None and cancel():
             return dict(version=None, cancelled=True, reason="cancelled; the active embedding is unchanged")
         figures["classifier_seconds"] = round(time.perf_counter() - t1, 2)
@@ -573,7 +603,7 @@ def relearn_project(project, progress: Progress | None = None, seconds: float | 
     figures["seconds"] = round(time.perf_counter() - t0, 2)
     settings_dict = asdict(s)
     settings_dict["rounds"] = list(s.rounds)
-    figures["version"] = project.store.add_relearn_version(extractor=project.extractor_id or "unknown",
+    figures["version"] = inputs.store.add_relearn_version(extractor=inputs.extractor_id or "unknown",
                                                            settings=settings_dict, figures=figures, state=blob)
     return figures
 

@@ -174,6 +174,9 @@ class Store:
         self.path = self.directory / STORE_FILE
         self._lock = threading.RLock()
         self._depth = 0                   # nesting of open transactions (under the lock)
+        self._pending: list[tuple] = []   # changes made by the open transaction, told after its commit
+        self._marks: list[int] = []       # len(_pending) at each open savepoint
+        self._listeners: list = []
         self._db: sqlite3.Connection | None = None
         self._vectors = None
         existed = self.path.exists()
@@ -328,6 +331,21 @@ class Store:
         error), holding the lock throughout; nested inside another, it is a savepoint of the outer one."""
         return _Transaction(self)
 
+    def after_commit(self, listener) -> None:
+        """Call `listener(changes)` after every committed transaction that changed labels, rejections,
+        deferred photos or the catalogue, with the list of what it changed, in order:
+        ("labels", {fingerprint: LabelRow or None}) — also clears those photos' deferred marks;
+        ("rejected", [(fingerprint, label), ...]) added, ("unrejected", [...]) removed;
+        ("deferred", {fingerprint: time or None}); ("decision", kind); ("catalogue",).
+        A rolled-back transaction tells nothing. Listeners run under the store's lock, in the thread
+        that committed; one that raises does not undo the commit."""
+        with self._lock:
+            self._listeners.append(listener)
+
+    def _note(self, change: tuple) -> None:
+        """Remember a change of the open transaction (the caller holds the lock inside one)."""
+        self._pending.append(change)
+
     def schema_version(self) -> int:
         return self._one("PRAGMA user_version")[0]
 
@@ -360,6 +378,7 @@ class Store:
             db.execute("DELETE FROM skipped")
             db.executemany("INSERT INTO skipped VALUES (?, ?, ?, ?)",
                            [(p, s, m, r) for p, (s, m, r) in skipped.items()])
+            self._note(("catalogue",))
 
     # -- embeddings --------------------------------------------------------------------------
     # Kept in memory-mapped files beside the store; core/vectors.py has the layout and the rules.
@@ -419,11 +438,19 @@ class Store:
                               json.dumps(before), undoes))
             for gid in close_proposals:
                 db.execute("UPDATE proposals SET open=0 WHERE id=?", (gid,))
+            self._note(("labels", dict(changes)))
             if label is not None:
+                pairs = sorted({(fp, label) for fp in rejected})
                 db.executemany("INSERT OR IGNORE INTO rejections VALUES (?, ?, ?)",
-                               [(fp, label, cur.lastrowid) for fp in rejected])
+                               [(fp, lab, cur.lastrowid) for fp, lab in pairs])
+                if pairs:
+                    self._note(("rejected", pairs))
             if undoes is not None:
+                gone = db.execute("SELECT fingerprint, label FROM rejections WHERE decision=?", (undoes,)).fetchall()
                 db.execute("DELETE FROM rejections WHERE decision=?", (undoes,))
+                if gone:
+                    self._note(("unrejected", [tuple(r) for r in gone]))
+            self._note(("decision", kind))
             return cur.lastrowid
 
     def last_undoable_of(self, kinds: Sequence[str]):
@@ -443,6 +470,11 @@ class Store:
         for fp, lab in rows:
             out.setdefault(fp, set()).add(lab)
         return out
+
+    def rejection_pairs(self) -> list[tuple[str, str]]:
+        """Every (fingerprint, label) 'not this label' row, once per decision that said it."""
+        with self._lock:
+            return [tuple(r) for r in self._conn().execute("SELECT fingerprint, label FROM rejections")]
 
     def decision_count(self, actions_only: bool = False) -> int:
         """Decisions logged; `actions_only`: leaving out undos (an undo takes an action back, it is
@@ -522,6 +554,7 @@ class Store:
                 r = db.execute("SELECT time FROM deferred WHERE fingerprint=?", (fp,)).fetchone()
                 previous[fp] = r[0] if r else None
             db.executemany("INSERT OR REPLACE INTO deferred VALUES (?, ?)", [(fp, now) for fp in previous])
+            self._note(("deferred", {fp: now for fp in previous}))
             return previous
 
     def restore_deferred(self, previous: dict[str, float | None]) -> None:
@@ -532,6 +565,7 @@ class Store:
                     db.execute("DELETE FROM deferred WHERE fingerprint=?", (fp,))
                 else:
                     db.execute("INSERT OR REPLACE INTO deferred VALUES (?, ?)", (fp, t))
+            self._note(("deferred", dict(previous)))
 
     def deferred(self) -> dict[str, float]:
         with self._lock:
@@ -628,6 +662,7 @@ class _Transaction:
                                      "try again") from exc
             else:
                 db.execute(f"SAVEPOINT s{st._depth}")
+                st._marks.append(len(st._pending))
             st._depth += 1
         except BaseException:
             st._lock.release()
@@ -640,17 +675,24 @@ class _Transaction:
             st._depth -= 1
             db = st._conn()
             if st._depth > 0:
+                mark = st._marks.pop()
                 if exc_type:
                     db.execute(f"ROLLBACK TO s{st._depth}")
+                    del st._pending[mark:]
                 db.execute(f"RELEASE s{st._depth}")
             elif exc_type:
+                st._pending.clear()
                 db.execute("ROLLBACK")
             else:
+                changes, st._pending = st._pending, []
                 try:
                     db.execute("COMMIT")
                 except sqlite3.Error as err:
                     db.execute("ROLLBACK")
                     raise StoreError(f"could not save to the project store {st.path}: {err}") from err
+                if changes:
+                    for listener in list(st._listeners):
+                        listener(changes)
         finally:
             st._lock.release()
         return False

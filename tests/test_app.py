@@ -444,7 +444,7 @@ def test_cancelling_a_scan_keeps_what_was_embedded(qtbot, window, demo_source, t
 
 
 def test_scan_steps_stay_true_over_chunked_embedding(qtbot):
-    """The engine embeds in chunks of 1,024 (core/project.py) and counts across them
+    """The engine embeds in chunks of 1,024 (core/scanning.py) and counts across them
     (tests/test_project.py::test_scan_progress_counts_across_chunks); should closing words ever count
     less than the bar (one chunk's), the scan page must not pass them off as the whole scan's."""
     from app.pages import ScanProgress

@@ -269,10 +269,10 @@ def test_scan_progress_counts_across_chunks(tmp_path, monkeypatch):
     counts across the whole scan, and says "done" once, at the end."""
     import re
 
-    import core.project
+    import core.scanning
     from tests.conftest import _photo_folder
 
-    monkeypatch.setattr(core.project, "_EMBED_CHUNK", 7)       # 30 photos: five chunks
+    monkeypatch.setattr(core.scanning, "EMBED_CHUNK", 7)       # 30 photos: five chunks
     folder = _photo_folder(tmp_path / "photos")
     seen: list[tuple[int, int, str]] = []
     with Project.open(folder) as p:

@@ -244,3 +244,31 @@ def test_relearn_never_touches_decisions_and_restore_brings_back_proposals(fashi
     p.restore(w)
     assert _snapshot(p.propose(limit=10)) == adapted
     assert set(CLASS_NAMES) >= set(p.status().by_label)
+
+
+def test_label_classifier_follows_scikit_learn_conventions():
+    """core/label_classifier.py: parameters in __init__, fit returns self, learned attributes end in
+    '_', scikit-learn's clone and get_params work, and it is the fit relearning stores."""
+    from sklearn.base import clone
+
+    from core.label_classifier import LabelClassifier
+
+    rng = np.random.default_rng(0)
+    centres = rng.normal(size=(3, 16))
+    y = rng.integers(0, 3, 300)
+    feats = (centres[y] + 0.5 * rng.normal(size=(300, 16))).astype(np.float32)
+    state = np.where(np.arange(300) < 200, 1, 0).astype(np.int8)
+    label_of = np.where(state == 1, y, -1)
+    names = ["a", "b", "c"]
+    est = LabelClassifier(c=2.0)
+    assert est.get_params() == dict(c=2.0, max_iter=200, balanced=True, rejection_weight=3.0)
+    assert not [k for k in vars(est) if k.endswith("_")]          # nothing learned before fit
+    assert est.fit(feats, state, label_of, names) is est
+    assert {"coef_", "intercept_", "mean_", "classes_"} <= set(vars(est))
+    ref = relearning.fit_classifier(feats, state, label_of, names, c=2.0)
+    np.testing.assert_array_equal(est.coef_, ref.weight)
+    np.testing.assert_array_equal(est.predict_proba(feats, names), ref.probabilities(feats, names))
+    assert (est.predict(feats[200:]) == np.array(names, dtype=object)[y[200:]]).mean() > 0.9
+    assert clone(est).get_params() == est.get_params() and not hasattr(clone(est), "coef_")
+    with pytest.raises(ValueError, match="two labels"):
+        LabelClassifier().fit(feats, state, np.where(state == 1, 0, -1), names)
