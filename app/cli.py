@@ -167,8 +167,12 @@ class _InterruptToCancel:
 
 def cmd_scan(args):
     bar = _Bar(not args.json)
+    cluster = args.cluster or args.workers
+    if cluster is None and (args.chunk is not None or args.transfer != "auto"):
+        args.parser.error("--chunk and --transfer apply to a cluster scan: add --cluster or --workers")
+    options = dict(chunk=args.chunk or 32, transfer=args.transfer) if cluster is not None else {}
     with _InterruptToCancel() as interrupt, _open(args) as p:
-        rep = p.scan(progress=bar, cancel=interrupt.asked.is_set)
+        rep = p.scan(progress=bar, cancel=interrupt.asked.is_set, cluster=cluster, **options)
     if args.json:
         _print(rep, True)
     else:
@@ -544,6 +548,20 @@ def _whole(lo: int, hi: int, what: str):
 _group_id = _whole(0, _MAX_ID, "a group id (shown by 'kinfold propose')")
 
 
+def _scheduler(text: str) -> str:
+    """`--cluster tcp://HOST:PORT`: a Dask scheduler's address."""
+    from core.cluster_scan import parse_target
+
+    try:
+        target = parse_target(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+    if not isinstance(target, str):
+        raise argparse.ArgumentTypeError(f"{text!r} is not a scheduler address; write it as tcp://HOST:PORT "
+                                         f"(for local worker processes use --workers N)")
+    return target
+
+
 def _split(text: str) -> tuple[float, ...]:
     """`--split 0.8,0.1,0.1`: 1 to 3 finite, non-negative fractions that add up to 1."""
     hint = "give 1 to 3 fractions for train,val,test that add up to 1, e.g. --split 0.8,0.1,0.1"
@@ -587,7 +605,17 @@ def build_parser() -> argparse.ArgumentParser:
         s.set_defaults(func=func, parser=s)
         return s
 
-    verb("scan", cmd_scan, "find and embed new or changed photos (a progress bar when run in a terminal)")
+    s = verb("scan", cmd_scan, "find and embed new or changed photos (a progress bar when run in a terminal)")
+    where = s.add_mutually_exclusive_group()
+    where.add_argument("--cluster", type=_scheduler, metavar="tcp://HOST:PORT",
+                       help="embed on the workers of this Dask scheduler (see README: scanning on a cluster)")
+    where.add_argument("--workers", type=_whole(1, 256, "--workers"), metavar="N",
+                       help="embed in N local worker processes (a Dask LocalCluster on 127.0.0.1)")
+    s.add_argument("--chunk", type=_whole(1, 100_000, "--chunk"), default=None,
+                   help="photos per cluster task (default 32)")
+    s.add_argument("--transfer", choices=["auto", "path", "bytes"], default="auto",
+                   help="how workers get the photos: open the shared path, or bytes sent from here "
+                        "(default: the path when every worker sees the folder)")
     s = verb("propose", cmd_propose, "list the next groups to confirm")
     s.add_argument("--limit", type=_whole(1, 100_000, "--limit"), default=10, help="groups listed (default 10)")
     s.add_argument("--show", type=_whole(0, 100_000, "--show"), default=6, help="members listed per group")

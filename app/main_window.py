@@ -15,6 +15,7 @@ group nobody has seen. Mouse clicks meanwhile are refused with a message for the
 from __future__ import annotations
 
 import dataclasses
+import functools
 import gc
 import importlib
 from dataclasses import dataclass
@@ -205,6 +206,7 @@ class MainWindow(QMainWindow):
             lst.setContextMenuPolicy(Qt.ContextMenuPolicy.CustomContextMenu)
             lst.customContextMenuRequested.connect(lambda pos, w=lst: self._label_menu(w, pos))
         self.start.show_recent(self.recent_folders())
+        self.start.scan_on.setText(str(self.settings.value("scan_on", "") or ""))  # dask: where scans embed
         self._sync_actions()
 
     # -- actions ------------------------------------------------------------------------------
@@ -339,6 +341,12 @@ class MainWindow(QMainWindow):
             return False
         self.close_folder()
         try:
+            scan = self._scan_call()  # dask: where the scan embeds (the start page's "Embed photos on")
+        except ValueError as exc:
+            self.start.show_error(f"Embed photos on: {exc}")
+            self.stack.setCurrentWidget(self.start)
+            return False
+        try:
             self.project = Project.open(folder)
         except (ProjectError, StoreError) as exc:
             self.start.show_error(str(exc))
@@ -352,8 +360,20 @@ class MainWindow(QMainWindow):
         self.actions["relearn"].setVisible(relearning_available())
         self.scan_page.title.setText(f"Reading {self.project.folder.name}")
         self.stack.setCurrentWidget(self.scan_page)
-        self._run("scan", self.project.scan, self.scan_page.progress, self._scanned)
+        self._run("scan", scan(self.project), self.scan_page.progress, self._scanned)
         return True
+
+    def _scan_call(self):
+        """The scan with the start page's "Embed photos on" (saved as setting `scan_on`); ValueError if
+        the text names no place to embed."""
+        from core.cluster_scan import parse_target
+
+        text = self.start.scan_on.text().strip()
+        target = parse_target(text)
+        self.settings.setValue("scan_on", text)
+        if target is None:
+            return lambda project: project.scan
+        return lambda project: functools.partial(project.scan, cluster=target)
 
     def close_folder(self) -> None:
         """Cancel every job and wait until each has ended, however long its last step takes; only then

@@ -14,6 +14,7 @@ from app import theme
 from app.jobs import JobProgress, _duration
 from app.photo_grid import PhotoGrid, PhotoModel
 from app.side_panel import count
+from core.calibration import plain_label, plain_words
 
 
 def _label(text: str = "", name: str | None = None, wrap: bool = False) -> QLabel:
@@ -155,6 +156,15 @@ class StartPage(QWidget):
         self.recent.setMaximumWidth(640)
         self.error = _label(name="problem", wrap=True)
         self.error.hide()
+        # Where a scan embeds the photos (setting "scan_on"): empty is this process; a number of local
+        # worker processes or a Dask scheduler's tcp://host:port (core/cluster_scan.py).
+        self.scan_on = QLineEdit()
+        self.scan_on.setObjectName("scan_on")
+        self.scan_on.setPlaceholderText("this computer  (or a number of worker processes, or tcp://host:port)")
+        self.scan_on.setMaximumWidth(640)
+        self.scan_on.setToolTip("Where a scan embeds the photos: leave empty for this process, give a number of "
+                                "worker processes on this computer, or the address of a Dask scheduler whose "
+                                "workers see the same folder")
         col = QVBoxLayout()
         col.addStretch(1)
         col.addWidget(_label("Kinfold", "title"))
@@ -162,6 +172,9 @@ class StartPage(QWidget):
         col.addSpacing(18)
         col.addWidget(self.choose, 0, Qt.AlignmentFlag.AlignLeft)
         col.addWidget(self.error)
+        col.addSpacing(18)
+        col.addWidget(_label("Embed photos on", "heading"))
+        col.addWidget(self.scan_on)
         col.addSpacing(18)
         col.addWidget(_label("Recently opened", "heading"))
         col.addWidget(self.recent)
@@ -437,9 +450,9 @@ class GroupPage(QWidget):
             self.label.clear()
             return
         self._show_header()
-        parts = [f"trust {g.trust:.2f}"]
+        parts = [f"{plain_words(g.trust)} (trust {g.trust:.2f})"]
         if g.suggested_label:
-            conf = f" (confidence {g.confidence:.2f})" if g.confidence is not None else ""
+            conf = f" ({plain_label(g.confidence)}, {g.confidence:.2f})" if g.confidence is not None else ""
             parts.append(f"suggested label “{g.suggested_label}”{conf}")
         parts += [g.kind, f"{queued} more {'group' if queued == 1 else 'groups'} queued" if queued
                   else "no more groups queued"]

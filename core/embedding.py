@@ -8,6 +8,7 @@ no start-method hazards when called from a Qt worker thread, no per-call start-u
 """
 from __future__ import annotations
 
+import io
 import os
 import platform
 from collections import deque
@@ -266,7 +267,14 @@ class _Failed(NamedTuple):
     retry: bool
 
 
-def _prepare(path: Path, extractor: Extractor, flipped: bool):
+def _source(item):
+    """A path as a Path; an open binary file (or bytes, wrapped) as it is: load_rgb reads either."""
+    if isinstance(item, (bytes, bytearray, memoryview)):
+        return io.BytesIO(item)
+    return item if hasattr(item, "read") else Path(item)
+
+
+def _prepare(path, extractor: Extractor, flipped: bool):
     """Runs in a worker thread: decoded tensors, or (reason, worth retrying) when the photo failed."""
     try:
         img = load_rgb(path, min_side=extractor.decode_side)
@@ -290,7 +298,7 @@ def embed_files(
     flipped_view: bool = False,
     counted: tuple[int, int, int] | None = None,
 ) -> EmbedResult:
-    """Embed ``paths`` in order. Photos that cannot be read go to ``failed`` (not a readable photo)
+    """Embed ``paths`` in order (paths, open binary files or bytes). Photos that cannot be read go to ``failed`` (not a readable photo)
     or ``retry`` (a failure that may pass, including the network failing on a batch); on cancel the
     photos embedded so far are returned with ``cancelled=True``. Safe to call from any thread.
 
@@ -341,7 +349,7 @@ def embed_files(
                 cancelled = True
                 break
             while submitted < total and len(pending) < window:
-                pending.append((submitted, pool.submit(_prepare, Path(paths[submitted]), extractor, flipped_view)))
+                pending.append((submitted, pool.submit(_prepare, _source(paths[submitted]), extractor, flipped_view)))
                 submitted += 1
             index, future = pending.popleft()
             prepared = result_or_cancel(future, cancel)

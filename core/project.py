@@ -14,6 +14,7 @@ Example (runs on the demo folder; the first scan embeds a few hundred photos in 
 """
 from __future__ import annotations
 
+import dataclasses
 import functools
 import getpass
 import os
@@ -191,12 +192,18 @@ class Project:
             self._extractor = get_extractor(self.extractor_name)
         return self._extractor
 
-    def scan(self, progress: Progress | None = None, cancel: Cancel | None = None) -> ScanReport:
+    def scan(self, progress: Progress | None = None, cancel: Cancel | None = None, cluster=None,
+             **cluster_options) -> ScanReport:
         """Find new and changed photos and embed those not embedded yet (core/scanning.py). Safe to
         cancel: what was embedded is kept, and the next scan goes on from there. A file that is not a
         readable photo is remembered as skipped; a failure that may pass (I/O, memory, the network) is
-        reported in `skipped` for this scan only and tried again by the next one."""
-        return scanning.scan(self, progress, cancel)
+        reported in `skipped` for this scan only and tried again by the next one.
+
+        `cluster`: embed on Dask instead of in this process: a number of local worker processes, a
+        scheduler address "tcp://host:port" or an open distributed.Client (core/cluster_scan.py;
+        `cluster_options` go to its `embed_rows`: chunk, transfer, threads). A scheduler lost mid-scan
+        raises ProjectError once the catalogue and everything embedded are stored."""
+        return scanning.scan(self, progress, cancel, cluster=cluster, **cluster_options)
 
     # -- geometry ----------------------------------------------------------------------------
     def _geometry_version(self) -> int | None:
@@ -284,14 +291,15 @@ class Project:
         decision is made the queue stays as it is; after one, the groups not returned yet are formed
         again. A relearn or restore asks for new groups: the open ones formed under another version
         are closed."""
-        return proposal_queue.propose(self, limit, settings, hold)
+        return self._calibrated(proposal_queue.propose(self, limit, settings, hold))
 
     @_serialised
     def group(self, group_id: int) -> Group:
         row = self.store.proposal(group_id)
         if row is None:
             raise ProjectError(f"there is no group {group_id}")
-        return Group(row.id, row.members, row.trust, row.suggested_label, row.confidence, row.kind)
+        return self._calibrated([Group(row.id, row.members, row.trust, row.suggested_label, row.confidence,
+                                       row.kind)])[0]
 
     def _open_group(self, group_id: int):
         row = self.store.proposal(group_id)
@@ -619,6 +627,82 @@ class Project:
             self._graph = self._load_or_build_graph(progress, cancel)
             self._graph_version = version
         return self._graph
+
+    # --- calib: calibrated trust and suggestion confidence (core/calibration.py) ---
+    @_serialised
+    def calibration(self) -> "calibration.Calibrator":
+        """The trust calibration: the prior, and the isotonic map learned from the accepted groups of
+        this project (observed purity = share of the members not taken out)."""
+        from core import calibration
+
+        key = (self.store.decision_count(), self.store.active_relearn_version(), len(self._rows))
+        cache = self.__dict__.setdefault("_calibration_cache", {})
+        if cache.get("key") == key:
+            return cache["calibrator"]
+        if cache.get("graph") != key[1:]:        # features are measured on the graph in use
+            cache.clear()
+            cache.update(graph=key[1:], seen={})
+        seen, graph = cache["seen"], self.graph()
+        ranks = None
+        decisions = self.store.decisions()
+        undone = {d["undoes"] for d in decisions if d["undoes"] is not None}
+        cal = calibration.Calibrator()
+        for d in decisions:
+            if d["kind"] != "accept" or d["group_id"] is None or d["id"] in undone:
+                continue
+            if d["id"] not in seen:                # each accepted group is measured once
+                row = self.store.proposal(d["group_id"])
+                idx = [self._index[m] for m in (row.members if row else ()) if m in self._index]
+                if not idx:
+                    seen[d["id"]] = None
+                    continue
+                if ranks is None:
+                    ranks = calibration.entropy_ranks(graph)
+                kept = len({self._rows[i].path for i in idx} & set(d["photos"])) / len(idx)
+                sug = row.suggested_label is not None
+                seen[d["id"]] = (calibration.group_features(graph, idx, sug, row.confidence, ranks), kept, len(idx),
+                                 (kept if d["label"] == row.suggested_label else 0.0) if sug else None)
+            if seen[d["id"]] is not None:
+                cal.observe(*seen[d["id"]])
+        cache.update(key=key, calibrator=cal)
+        return cal
+
+    def _calibrated(self, groups: list[Proposal]) -> list[Proposal]:
+        """The groups with trust = calibrated expected purity and confidence = calibrated expected share
+        carrying the suggested label. The stored figures (and so the order) stay the engine's."""
+        if not groups:
+            return groups
+        cal = self.calibration()
+        items = [([self._index[m] for m in g.members if m in self._index] or [0], g.suggested_label is not None,
+                  g.confidence) for g in groups]
+        figs = cal.calibrate(self.graph(), items)
+        return [dataclasses.replace(g, trust=round(t, 4), confidence=None if c is None else round(c, 4))
+                for g, (t, c) in zip(groups, figs)]
+
+    # --- dask: embedding a scan on a Dask cluster (core/cluster_scan.py) ---
+    @staticmethod
+    def _cluster_target(cluster):
+        from core import cluster_scan
+
+        try:
+            return cluster_scan.parse_target(cluster)
+        except ValueError as exc:
+            raise ProjectError(str(exc)) from None
+
+    def _embed_on_cluster(self, cluster, rows, extractor, progress, cancel, failed, retry, paths_of, options):
+        """Embed `rows` on the cluster, storing each chunk; fills `failed` / `retry` as the in-process
+        loop does. Returns (embedded, cancelled, one-line reason the cluster was lost or None)."""
+        from core import cluster_scan
+
+        try:
+            run = cluster_scan.embed_rows(self.folder, rows, extractor, self.store, cluster, progress=progress,
+                                          cancel=cancel, extractor_name=self.extractor_name, **options)
+        except cluster_scan.ClusterError as exc:  # before any work was sent: nothing embedded
+            return 0, True, str(exc)
+        failed.update(run.failed)
+        for fp, reason in run.retry.items():
+            retry.update((path, reason) for path in paths_of[fp])
+        return run.embedded, run.cancelled or run.lost is not None, run.lost
 
 
 def _check_extractor(obj) -> None:

@@ -31,8 +31,11 @@ class ScanReport:
     seconds: float = 0.0
 
 
-def scan(project, progress=None, cancel=None) -> ScanReport:
-    """Scan `project`'s folder (a core.project.Project); see the module's docstring."""
+def scan(project, progress=None, cancel=None, cluster=None, **cluster_options) -> ScanReport:
+    """Scan `project`'s folder (a core.project.Project); see the module's docstring. With `cluster`
+    the embedding runs on Dask (core/cluster_scan.py, through Project's "dask" block)."""
+    if cluster is not None:
+        cluster = project._cluster_target(cluster)
     t0 = time.perf_counter()
     previous = {r.path: r for r in project.store.photos()}
     # Skips remembered before reasons were checked for being final (and named no path) are
@@ -57,7 +60,11 @@ def scan(project, progress=None, cancel=None) -> ScanReport:
             if r.fingerprint not in done_fps:
                 todo.setdefault(r.fingerprint, r)
     todo_rows = list(todo.values())
-    if todo_rows:
+    lost = None
+    if todo_rows and cluster is not None:
+        embedded, cancelled, lost = project._embed_on_cluster(cluster, todo_rows, extractor, progress, cancel,
+                                                              failed, retry, paths_of, cluster_options)
+    elif todo_rows:
         from core.embedding import embed_files
 
         for start in range(0, len(todo_rows), EMBED_CHUNK):
@@ -89,6 +96,8 @@ def scan(project, progress=None, cancel=None) -> ScanReport:
         project._compact_vectors()
     shown = [(p, v[2]) for p, v in skipped.items()]
     shown += [(p, f"{reason} (tried again at the next scan)") for p, reason in retry.items()]
+    if lost:  # the cluster went away: what finished is stored, the next scan carries on
+        raise ProjectError(lost)
     ready = {r.path for r in photos}  # new and changed count photos, not files later left out
     return ScanReport(photos=len(project._rows), new=sum(p in ready for p in cat.new),
                       changed=sum(p in ready for p in cat.changed),

@@ -1,0 +1,383 @@
+"""How honest the trust figure is: the trust-calibration measurement of docs' yield protocol.
+
+    python -m benchmarks.calibration                          # fashion, fashion-train, digits, demo
+    python -m benchmarks.calibration --datasets fashion,demo
+    python -m benchmarks.calibration --fit-prior              # refit the prior on Fashion-MNIST test 2,000
+
+For each data set, with the simulated annotator of the yield protocol who knows the true classes:
+* cold: a fresh project, the first 50 groups the engine proposes;
+* warm: then up to 15 groups accepted as the annotator would (stopping once half the photos carry a
+  label), a relearn, and the next 50 groups.
+For each set of groups it prints the photo-weighted mean |trust - purity| of the raw engine figure and
+of the calibrated one (core.calibration), the same for the suggested label's confidence against the
+share of members that carry it, and the reliability table (trust bins x observed photo-weighted purity,
+groups and photos per bin). A reliability plot goes to --out (default out/calibration/reliability.png).
+
+Data sets: Fashion-MNIST test 2,000 (`fashion`, the one the prior is fitted on), Fashion-MNIST train
+first 2,000 (`fashion-train`), scikit-learn's digits rendered as 32 x 32 grey photos (`digits`), and the
+demo folder (`demo`, scanned once into a store under ~/.cache/kinfold-bench/calibration/). All use
+EfficientNet-Lite0 ImageNet features and the engine's proposals (core.proposals) through `Replay` below.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+from benchmarks.fashion import CACHE_DIR, CLASS_NAMES, fashion_features  # noqa: E402
+from benchmarks.yield_sim import majority  # noqa: E402
+from core import calibration, neighbours, proposals, relearning  # noqa: E402
+from core.project import Proposal  # noqa: E402
+from core.proposals import FREE, LABELLED  # noqa: E402
+
+
+# The replay of the yield protocol's annotator on cached features, without a store (as
+# benchmarks.yield_replay ran it before it moved to a real Project over cached features).
+@dataclass
+class _Status:
+    labelled: int
+    by_label: dict
+
+
+class Replay:
+    """A stand-in for core.project.Project over arrays: the verbs benchmarks.yield_sim.simulate
+    calls (photos, status, propose, accept, split, relearn, graph), with the state a Project keeps
+    (labels, "not this label" answers, split parts waiting first) and no store. Photos are row
+    numbers; labels are names, numbered as Project numbers them (sorted, in use only)."""
+
+    def __init__(self, features: np.ndarray, relearn_settings=None, propose_settings=None):
+        self.features = features
+        self.n = len(features)
+        self.state = np.zeros(self.n, np.int8)
+        self.label_name: list[str | None] = [None] * self.n
+        self.rejected: list[set[str]] = [set() for _ in range(self.n)]
+        self.pinned: list[Proposal] = []
+        self.open: dict[int, Proposal] = {}
+        self.next_id = 0
+        self._graph = neighbours.build_graph(features)
+        self.classifier: relearning.Classifier | None = None
+        self.relearn_settings = relearn_settings or relearning.Settings()
+        self.propose_settings = propose_settings
+
+    # -- the verbs of Project that the simulator calls -------------------------------------------
+    def photos(self) -> list[int]:
+        return list(range(self.n))
+
+    def status(self) -> _Status:
+        names = [x for x in self.label_name if x is not None]
+        return _Status(len(names), {k: names.count(k) for k in set(names)})
+
+    def graph(self) -> neighbours.Graph:
+        return self._graph
+
+    def _state_arrays(self):
+        names = sorted({x for x in self.label_name if x is not None})
+        pos = {x: i for i, x in enumerate(names)}
+        label_of = np.array([pos[x] if x is not None else -1 for x in self.label_name], np.int64)
+        self._not_label = np.zeros((self.n, len(names)), bool)
+        for i, rej in enumerate(self.rejected):
+            for x in rej & pos.keys():
+                self._not_label[i, pos[x]] = True
+        return self.state.copy(), label_of, names
+
+    def _group(self, members, trust, suggested, confidence, kind) -> Proposal:
+        self.next_id += 1
+        return Proposal(self.next_id, members, trust, suggested, confidence, kind)
+
+    def propose(self, limit: int = 20) -> list[Proposal]:
+        state, label_of, names = self._state_arrays()
+        out, taken = [], np.zeros(self.n, bool)
+        for g in self.pinned:
+            m = [i for i in g.members if state[i] == FREE and not taken[i]]
+            if m:
+                taken[m] = True
+                g.members = m
+                out.append(g)
+        self.pinned = out[:]
+        if limit > len(out):
+            clf = None if self.classifier is None else self.classifier.probabilities(self.features, names)
+            groups = proposals.form_groups(self._graph, state, label_of, len(names), limit - len(out),
+                                           self.propose_settings, ~taken, self._not_label, clf)
+            out += [self._group(g.members, g.trust, None if g.suggested_label is None else names[g.suggested_label],
+                                g.confidence, g.kind) for g in groups]
+        self.open = {g.id: g for g in out}
+        return out[:limit]
+
+    def accept(self, group_id: int, label: str, drop=()) -> None:
+        g = self.open.pop(group_id)
+        drop = set(drop)
+        for i in g.members:
+            if i in drop:
+                self.rejected[i].add(label)
+            else:
+                self.state[i], self.label_name[i] = LABELLED, label
+        self.pinned = [p for p in self.pinned if p.id != group_id]
+
+    def split(self, group_id: int) -> None:
+        g = self.open.pop(group_id)
+        part = proposals.split_members(self._graph.x[g.members])
+        parts = [[m for m, p in zip(g.members, part) if p == k] for k in (0, 1)]
+        if g.members[0] in parts[1]:
+            parts.reverse()
+        # The store keeps pinned groups in the order they were made: new parts go last.
+        self.pinned = [p for p in self.pinned if p.id != group_id] + [
+            self._group(pm, g.trust, g.suggested_label, g.confidence, "split part") for pm in parts if pm]
+
+    def relearn(self, seconds: float | None = None) -> dict:
+        """What core.relearning.relearn_project does, without a store: the label classifier and,
+        with Settings.head, the projection head and its graph."""
+        s = self.relearn_settings
+        state, label_of, names = self._state_arrays()
+        figures: dict = {}
+        confirmed = np.where(state == LABELLED, label_of, -1)[state != FREE]
+        if s.head and s.supervised and relearning._can_supervise(confirmed):
+            blob, figures = relearning.train_head(self.features, state, label_of, s, seconds=seconds)
+            self._graph = neighbours.build_graph(relearning.apply(blob, self.features))
+        if s.classifier:
+            self.classifier = relearning.fit_classifier(
+                self.features, state, label_of, names, c=s.classifier_c, balanced=s.classifier_balanced,
+                not_label=self._not_label if s.classifier_rejections else None,
+                rejection_weight=s.classifier_rejection_weight)
+        return figures
+
+
+WORK = CACHE_DIR / "calibration"
+DATASETS = ("fashion", "fashion-train", "digits", "demo")
+
+
+def load(name: str) -> tuple[np.ndarray, list[str]]:
+    """(features, true class per photo) of a data set."""
+    if name == "fashion":
+        f, y = fashion_features(2000)
+        return f, [CLASS_NAMES[int(c)] for c in y]
+    if name == "fashion-train":
+        f, y = fashion_features(2000, split="train")
+        return f, [CLASS_NAMES[int(c)] for c in y]
+    WORK.mkdir(parents=True, exist_ok=True)
+    cache_f, cache_y = WORK / f"{name}-features.npy", WORK / f"{name}-classes.json"
+    if cache_f.is_file() and cache_y.is_file():
+        return np.load(cache_f), json.loads(cache_y.read_text())
+    if name == "digits":
+        from PIL import Image
+        from sklearn.datasets import load_digits
+
+        from core.embedding import embed_images, get_extractor
+
+        d = load_digits()
+        imgs = (Image.fromarray((im * 255 / 16).astype(np.uint8), "L").resize((32, 32), Image.BILINEAR)
+                .convert("RGB") for im in d.images)
+        feats = embed_images(imgs, get_extractor())
+        classes = [str(int(c)) for c in d.target]
+    elif name == "demo":
+        from app.demo import load_demo_truth
+        from core.project import Project
+
+        truth = load_demo_truth(ROOT / "resources" / "demo_truth.csv")
+        p = Project.open(ROOT / "sample_images", store=WORK / "demo-store", annotator="simulated")
+        try:
+            p.scan()
+            keep = [i for i, q in enumerate(p.photos()) if truth.get(q) not in (None, "broken")]
+            feats = p._features[keep]
+            classes = [truth[p.photos()[i]] for i in keep]
+        finally:
+            p.close()
+    else:
+        raise SystemExit(f"unknown data set {name}; choose from {', '.join(DATASETS)}")
+    np.save(cache_f, feats)
+    cache_y.write_text(json.dumps(classes))
+    return feats, classes
+
+
+def _measure(rep: Replay, groups, classes, cal: calibration.Calibrator) -> dict:
+    """Raw and calibrated figures of `groups` against the truth."""
+    figs = cal.calibrate(rep.graph(), [(g.members, g.suggested_label is not None, g.confidence) for g in groups])
+    rows = []
+    for g, (t, c) in zip(groups, figs):
+        cls = [classes[i] for i in g.members]
+        share = None if g.suggested_label is None else float(np.mean([x == g.suggested_label for x in cls]))
+        rows.append(dict(size=len(cls), purity=calibration.purity(cls), raw=g.trust, trust=t,
+                         raw_conf=g.confidence, conf=c, share=share, kind=g.kind))
+    return _summary(rows)
+
+
+def _summary(rows: list[dict]) -> dict:
+    size = [r["size"] for r in rows]
+    pur = [r["purity"] for r in rows]
+    out = dict(groups=len(rows), photos=int(sum(size)), rows=rows,
+               raw_error=calibration.calibration_error([r["raw"] for r in rows], pur, size),
+               error=calibration.calibration_error([r["trust"] for r in rows], pur, size),
+               table=calibration.reliability_table([r["trust"] for r in rows], pur, size))
+    out["bin_gap"] = calibration.bin_gap(out["table"])
+    out["floor"] = calibration.calibration_error([float(np.median(pur))] * len(pur), pur, size)
+    lab = [r for r in rows if r["share"] is not None]
+    if lab:
+        s = [r["size"] for r in lab]
+        sh = [r["share"] for r in lab]
+        out["label_groups"] = len(lab)
+        out["raw_conf_error"] = calibration.calibration_error([r["raw_conf"] for r in lab], sh, s)
+        out["conf_error"] = calibration.calibration_error([r["conf"] for r in lab], sh, s)
+    return out
+
+
+def run(feats: np.ndarray, classes: list[str], cal: calibration.Calibrator | None = None,
+        warm_groups: int = 15, limit: int = 50, relearn: bool = True) -> dict:
+    """Cold and warm measurement on one data set; `cal` learns from the accepted groups."""
+    cal = cal or calibration.Calibrator()
+    rep = Replay(feats)
+    cold_groups = rep.propose(limit=limit)
+    cold = _measure(rep, cold_groups, classes, cal)
+    n, labelled = len(classes), 0
+    ranks = calibration.entropy_ranks(rep.graph())
+    for _ in range(warm_groups):
+        if labelled >= n / 2:
+            break
+        gs = rep.propose(limit=1)
+        if not gs:
+            break
+        g = gs[0]
+        cls = [classes[i] for i in g.members]
+        m = majority(cls)
+        drop = [i for i, c in zip(g.members, cls) if c != m]
+        f = calibration.group_features(rep.graph(), g.members, g.suggested_label is not None, g.confidence, ranks)
+        kept = len(cls) - len(drop)
+        cal.observe(f, kept / len(cls), len(cls),
+                    None if g.suggested_label is None else (kept / len(cls) if g.suggested_label == m else 0.0))
+        rep.accept(g.id, m, drop=drop)
+        labelled += kept
+    if relearn:
+        rep.relearn()
+    warm = _measure(rep, rep.propose(limit=limit), classes, cal)
+    warm["accepted_before"] = len(cal.seen_trust)
+    return dict(cold=cold, warm=warm)
+
+
+def print_result(name: str, res: dict) -> None:
+    for phase in ("cold", "warm"):
+        r = res[phase]
+        extra = f", after {r['accepted_before']} accepted groups and a relearn" if phase == "warm" else ""
+        print(f"{name} {phase}{extra}: {r['groups']} groups, {r['photos']} photos")
+        print(f"  photo-weighted |trust - purity|: calibrated {r['error']:.3f} (goal <= 0.05), "
+              f"raw engine figure {r['raw_error']:.3f}")
+        print(f"  per-bin gap (photo-weighted |bin trust - bin purity|): {r['bin_gap']:.3f}; "
+              f"one figure for every group (the median purity) would score {r['floor']:.3f}")
+        if "label_groups" in r:
+            print(f"  suggested label, |confidence - share carrying it| over {r['label_groups']} groups: "
+                  f"calibrated {r['conf_error']:.3f}, raw {r['raw_conf_error']:.3f}")
+        print(f"  {'trust bin':<11} {'groups':>6} {'photos':>6} {'trust':>6} {'purity':>6}")
+        for b in r["table"]:
+            t = "" if b["trust"] is None else f"{b['trust']:.3f}"
+            p = "" if b["purity"] is None else f"{b['purity']:.3f}"
+            print(f"  {b['bin']:<11} {b['groups']:>6} {b['photos']:>6} {t:>6} {p:>6}")
+
+
+def plot(results: dict, path: Path) -> None:
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, axes = plt.subplots(1, 2, figsize=(9, 4.3), sharey=True)
+    for ax, phase in zip(axes, ("cold", "warm")):
+        ax.plot([0, 1], [0, 1], color="#999", lw=1, ls="--", label="trust = purity")
+        for name, res in results.items():
+            r = res[phase]["rows"]
+            t = np.array([x["trust"] for x in r])
+            p = np.array([x["purity"] for x in r])
+            w = np.array([x["size"] for x in r], float)
+            ax.scatter(t, p, s=6 + 2 * np.sqrt(w) * 3, alpha=0.45,
+                       label=f"{name} (error {res[phase]['error']:.3f})")
+        ax.set_title("before any label" if phase == "cold" else "after labels and a relearn")
+        ax.set_xlabel("calibrated trust")
+        ax.set_xlim(0.3, 1.02)
+        ax.set_ylim(0.3, 1.02)
+        ax.grid(alpha=0.3)
+        ax.legend(fontsize=7, loc="lower right")
+    axes[0].set_ylabel("observed purity (true classes)")
+    fig.suptitle("Kinfold trust against purity, first 50 groups (dot area ~ group size)", fontsize=10)
+    fig.tight_layout()
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path, dpi=100)
+    plt.close(fig)
+
+
+def fit_prior(stages=(0, 15, 30, 60), limit: int = 100) -> None:
+    """Fit PRIOR_TRUST / PRIOR_LABEL on Fashion-MNIST test 2,000: the first `limit` groups proposed
+    cold and after each number of accepted groups in `stages` (each followed by a relearn)."""
+    feats, classes = load("fashion")
+    rows = []
+    rep = Replay(feats)
+    done = 0
+    for stage in stages:
+        while done < stage:
+            g = rep.propose(limit=1)[0]
+            cls = [classes[i] for i in g.members]
+            m = majority(cls)
+            rep.accept(g.id, m, drop=[i for i, c in zip(g.members, cls) if c != m])
+            done += 1
+        if stage:
+            rep.relearn()
+        ranks = calibration.entropy_ranks(rep.graph())
+        for g in rep.propose(limit=limit):
+            cls = [classes[i] for i in g.members]
+            if len(cls) < 2:
+                continue
+            sug = g.suggested_label is not None
+            f = calibration.group_features(rep.graph(), g.members, sug, g.confidence, ranks)
+            share = float(np.mean([c == g.suggested_label for c in cls])) if sug else None
+            rows.append((f, calibration.purity(cls), share, len(cls)))
+    x = np.array([r[0] for r in rows])
+    mean, scale = x.mean(0), np.maximum(x.std(0), 1e-3)
+    calibration.MEAN[:], calibration.SCALE[:] = [round(float(v), 4) for v in mean], [round(float(v), 4) for v in scale]
+    size = np.array([r[3] for r in rows], float)
+    trust = calibration.fit_prior(x, np.array([r[1] for r in rows]), size)
+    lab = [r for r in rows if r[2] is not None]
+    label = calibration.fit_prior(np.array([r[0] for r in lab]), np.array([r[2] for r in lab]),
+                                  np.array([r[3] for r in lab], float))
+    print(f"{len(rows)} groups ({len(lab)} with a suggestion); paste into core/calibration.py:")
+    print(f"PRIOR_TRUST = {trust}")
+    print(f"PRIOR_LABEL = {label}")
+    print(f"MEAN = {calibration.MEAN}")
+    print(f"SCALE = {calibration.SCALE}")
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--datasets", default=",".join(DATASETS))
+    ap.add_argument("--fit-prior", action="store_true")
+    ap.add_argument("--fit-stages", default="0,15,30,60", help="accepted groups before each set of groups fitted on")
+    ap.add_argument("--fit-limit", type=int, default=100, help="groups fitted on at each stage")
+    ap.add_argument("--out", default=str(ROOT / "out" / "calibration"))
+    ap.add_argument("--plot", default=None, help="also write the reliability plot here (e.g. a screenshot path)")
+    args = ap.parse_args(argv)
+    print("command: python -m benchmarks.calibration " + " ".join(sys.argv[1:] if argv is None else argv))
+    if args.fit_prior:
+        fit_prior(tuple(int(v) for v in args.fit_stages.split(",")), args.fit_limit)
+        return 0
+    results = {}
+    for name in args.datasets.split(","):
+        t0 = time.perf_counter()
+        feats, classes = load(name)
+        results[name] = run(feats, classes)
+        print_result(name, results[name])
+        print(f"  ({time.perf_counter() - t0:.1f} s)", flush=True)
+    print("summary (photo-weighted |trust - purity|, goal <= 0.05): " + "; ".join(
+        f"{k} cold {v['cold']['error']:.3f} warm {v['warm']['error']:.3f}" for k, v in results.items()))
+    out = Path(args.out)
+    plot(results, out / "reliability.png")
+    if args.plot:
+        plot(results, Path(args.plot))
+    (out / "calibration.json").write_text(json.dumps(
+        {k: {ph: {x: y for x, y in v[ph].items() if x != "rows"} for ph in v} for k, v in results.items()}, indent=1))
+    print(f"plot: {out / 'reliability.png'}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
