@@ -9,7 +9,7 @@ rows until they are scrolled to (review: a chunk of 600 at a time; browse: a pag
 
 Target: no wait (the photos shown in well under a second) and no stall of 100 ms or more.
 
-The photos are real PNG files: Fashion-MNIST (Xiao, Rasul, Vollgraf 2017; Debian dataset-fashion-mnist),
+The photos are real PNG files: Fashion-MNIST (Debian dataset-fashion-mnist),
 the 10,000 test photos and then the first of the training split, written in 20 subfolders. So the
 window's scan finds every photo embedded without running the network (hours for 20,000 photos on two
 cores), the store is seeded with an embedding computed from the same pixels: the raw pixels projected

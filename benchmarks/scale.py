@@ -3,8 +3,8 @@
     python -m benchmarks.scale --n 100000 --actions 40       # through Project: store, vectors file, graph, verbs
     python -m benchmarks.scale --n 1000000 --engine-only     # graph on a memory-mapped features file
 
-The collection: Fashion-MNIST's 70,000 photos (train + test splits, Debian dataset-fashion-mnist;
-Xiao, Rasul, Vollgraf 2017) as a cheap stand-in feature (the 784 pixel values turned into 1,280
+The collection: Fashion-MNIST's 70,000 photos (train + test splits, Debian dataset-fashion-mnist)
+as a cheap stand-in feature (the 784 pixel values turned into 1,280
 dimensions by a fixed random orthogonal map, which keeps every cosine similarity), so the engine's own
 data path is what is timed; above 70,000 (and with --synthetic) synthetic clustered 1,280-d
 embeddings with known classes (`synthetic`). Features go to a memory-mapped float32 file, as a

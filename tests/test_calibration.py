@@ -1,6 +1,6 @@
 """Trust calibration (core/calibration.py): the figure shown is the expected purity of the group.
 
-External checks: Fashion-MNIST test 2,000 (Debian `dataset-fashion-mnist`, Xiao, Rasul, Vollgraf 2017)
+External checks: Fashion-MNIST test 2,000 (Debian `dataset-fashion-mnist`)
 with its true classes for the calibration error; scikit-learn's IsotonicRegression is the reference
 the learned map must agree with; the scikit-image sample photos for the Project path.
 """
