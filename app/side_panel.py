@@ -89,10 +89,12 @@ class SidePanel(QWidget):
         current = self.labels.currentItem().data(Qt.ItemDataRole.UserRole) if self.labels.currentItem() else None
         self.labels.clear()
         keys = number_keys(status.by_label)     # the most used labels' number keys, shown beside them
+        # One tooltip for the list: a per-item setToolTip gains a reference to None on every call
+        # under PySide6 6.11 (tests/test_binding_leaks.py, probe "SidePanel.show_state").
+        self.labels.setToolTip("A number key pressed on the photos puts the label shown beside it in the label "
+                               "field" if keys else "")
         for name, count in status.by_label.items():
             it = QListWidgetItem(f"{keys[name]}   {name}  —  {count}" if name in keys else f"     {name}  —  {count}")
-            if name in keys:
-                it.setToolTip(f"Key {keys[name]} on the photos puts “{name}” in the label field")
             it.setData(Qt.ItemDataRole.UserRole, name)
             self.labels.addItem(it)
             if name == current:

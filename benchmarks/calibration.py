@@ -16,15 +16,19 @@ groups and photos per bin). A reliability plot goes to --out (default out/calibr
 Data sets: Fashion-MNIST test 2,000 (`fashion`, the one the prior is fitted on), Fashion-MNIST train
 first 2,000 (`fashion-train`), scikit-learn's digits rendered as 32 x 32 grey photos (`digits`), and the
 demo folder (`demo`, scanned once into a store under ~/.cache/kinfold-bench/calibration/). All use
-EfficientNet-Lite0 ImageNet features and the engine's proposals (core.proposals) through `Replay` below.
+EfficientNet-Lite0 ImageNet features, replayed through a real `core.project.Project` built over them
+(benchmarks/cached_project.py): the calibrated figures are what `Project.propose` returns, the raw ones
+the engine's figures its store keeps in the proposal rows.
 """
 from __future__ import annotations
 
 import argparse
 import json
 import sys
+import shutil
+import tempfile
 import time
-from dataclasses import dataclass
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -33,120 +37,10 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.fashion import CACHE_DIR, CLASS_NAMES, fashion_features  # noqa: E402
+from benchmarks.cached_project import build_project  # noqa: E402
 from benchmarks.yield_sim import majority  # noqa: E402
-from core import calibration, neighbours, proposals, relearning  # noqa: E402
-from core.project import Proposal  # noqa: E402
-from core.proposals import FREE, LABELLED  # noqa: E402
-
-
-# The replay of the yield protocol's annotator on cached features, without a store (as
-# benchmarks.yield_replay ran it before it moved to a real Project over cached features).
-@dataclass
-class _Status:
-    labelled: int
-    by_label: dict
-
-
-class Replay:
-    """A stand-in for core.project.Project over arrays: the verbs benchmarks.yield_sim.simulate
-    calls (photos, status, propose, accept, split, relearn, graph), with the state a Project keeps
-    (labels, "not this label" answers, split parts waiting first) and no store. Photos are row
-    numbers; labels are names, numbered as Project numbers them (sorted, in use only)."""
-
-    def __init__(self, features: np.ndarray, relearn_settings=None, propose_settings=None):
-        self.features = features
-        self.n = len(features)
-        self.state = np.zeros(self.n, np.int8)
-        self.label_name: list[str | None] = [None] * self.n
-        self.rejected: list[set[str]] = [set() for _ in range(self.n)]
-        self.pinned: list[Proposal] = []
-        self.open: dict[int, Proposal] = {}
-        self.next_id = 0
-        self._graph = neighbours.build_graph(features)
-        self.classifier: relearning.Classifier | None = None
-        self.relearn_settings = relearn_settings or relearning.Settings()
-        self.propose_settings = propose_settings
-
-    # -- the verbs of Project that the simulator calls -------------------------------------------
-    def photos(self) -> list[int]:
-        return list(range(self.n))
-
-    def status(self) -> _Status:
-        names = [x for x in self.label_name if x is not None]
-        return _Status(len(names), {k: names.count(k) for k in set(names)})
-
-    def graph(self) -> neighbours.Graph:
-        return self._graph
-
-    def _state_arrays(self):
-        names = sorted({x for x in self.label_name if x is not None})
-        pos = {x: i for i, x in enumerate(names)}
-        label_of = np.array([pos[x] if x is not None else -1 for x in self.label_name], np.int64)
-        self._not_label = np.zeros((self.n, len(names)), bool)
-        for i, rej in enumerate(self.rejected):
-            for x in rej & pos.keys():
-                self._not_label[i, pos[x]] = True
-        return self.state.copy(), label_of, names
-
-    def _group(self, members, trust, suggested, confidence, kind) -> Proposal:
-        self.next_id += 1
-        return Proposal(self.next_id, members, trust, suggested, confidence, kind)
-
-    def propose(self, limit: int = 20) -> list[Proposal]:
-        state, label_of, names = self._state_arrays()
-        out, taken = [], np.zeros(self.n, bool)
-        for g in self.pinned:
-            m = [i for i in g.members if state[i] == FREE and not taken[i]]
-            if m:
-                taken[m] = True
-                g.members = m
-                out.append(g)
-        self.pinned = out[:]
-        if limit > len(out):
-            clf = None if self.classifier is None else self.classifier.probabilities(self.features, names)
-            groups = proposals.form_groups(self._graph, state, label_of, len(names), limit - len(out),
-                                           self.propose_settings, ~taken, self._not_label, clf)
-            out += [self._group(g.members, g.trust, None if g.suggested_label is None else names[g.suggested_label],
-                                g.confidence, g.kind) for g in groups]
-        self.open = {g.id: g for g in out}
-        return out[:limit]
-
-    def accept(self, group_id: int, label: str, drop=()) -> None:
-        g = self.open.pop(group_id)
-        drop = set(drop)
-        for i in g.members:
-            if i in drop:
-                self.rejected[i].add(label)
-            else:
-                self.state[i], self.label_name[i] = LABELLED, label
-        self.pinned = [p for p in self.pinned if p.id != group_id]
-
-    def split(self, group_id: int) -> None:
-        g = self.open.pop(group_id)
-        part = proposals.split_members(self._graph.x[g.members])
-        parts = [[m for m, p in zip(g.members, part) if p == k] for k in (0, 1)]
-        if g.members[0] in parts[1]:
-            parts.reverse()
-        # The store keeps pinned groups in the order they were made: new parts go last.
-        self.pinned = [p for p in self.pinned if p.id != group_id] + [
-            self._group(pm, g.trust, g.suggested_label, g.confidence, "split part") for pm in parts if pm]
-
-    def relearn(self, seconds: float | None = None) -> dict:
-        """What core.relearning.relearn_project does, without a store: the label classifier and,
-        with Settings.head, the projection head and its graph."""
-        s = self.relearn_settings
-        state, label_of, names = self._state_arrays()
-        figures: dict = {}
-        confirmed = np.where(state == LABELLED, label_of, -1)[state != FREE]
-        if s.head and s.supervised and relearning._can_supervise(confirmed):
-            blob, figures = relearning.train_head(self.features, state, label_of, s, seconds=seconds)
-            self._graph = neighbours.build_graph(relearning.apply(blob, self.features))
-        if s.classifier:
-            self.classifier = relearning.fit_classifier(
-                self.features, state, label_of, names, c=s.classifier_c, balanced=s.classifier_balanced,
-                not_label=self._not_label if s.classifier_rejections else None,
-                rejection_weight=s.classifier_rejection_weight)
-        return figures
+from core import calibration  # noqa: E402
+from core.project import Project  # noqa: E402
 
 
 WORK = CACHE_DIR / "calibration"
@@ -178,14 +72,13 @@ def load(name: str) -> tuple[np.ndarray, list[str]]:
         classes = [str(int(c)) for c in d.target]
     elif name == "demo":
         from app.demo import load_demo_truth
-        from core.project import Project
 
         truth = load_demo_truth(ROOT / "resources" / "demo_truth.csv")
         p = Project.open(ROOT / "sample_images", store=WORK / "demo-store", annotator="simulated")
         try:
             p.scan()
             keep = [i for i, q in enumerate(p.photos()) if truth.get(q) not in (None, "broken")]
-            feats = p._features[keep]
+            feats = p.backbone_features()[keep]
             classes = [truth[p.photos()[i]] for i in keep]
         finally:
             p.close()
@@ -196,15 +89,29 @@ def load(name: str) -> tuple[np.ndarray, list[str]]:
     return feats, classes
 
 
-def _measure(rep: Replay, groups, classes, cal: calibration.Calibrator) -> dict:
-    """Raw and calibrated figures of `groups` against the truth."""
-    figs = cal.calibrate(rep.graph(), [(g.members, g.suggested_label is not None, g.confidence) for g in groups])
+@contextmanager
+def opened(feats: np.ndarray, classes: list[str]):
+    """A real `core.project.Project` over `feats` (benchmarks/cached_project.py, in a temporary folder
+    removed afterwards); yields (project, truth {path: class}, {path: row of the graph})."""
+    work = Path(tempfile.mkdtemp(prefix="kinfold-calibration-"))
+    try:
+        project, truth = build_project(work, feats, classes, annotator="simulated")
+        with project:
+            yield project, truth, {p: i for i, p in enumerate(project.photos())}
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+
+
+def _measure(project: Project, groups, truth: dict[str, str]) -> dict:
+    """Calibrated figures (what `Project.propose` returns) and the engine's raw ones (kept in the
+    store's proposal rows) of `groups` against the truth."""
     rows = []
-    for g, (t, c) in zip(groups, figs):
-        cls = [classes[i] for i in g.members]
+    for g in groups:
+        raw = project.store.proposal(g.id)
+        cls = [truth[m] for m in g.members]
         share = None if g.suggested_label is None else float(np.mean([x == g.suggested_label for x in cls]))
-        rows.append(dict(size=len(cls), purity=calibration.purity(cls), raw=g.trust, trust=t,
-                         raw_conf=g.confidence, conf=c, share=share, kind=g.kind))
+        rows.append(dict(size=len(cls), purity=calibration.purity(cls), raw=raw.trust, trust=g.trust,
+                         raw_conf=raw.confidence, conf=g.confidence, share=share, kind=g.kind))
     return _summary(rows)
 
 
@@ -227,35 +134,35 @@ def _summary(rows: list[dict]) -> dict:
     return out
 
 
-def run(feats: np.ndarray, classes: list[str], cal: calibration.Calibrator | None = None,
-        warm_groups: int = 15, limit: int = 50, relearn: bool = True) -> dict:
-    """Cold and warm measurement on one data set; `cal` learns from the accepted groups."""
-    cal = cal or calibration.Calibrator()
-    rep = Replay(feats)
-    cold_groups = rep.propose(limit=limit)
-    cold = _measure(rep, cold_groups, classes, cal)
-    n, labelled = len(classes), 0
-    ranks = calibration.entropy_ranks(rep.graph())
-    for _ in range(warm_groups):
-        if labelled >= n / 2:
-            break
-        gs = rep.propose(limit=1)
-        if not gs:
-            break
-        g = gs[0]
-        cls = [classes[i] for i in g.members]
-        m = majority(cls)
-        drop = [i for i, c in zip(g.members, cls) if c != m]
-        f = calibration.group_features(rep.graph(), g.members, g.suggested_label is not None, g.confidence, ranks)
-        kept = len(cls) - len(drop)
-        cal.observe(f, kept / len(cls), len(cls),
-                    None if g.suggested_label is None else (kept / len(cls) if g.suggested_label == m else 0.0))
-        rep.accept(g.id, m, drop=drop)
-        labelled += kept
-    if relearn:
-        rep.relearn()
-    warm = _measure(rep, rep.propose(limit=limit), classes, cal)
-    warm["accepted_before"] = len(cal.seen_trust)
+def _accept_as_annotator(project: Project, g, truth: dict[str, str]) -> int:
+    """The yield protocol's annotator: accept under the majority class, taking the others out.
+    Returns the photos labelled."""
+    cls = [truth[m] for m in g.members]
+    m = majority(cls)
+    drop = [p for p, c in zip(g.members, cls) if c != m]
+    project.accept(g.id, m, drop=drop)
+    return len(cls) - len(drop)
+
+
+def run(feats: np.ndarray, classes: list[str], warm_groups: int = 15, limit: int = 50,
+        relearn: bool = True) -> dict:
+    """Cold and warm measurement on one data set, through a real Project: its calibration learns
+    from the groups accepted (Project.calibration reads them from the decision log)."""
+    with opened(feats, classes) as (project, truth, _):
+        # hold=0: looking at the first groups does not keep them open (the warm phase forms its own).
+        cold = _measure(project, project.propose(limit=limit, hold=0), truth)
+        n, labelled = len(classes), 0
+        for _ in range(warm_groups):
+            if labelled >= n / 2:
+                break
+            gs = project.propose(limit=1, hold=1)
+            if not gs:
+                break
+            labelled += _accept_as_annotator(project, gs[0], truth)
+        if relearn:
+            project.relearn()
+        warm = _measure(project, project.propose(limit=limit, hold=0), truth)
+        warm["accepted_before"] = len(project.calibration().seen_trust)
     return dict(cold=cold, warm=warm)
 
 
@@ -312,26 +219,25 @@ def fit_prior(stages=(0, 15, 30, 60), limit: int = 100) -> None:
     cold and after each number of accepted groups in `stages` (each followed by a relearn)."""
     feats, classes = load("fashion")
     rows = []
-    rep = Replay(feats)
-    done = 0
-    for stage in stages:
-        while done < stage:
-            g = rep.propose(limit=1)[0]
-            cls = [classes[i] for i in g.members]
-            m = majority(cls)
-            rep.accept(g.id, m, drop=[i for i, c in zip(g.members, cls) if c != m])
-            done += 1
-        if stage:
-            rep.relearn()
-        ranks = calibration.entropy_ranks(rep.graph())
-        for g in rep.propose(limit=limit):
-            cls = [classes[i] for i in g.members]
-            if len(cls) < 2:
-                continue
-            sug = g.suggested_label is not None
-            f = calibration.group_features(rep.graph(), g.members, sug, g.confidence, ranks)
-            share = float(np.mean([c == g.suggested_label for c in cls])) if sug else None
-            rows.append((f, calibration.purity(cls), share, len(cls)))
+    with opened(feats, classes) as (project, truth, row_of):
+        done = 0
+        for stage in stages:
+            while done < stage:
+                _accept_as_annotator(project, project.propose(limit=1, hold=1)[0], truth)
+                done += 1
+            if stage:
+                project.relearn()
+            graph = project.graph()
+            ranks = calibration.entropy_ranks(graph)
+            for g in project.propose(limit=limit, hold=0):
+                cls = [truth[m] for m in g.members]
+                if len(cls) < 2:
+                    continue
+                raw = project.store.proposal(g.id)       # the prior is fitted on the engine's own figures
+                sug = raw.suggested_label is not None
+                f = calibration.group_features(graph, [row_of[m] for m in g.members], sug, raw.confidence, ranks)
+                share = float(np.mean([c == raw.suggested_label for c in cls])) if sug else None
+                rows.append((f, calibration.purity(cls), share, len(cls)))
     x = np.array([r[0] for r in rows])
     mean, scale = x.mean(0), np.maximum(x.std(0), 1e-3)
     calibration.MEAN[:], calibration.SCALE[:] = [round(float(v), 4) for v in mean], [round(float(v), 4) for v in scale]

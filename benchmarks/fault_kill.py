@@ -78,13 +78,15 @@ DECISION_VERBS = ("label", "accept", "split", "undo", "later", "clear")
 LABELS = ("hex nut", "washer", "coil spring", "spur gear", "fuse", "key blank")
 EXPORTS = {"csv": "labels.csv", "coco": "labels.coco.json", "folders": "classes"}
 # What Kinfold keeps in its store folder for good (core/store.py, core/project.py): the store with its
-# WAL files, the folder lock, and one neighbour-graph cache graph-<16 hex>.npz.
+# WAL files, the folder lock, one neighbour-graph cache graph-<16 hex>.npz, and the embeddings files
+# vectors-<token>.f32 the store names (a file it does not name is a compaction's leftover).
 STORE_FILES = {"kinfold.sqlite", "kinfold.sqlite-wal", "kinfold.sqlite-shm", "lock"}
 _GRAPH_CACHE = re.compile(r"graph-[0-9a-f]{16}\.npz")
 # Kinfold's temporaries, by what made them; anything else found is listed as "unknown".
 _TEMPORARY_KINDS = (
     (re.compile(r"\.kinfold\.sqlite\.new-\d+-[0-9a-f]+(-wal|-shm)?$"), "a new store being made"),
     (re.compile(r"graph-\d+-\d+\.tmp\.npz$"), "a graph cache being written"),
+    (re.compile(r"^vectors-[0-9a-f]+\.f32$"), "an embeddings file no table names (a compaction's)"),
     (re.compile(r"^\..*\.kinfold-(tmp|old|oldcut)-[0-9a-f]{8}-\d+-[0-9a-z]{8}$"), "an export's temporary"),
 )
 
@@ -541,7 +543,7 @@ class Checker:
             rejections = {(r[0], r[1], r[2]) for r in db.execute("SELECT fingerprint, label, decision FROM rejections")}
             ext = db.execute("SELECT value FROM settings WHERE key='extractor_id'").fetchone()
             ext = json.loads(ext[0]) if ext else None
-            embedded = {r[0] for r in db.execute("SELECT fingerprint FROM embeddings WHERE extractor=?", (ext,))}
+            embedded = {r[0] for r in db.execute("SELECT fingerprint FROM vector_rows WHERE extractor=?", (ext,))}
             photos = sorted(r[0] for r in db.execute("SELECT path, fingerprint FROM photos") if r[1] in embedded)
             path_fp = dict(db.execute("SELECT path, fingerprint FROM photos").fetchall())
         finally:
@@ -759,9 +761,10 @@ class Checker:
     # -- temporaries -----------------------------------------------------------------------------
     def temporaries(self) -> list[str]:
         out = []
+        live = self.vector_files()
         for p in sorted(self.store_dir.iterdir()) if self.store_dir.is_dir() else []:
             name = p.name
-            if name not in STORE_FILES and not _GRAPH_CACHE.fullmatch(name):
+            if name not in STORE_FILES and not _GRAPH_CACHE.fullmatch(name) and name not in live:
                 out.append(str(p.relative_to(self.work)))
         if self.export_dir.is_dir():
             wanted = set(EXPORTS.values())
@@ -769,6 +772,20 @@ class Checker:
         out += [str(p.relative_to(self.work)) for p in sorted(self.folder.iterdir())
                 if p.name.startswith(".") and p.name != ".kinfold"]
         return out
+
+    def vector_files(self) -> set[str]:
+        """The embeddings files the store names (core/vectors.py); one it does not name is a leftover."""
+        db_path = self.store_dir / "kinfold.sqlite"
+        if not db_path.exists():
+            return set()
+        try:
+            db = sqlite3.connect(f"{db_path.resolve().as_uri()}?mode=ro", uri=True)
+            try:
+                return {f"vectors-{r[0]}.f32" for r in db.execute("SELECT token FROM vector_files")}
+            finally:
+                db.close()
+        except sqlite3.Error:
+            return set()
 
     # -- the next run ------------------------------------------------------------------------------
     def next_run(self, rnd: int) -> None:

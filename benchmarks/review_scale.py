@@ -86,7 +86,9 @@ def engine_scale(n: int, work: Path) -> list[tuple[str, float, int]]:
     with st.transaction() as db:
         db.executemany("INSERT INTO photos VALUES (?, ?, 1, 0, 28, 28)",
                        ((f"part{i % 50:02d}/photo_{i:06d}.png", f"{i:040x}") for i in range(n)))
-        db.executemany("INSERT INTO embeddings VALUES (?, ?, x'00000000')", ((f"{i:040x}", ext) for i in range(n)))
+        # Rows only (browse reads which photos are embedded, never the vectors).
+        db.executemany("INSERT INTO vector_rows(fingerprint, extractor, row) VALUES (?, ?, ?)",
+                       ((f"{i:040x}", ext, i) for i in range(n)))
         kind = rng.random(n)
         db.executemany("INSERT INTO labels VALUES (?, ?, ?, 'single', 'bench', '')",
                        ((f"{i:040x}", "labelled" if kind[i] < 0.6 else "set_aside",

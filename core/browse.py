@@ -74,7 +74,7 @@ def _where(extractor: str, state, label, subfolder, name) -> tuple[str, list]:
     return " AND ".join(clauses), params
 
 
-_FROM = ("FROM photos p JOIN embeddings e ON e.fingerprint = p.fingerprint "
+_FROM = ("FROM photos p JOIN vector_rows e ON e.fingerprint = p.fingerprint "
          "LEFT JOIN labels l ON l.fingerprint = p.fingerprint")
 
 

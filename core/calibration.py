@@ -61,7 +61,7 @@ def group_features(graph: Graph, members: Sequence[int], suggested: bool, margin
         ent_rank = entropy_ranks(graph)
     size = len(m)
     if size > 1:
-        x = graph.x[m].astype(np.float64)
+        x = graph.rows(m).astype(np.float64)   # just these rows (the graph holds no copy)
         tot = x.sum(0)
         # mean over the pairs i != j of x_i . x_j, without the size x size matrix
         pair = float((tot @ tot - np.einsum("ij,ij->", x, x)) / (size * (size - 1)))

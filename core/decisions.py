@@ -87,7 +87,7 @@ def split(project, group_id: int) -> list[Group]:
         raise ProjectError(f"group {group_id} has {len(members)} photos; splitting needs at least "
                            f"{proposals.MIN_SPLIT} (take the odd ones out instead)")
     g = project.graph()
-    part = proposals.split_members(g.x[[project._index[m] for m in members]])
+    part = proposals.split_members(g.rows([project._index[m] for m in members]))
     parts = [[m for m, p in zip(members, part) if p == k] for k in (0, 1)]
     # The part holding the anchor keeps its place first.
     if members[0] in parts[1]:

@@ -21,8 +21,8 @@ from core.atomic import write_with
 
 # What the neighbour graph is built with; all of it is part of the graph cache's key.
 GRAPH_SETTINGS = dict(k=64, temperature=0.1, burst_threshold=0.97, centre=True)
-GRAPH_FORMAT = 2
-GRAPH_FIELDS = ("x", "sims", "idx", "entropy", "mutual", "burst")
+GRAPH_FORMAT = 3          # 3: no features inside (the graph is handed them), their mean kept
+GRAPH_FIELDS = ("sims", "idx", "entropy", "mutual", "burst")
 
 
 def geometry_version(store) -> int | None:
@@ -36,36 +36,48 @@ def geometry_version(store) -> int | None:
     return version if relearning.has_head(store.relearn_state(version)) else None
 
 
-def cache_key(extractor_id: str | None, fingerprints: Sequence[str], feats: np.ndarray) -> str:
-    """Covers the settings, the limits that switch methods, the photos and their order, and the
-    features themselves (the extractor's output, or the relearned head's when it adapts them)."""
+def cache_key(extractor_id: str | None, fingerprints: Sequence[str], feats: np.ndarray,
+              named_by: Sequence | None = None) -> str:
+    """Covers the settings (the graph's and every setting of the neighbour search), the photos and
+    their order, and the features themselves (the extractor's output, or the relearned head's when
+    it adapts them). `named_by`: what names the features without reading them (the backbone's
+    vectors file: its token and committed rows; a file is only appended to until a compaction gives
+    it a new token); without it the features are hashed."""
     key = hashlib.sha1(json.dumps(dict(
         format=GRAPH_FORMAT, settings=GRAPH_SETTINGS, extractor=extractor_id, shape=feats.shape,
-        limits=[neighbours.EXACT_KNN_LIMIT, neighbours.EXACT_ENTROPY_LIMIT, neighbours.BURST_NEIGHBOURS]),
-        sort_keys=True).encode())
+        neighbours=neighbours.settings_key()), sort_keys=True).encode())
     for fp in fingerprints:
         key.update(fp.encode())
-    key.update(np.ascontiguousarray(feats, np.float32).tobytes())
+    if named_by is not None:
+        key.update(json.dumps(["vectors", *named_by]).encode())
+    else:
+        key.update(np.ascontiguousarray(feats, np.float32).tobytes())
     return key.hexdigest()[:16]
 
 
 def load_or_build_graph(store_dir: Path, extractor_id: str | None, fingerprints: Sequence[str],
-                        feats: np.ndarray) -> neighbours.Graph:
-    cache = Path(store_dir) / f"graph-{cache_key(extractor_id, fingerprints, feats)}.npz"
+                        feats: np.ndarray, *, named_by: Sequence | None = None, progress=None,
+                        cancel=None) -> neighbours.Graph:
+    """The graph holds no copy of the features: it is handed `feats` (`Graph.rows`). A build reports
+    progress and stops with `neighbours.Cancelled` when `cancel()` says so (nothing cached)."""
+    cache = Path(store_dir) / f"graph-{cache_key(extractor_id, fingerprints, feats, named_by)}.npz"
+    centre = GRAPH_SETTINGS.get("centre", True)
     if cache.exists():
         try:
             with np.load(cache, allow_pickle=False) as z:
                 g = neighbours.Graph(**{k: z[k] for k in GRAPH_FIELDS})
+                mean = z["mean"] if centre else None
             check_graph(g, len(fingerprints))
-            return g
+            return g.attach(neighbours.Source(feats, centre=centre, mean=mean))
         except Exception:  # truncated (BadZipFile, EOFError), pickled, garbage, wrong shapes...
             try:
                 cache.unlink(missing_ok=True)
             except OSError:
                 pass  # a read-only store keeps its damaged cache; the graph is rebuilt in memory
-    g = neighbours.build_graph(feats, **GRAPH_SETTINGS)
+    g = neighbours.build_graph(feats, **GRAPH_SETTINGS, progress=progress, cancel=cancel)
+    mean = g.source.mean if g.source.mean is not None else np.zeros(0, np.float32)
     try:
-        write_with(cache, lambda tmp: np.savez(tmp, **{k: getattr(g, k) for k in GRAPH_FIELDS}), ".npz")
+        write_with(cache, lambda tmp: np.savez(tmp, mean=mean, **{k: getattr(g, k) for k in GRAPH_FIELDS}), ".npz")
         for old in Path(store_dir).glob("graph-*.npz"):
             if old != cache:
                 old.unlink(missing_ok=True)
@@ -77,7 +89,7 @@ def load_or_build_graph(store_dir: Path, extractor_id: str | None, fingerprints:
 def check_graph(g: neighbours.Graph, n: int) -> None:
     """Raise ValueError unless `g` has the shapes and indices of a graph over n photos."""
     k = g.idx.shape[1] if g.idx.ndim == 2 else -1
-    ok = (g.x.ndim == 2 and len(g.x) == n and g.idx.shape == (n, k) and g.sims.shape == (n, k)
+    ok = (g.idx.ndim == 2 and g.idx.shape == (n, k) and g.sims.shape == (n, k)
           and g.mutual.shape == (n, k) and g.entropy.shape == (n,) and g.burst.shape == (n,)
           and (n == 0 or (g.idx.min() >= -1 and g.idx.max() < n)))
     if not ok:

@@ -78,6 +78,7 @@ class Project:
         self._graph: neighbours.Graph | None = None
         self._labels: LabelState | None = None
         store.after_commit(self._on_commit)
+        self._open_vectors()
         self._load_catalogue()
 
     # -- opening -----------------------------------------------------------------------------
@@ -149,8 +150,7 @@ class Project:
         embedded = self.store.embedded_fingerprints(ext) if ext else set()
         self._rows: list[PhotoRow] = [r for r in rows if r.fingerprint in embedded]
         self._index = {r.path: i for i, r in enumerate(self._rows)}
-        self._features = (self.store.embeddings(ext, [r.fingerprint for r in self._rows])
-                          if self._rows else np.zeros((0, 0), np.float32))
+        self._features_map = None            # read when first needed (`_features`)
         self._graph = None
         self._graph_version = None
         self._classifier_cache: tuple = (None, None)
@@ -248,9 +248,14 @@ class Project:
             self._graph_version = version
         return self._graph
 
-    def _load_or_build_graph(self) -> neighbours.Graph:
+    def _load_or_build_graph(self, progress=None, cancel=None) -> neighbours.Graph:
+        feats = self.features()
+        # The backbone's features are named by their vectors file, so the key does not read them.
+        entry = self.store.vectors.file_entry(self.extractor_id) if self.extractor_id else None
         return geometry.load_or_build_graph(self.store.directory, self.extractor_id,
-                                            [r.fingerprint for r in self._rows], self.features())
+                                            [r.fingerprint for r in self._rows], feats,
+                                            named_by=entry if feats is self._features else None,
+                                            progress=progress, cancel=cancel)
 
     def _paths_to_indices(self, paths: Iterable[str]) -> list[int]:
         out = []
@@ -389,7 +394,7 @@ class Project:
         if label not in names:
             raise ProjectError(f"no photo carries the label {label!r}")
         members = np.nonzero((state == proposals.LABELLED) & (label_of == names.index(label)))[0]
-        x = self.graph().x[members]
+        x = self.graph().rows(members)
         total = x.sum(0)
         others = total[None, :] - x
         norms = np.maximum(np.linalg.norm(others, axis=1), 1e-12)
@@ -586,6 +591,42 @@ class Project:
                                              close_proposals=[gid] if kind == "accept" and gid is not None else [],
                                              rejected=rejected, undoes=u["id"])
             return {"decision": dec, "kind": kind, "photos": len(changes)}
+
+    # --- scale: embeddings in a memory-mapped file (core/vectors.py), read only when needed ---
+    def _open_vectors(self) -> None:
+        """Move embeddings of a store from before schema 3 into files; delete files a crash left."""
+        if not self.store.read_only:
+            self.store.vectors.upgrade()
+            self.store.vectors.remove_stale_files()
+
+    def _compact_vectors(self) -> None:
+        """After a scan: keep only the current extractor's rows of the catalogued photos, in catalogue
+        order, so `_features` is the file's memory map itself (no copy)."""
+        if not self.store.read_only and self.store.vectors.compact(self.extractor_id,
+                                                                    [r.fingerprint for r in self._rows]):
+            self._features_map = None
+            self._graph = None
+
+    @property
+    def _features(self) -> np.ndarray:
+        """The backbone's embeddings of the catalogued photos (a read-only memory map when stored in
+        catalogue order); read at the first call, not at opening."""
+        if self._features_map is None:
+            with self._mutex:
+                if self._features_map is None:
+                    self._features_map = (self.store.embeddings(self.extractor_id, [r.fingerprint for r in self._rows])
+                                          if self._rows else np.zeros((0, 0), np.float32))
+        return self._features_map
+
+    @_serialised
+    def prepare_graph(self, progress: Progress | None = None, cancel: Cancel | None = None) -> neighbours.Graph:
+        """Load or build the neighbour graph now, with progress; `cancel()` returning True stops a
+        build with `neighbours.Cancelled` (nothing kept)."""
+        version = self.store.active_relearn_version()
+        if self._graph is None or self._graph_version != version:
+            self._graph = self._load_or_build_graph(progress, cancel)
+            self._graph_version = version
+        return self._graph
 
     # --- calib: calibrated trust and suggestion confidence (core/calibration.py) ---
     @_serialised

@@ -93,6 +93,7 @@ def scan(project, progress=None, cancel=None, cluster=None, **cluster_options) -
         project.store.replace_catalogue(photos, skipped)
         project.store.set_setting("skipped_format", SKIPPED_FORMAT)
         project._load_catalogue()
+        project._compact_vectors()
     shown = [(p, v[2]) for p, v in skipped.items()]
     shown += [(p, f"{reason} (tried again at the next scan)") for p, reason in retry.items()]
     if lost:  # the cluster went away: what finished is stored, the next scan carries on

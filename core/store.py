@@ -27,7 +27,7 @@ from typing import Iterable, Sequence
 
 import numpy as np
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 STORE_FILE = "kinfold.sqlite"
 
 # Each entry upgrades the schema from version i to i + 1. Never edit an entry once released.
@@ -106,6 +106,22 @@ _MIGRATIONS: list[str] = [
         active INTEGER NOT NULL DEFAULT 0
     );
     """,
+    # 2 -> 3: embeddings in memory-mapped files beside the store (core/vectors.py); the BLOBs of the
+    # embeddings table are moved into them by `Vectors.upgrade` when the project is opened.
+    """
+    CREATE TABLE vector_files (
+        extractor TEXT PRIMARY KEY,
+        token TEXT NOT NULL,              -- the file is vectors-<token>.f32 in the store folder
+        dim INTEGER NOT NULL,
+        rows INTEGER NOT NULL             -- rows written and committed
+    );
+    CREATE TABLE vector_rows (
+        fingerprint TEXT NOT NULL,
+        extractor TEXT NOT NULL,
+        row INTEGER NOT NULL,
+        PRIMARY KEY (fingerprint, extractor)
+    );
+    """,
 ]
 assert len(_MIGRATIONS) == SCHEMA_VERSION
 
@@ -162,6 +178,7 @@ class Store:
         self._marks: list[int] = []       # len(_pending) at each open savepoint
         self._listeners: list = []
         self._db: sqlite3.Connection | None = None
+        self._vectors = None
         existed = self.path.exists()
         if existed and not self.path.is_file():
             raise StoreError(f"{self.path} is not a file; move it away so Kinfold can keep its store there")
@@ -364,28 +381,30 @@ class Store:
             self._note(("catalogue",))
 
     # -- embeddings --------------------------------------------------------------------------
+    # Kept in memory-mapped files beside the store; core/vectors.py has the layout and the rules.
+    @property
+    def vectors(self):
+        if self._vectors is None:
+            from core.vectors import Vectors
+
+            self._vectors = Vectors(self)
+        return self._vectors
+
     def embedded_fingerprints(self, extractor: str) -> set[str]:
-        with self._lock:
-            rows = self._conn().execute("SELECT fingerprint FROM embeddings WHERE extractor=?", (extractor,))
-            return {r[0] for r in rows}
+        return self.vectors.fingerprints(extractor)
 
     def put_embeddings(self, extractor: str, fingerprints: Sequence[str], vectors: np.ndarray) -> None:
-        vectors = np.ascontiguousarray(vectors, dtype=np.float32)
-        with self.transaction() as db:
-            db.executemany("INSERT OR REPLACE INTO embeddings VALUES (?, ?, ?)",
-                           [(fp, extractor, v.tobytes()) for fp, v in zip(fingerprints, vectors)])
+        self.vectors.put(extractor, list(fingerprints), vectors)
 
     def embeddings(self, extractor: str, fingerprints: Sequence[str]) -> np.ndarray:
-        """Rows in the order of `fingerprints`; every fingerprint must be embedded."""
-        with self._lock:
-            rows = dict(self._conn().execute("SELECT fingerprint, vector FROM embeddings WHERE extractor=?",
-                                         (extractor,)).fetchall())
-        missing = [fp for fp in fingerprints if fp not in rows]
-        if missing:
-            raise StoreError(f"{len(missing)} photos have no embedding for {extractor}")
-        if not fingerprints:
-            return np.zeros((0, 0), np.float32)
-        return np.stack([np.frombuffer(rows[fp], dtype=np.float32) for fp in fingerprints])
+        """Rows in the order of `fingerprints` (a memory map when they are the file's rows in order);
+        every fingerprint must be embedded."""
+        from core.vectors import VectorError
+
+        try:
+            return self.vectors.matrix(extractor, list(fingerprints))
+        except VectorError as exc:
+            raise StoreError(str(exc)) from exc
 
     # -- labels and decisions ----------------------------------------------------------------
     def labels(self) -> dict[str, LabelRow]:

@@ -101,7 +101,8 @@ def fashion_2000():
 def test_fashion_mnist_2000_calibration_error(fashion_2000):
     """The calibration measurement of the yield protocol on Fashion-MNIST test 2,000 (true classes from
     the data set): photo-weighted |trust - purity| over the first 50 groups, cold and after 15 accepted
-    groups and a relearn. Measured: see README (benchmarks/calibration.py); the bounds leave margin."""
+    groups and a relearn, through a real Project over the cached features (its own propose, accept,
+    relearn and calibration). Measured: see README (benchmarks/calibration.py); the bounds leave margin."""
     from benchmarks.calibration import run
 
     res = run(*fashion_2000)
@@ -114,11 +115,11 @@ def test_fashion_mnist_2000_calibration_error(fashion_2000):
     assert cold["bin_gap"] <= BIN_GAP_BOUND and warm["bin_gap"] <= BIN_GAP_BOUND
 
 
-# Measured (benchmarks/calibration.py, this machine): cold 0.090, warm 0.106; bin gap 0.047 / 0.043.
-# The per-group goal of 0.05 is not met (README "How honest the trust figure is").
+# Measured (benchmarks/calibration.py through a real Project, this machine): cold 0.096, warm 0.136;
+# bin gap 0.037 / 0.091. The per-group goal of 0.05 is not met (README "How honest the trust figure is").
 COLD_BOUND = 0.12
-WARM_BOUND = 0.14
-BIN_GAP_BOUND = 0.08
+WARM_BOUND = 0.17
+BIN_GAP_BOUND = 0.12
 
 
 def test_project_shows_calibrated_figures_and_keeps_the_order(photo_project_folder):
@@ -127,7 +128,8 @@ def test_project_shows_calibrated_figures_and_keeps_the_order(photo_project_fold
     with Project.open(photo_project_folder, annotator="tester") as p:
         groups = p.propose(limit=10)
         rows = {r.id: r for r in p.store.open_proposals()}
-        assert [g.id for g in groups] == [g.id for g in groups]
+        # The order is the queue's, ranked on the stored (raw) figures: calibrating does not reorder.
+        assert [g.id for g in groups] == p.store.get_setting("proposal_queue")["order"][:len(groups)]
         assert all(0.0 <= g.trust <= 1.0 for g in groups)
         assert any(abs(g.trust - rows[g.id].trust) > 1e-3 for g in groups)   # the shown figure is not the raw one
         cal = p.calibration()
