@@ -72,16 +72,15 @@ def propagate(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: i
     Seeds: a labelled photo is one-hot on its label, a set-aside photo one-hot on unknown, an
     unlabelled photo feeds `unknown_prior` into unknown. Iterates F <- a W F + (1 - a) Y on the
     row-normalised kNN graph; rows are normalised to probabilities at the end.
-    Kept with the graph and updated locally after each decision (core/incremental_propagation.py):
-    the result is shared, read-only; copy it before changing it.
+    Computed once per change of the seeds, on the graph renumbered for cache locality, bit for bit
+    the plain product (core/incremental_propagation.py); the result is shared, read-only: copy it
+    before changing it.
     """
     cache = _cache_of(graph)
-    key = ("propagation", settings.propagation_k, settings.alpha, settings.iterations, settings.unknown_prior)
+    key = ("propagation", settings.propagation_k)
     if key not in cache:
-        cache[key] = PropagationCache()
-    step = _propagation_matrix(graph, settings.propagation_k)
-    return cache[key].get(step, _propagation_matrix_csc(graph, settings.propagation_k), state, label_of,
-                          n_labels, settings)
+        cache[key] = PropagationCache(_propagation_matrix(graph, settings.propagation_k))
+    return cache[key].get(state, label_of, n_labels, settings)
 
 
 def _propagation_matrix(graph: Graph, k: int):
@@ -96,14 +95,6 @@ def _propagation_matrix(graph: Graph, k: int):
         n, kk = idx.shape
         cache[("step", k)] = csr_matrix((w.ravel(), idx.ravel(), np.arange(0, n * kk + 1, kk)), shape=(n, n))
     return cache[("step", k)]
-
-
-def _propagation_matrix_csc(graph: Graph, k: int):
-    """The same matrix by columns: a local update reads the photos whose neighbours changed."""
-    cache = _cache_of(graph)
-    if ("step_csc", k) not in cache:
-        cache[("step_csc", k)] = _propagation_matrix(graph, k).tocsc()
-    return cache[("step_csc", k)]
 
 
 def entropy_order(graph: Graph) -> np.ndarray:
@@ -148,6 +139,17 @@ def smooth(graph: Graph, p: np.ndarray, settings: Settings) -> np.ndarray:
         return p
     idx, w = _graph_weights(graph, settings.propagation_k)
     return (1 - settings.smoothing) * p + settings.smoothing * np.einsum("nk,nkc->nc", w, p[idx])
+
+
+def _smoothed(graph: Graph, classifier: np.ndarray, settings: Settings) -> np.ndarray:
+    """`smooth` of the classifier's probabilities, kept with the graph while the same array comes
+    back (the project keeps one per relearned version and label list): not redone per decision."""
+    cache = _cache_of(graph)
+    key = ("smoothed", settings.smoothing, settings.propagation_k)
+    hit = cache.get(key)
+    if hit is None or hit[0] is not classifier:
+        hit = cache[key] = (classifier, smooth(graph, classifier, settings))
+    return hit[1]
 
 
 def with_classifier(prob: np.ndarray, classifier: np.ndarray) -> np.ndarray:
@@ -222,7 +224,7 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
     if n_labels > 0 and (state == LABELLED).any():
         prob = propagate(graph, state, label_of, n_labels, s)
         if classifier is not None:
-            prob = with_classifier(prob, smooth(graph, classifier, s))
+            prob = with_classifier(prob, _smoothed(graph, classifier, s))
         if not_label is not None and not_label.any():
             prob = prob.copy() if classifier is None else prob     # the propagation's result is shared
             prob[:, :n_labels][not_label] = 0.0
@@ -231,11 +233,15 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
         conf = prob[np.arange(n), pred]
         sure = available & (conf >= s.min_confidence)
         # Every label gets its chance: up to `limit` groups each, then the most trusted overall.
+        # The sure photos sorted once by (label, falling confidence, index), cut per label; one trial
+        # copy of `available`, restored after each label (not a pass over all photos per label).
+        sure_idx = np.flatnonzero(sure)
+        sure_idx = sure_idx[np.lexsort((-conf[sure_idx], pred[sure_idx]))]
+        cuts = np.searchsorted(pred[sure_idx], np.arange(n_labels + 1))
+        trial = available.copy()
         for c in range(n_labels):
-            cand = np.nonzero(sure & (pred == c))[0]
-            cand = cand[np.argsort(-conf[cand], kind="stable")]
-            trial = available.copy()
-            made = 0
+            cand = sure_idx[cuts[c]:cuts[c + 1]]
+            made, taken_here = 0, []
             while len(cand) and made < limit:
                 members = _fill(cand, graph, trial, s.max_group)
                 if not members:
@@ -244,8 +250,10 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
                 g = Group(members, mean_conf, "probable label", c, mean_conf)
                 g.extra["expected_yield"] = expected_yield(g, conf[members])
                 probable.append(g)
+                taken_here += members
                 cand = cand[trial[cand]]
                 made += 1
+            trial[taken_here] = True            # back as `available` for the next label
         probable.sort(key=_rank)
         probable = probable[:limit]
         # Burst-mates of one label's candidates can be another label's; keep the groups disjoint.
