@@ -61,3 +61,30 @@ def test_other_settings_are_computed_afresh():
     b = proposals.propagate(graph, state, label_of, 10, proposals.Settings(alpha=0.5))
     assert np.array_equal(b, _plain(graph, state, label_of, 10, proposals.Settings(alpha=0.5)))
     assert not np.array_equal(a, b)
+
+
+def test_with_many_labels_a_decision_diffuses_only_its_columns_and_matches_the_plain_diffusion():
+    graph, truth = _graph()
+    s = proposals.Settings()
+    n = graph.n
+    rng = np.random.default_rng(1)
+    classes = truth + 10 * (np.arange(n) % 3)            # 30 labels: 31 columns
+    state = np.zeros(n, np.int8)
+    label_of = np.full(n, -1, np.int64)
+    first = [int(np.flatnonzero(classes == c)[0]) for c in range(30)]
+    state[first], label_of[first] = proposals.LABELLED, classes[first]
+    proposals.propagate(graph, state, label_of, 30, s)
+    cache = proposals._cache_of(graph)[("propagation", s.propagation_k)]
+    updates = 0
+    for step in range(40):
+        c = int(rng.integers(0, 30))                      # one group accepted under one label
+        free = np.flatnonzero((state == proposals.FREE) & (classes == c))
+        pick = free[:int(rng.integers(1, 30))]
+        state[pick], label_of[pick] = proposals.LABELLED, c
+        got = proposals.propagate(graph, state, label_of, 30, s)
+        updates += cache.updates > 0
+        want = _plain(graph, state, label_of, 30, s)
+        assert np.abs(got - want).max() < 1e-5            # float32 rounding only
+        free = state == proposals.FREE
+        assert (got[free, :30].argmax(1) == want[free, :30].argmax(1)).mean() > 0.999
+    assert updates >= 30
