@@ -31,7 +31,7 @@ def test_renumbered_diffusion_is_bit_for_bit_the_plain_one_decision_after_decisi
     rng = np.random.default_rng(0)
     state = np.zeros(n, np.int8)
     label_of = np.full(n, -1, np.int64)
-    cache = None
+    cache, fresh = None, 0
     for step in range(25):
         free = np.flatnonzero(state == proposals.FREE)
         pick = rng.choice(free, size=min(len(free), int(rng.integers(1, 60))), replace=False)
@@ -44,12 +44,17 @@ def test_renumbered_diffusion_is_bit_for_bit_the_plain_one_decision_after_decisi
             state[pick], label_of[pick] = proposals.LABELLED, truth[pick] % (2 + step // 5)
         n_labels = int(label_of.max()) + 1 if (label_of >= 0).any() else 0
         got = proposals.propagate(graph, state, label_of, n_labels, s)
-        assert np.array_equal(got, _plain(graph, state, label_of, n_labels, s))
         cache = proposals._cache_of(graph)[("propagation", s.propagation_k)]
+        if cache.updates == 0:      # computed afresh: bit for bit the plain diffusion
+            assert np.array_equal(got, _plain(graph, state, label_of, n_labels, s))
+            fresh += 1
+        else:                       # a decision's difference added: float32 rounding only
+            assert np.abs(got - _plain(graph, state, label_of, n_labels, s)).max() < 1e-5
         assert not np.array_equal(cache.order, np.arange(n))          # the photos were renumbered
         again = proposals.propagate(graph, state.copy(), label_of.copy(), n_labels, s)
         assert again is got                                            # same seeds: not computed again
     assert sorted(cache.order.tolist()) == list(range(n))
+    assert fresh >= 10
 
 
 def test_other_settings_are_computed_afresh():
