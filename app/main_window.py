@@ -34,6 +34,7 @@ from app.history import Curve
 from app.jobs import Job
 from app.mistakes_page import KEYS as MISTAKES_KEYS, MistakesPage
 from app.pages import GroupPage, ReviewPage, ScanPage, StartPage, action_button, scan_summary
+from app.lazy_grid import LazyPhotoModel, review_lists
 from app.photo_grid import PhotoModel
 from app.preview import KEYS as PREVIEW_KEYS, PreviewDialog
 from app.browse_page import KEYS as BROWSE_KEYS, PAGE as BROWSE_PAGE, BrowseModel, BrowsePage
@@ -85,7 +86,7 @@ class View:
     error: str | None = None
     groups: list = dataclasses.field(default_factory=list)
     status: Any = None
-    review: tuple[str, list] | None = None       # (label, [(path, typicality)])
+    review: tuple[str, tuple[list, list]] | None = None   # (label, (paths, notes)), least typical first
     curve: Curve | None = None                    # only when the log was replayed (a folder opened)
 
 
@@ -103,7 +104,7 @@ def engine_view(project: Project, call: Callable | None = None, review_label: st
     if review_label is not None:
         label = review_label if review_label in view.status.by_label else next(iter(view.status.by_label), None)
         if label is not None:
-            view.review = (label, project.review(label))
+            view.review = (label, review_lists(project.review(label)))  # built here, not on the GUI thread
     if replay:
         view.curve = Curve.from_decisions(project.store.decisions())
     return view
@@ -162,7 +163,7 @@ class MainWindow(QMainWindow):
         self.work.setStretchFactor(0, 4)
         self.work.setStretchFactor(1, 1)
         self.work.setSizes([940, 320])
-        self.review_model = PhotoModel(self.thumbs, self)
+        self.review_model = LazyPhotoModel(self.thumbs, self)   # a chunk of rows at a time
         self.review_page = ReviewPage(self.review_model)
         self.mistakes_page = MistakesPage(self.thumbs)
         self.browse_model = BrowseModel(self.thumbs, self)
@@ -854,7 +855,7 @@ class MainWindow(QMainWindow):
         it = self.review_page.labels.currentItem()
         return it.data(Qt.ItemDataRole.UserRole) if it else None
 
-    def _fill_review(self, label: str, rows: list | None) -> None:
+    def _fill_review(self, label: str, rows: tuple | None) -> None:
         """The label list (from the last status) with `label` current, and its photos: `rows` when the
         engine already sent them, else asked for."""
         by_label = self.status.by_label if self.status else {}
@@ -881,9 +882,11 @@ class MainWindow(QMainWindow):
         self._act("review", None, where=self.review_page)
 
     def _review_rows(self, label: str, rows) -> None:
-        self.review_model.set_photos([p for p, _ in rows], [f"typicality {t:.2f}" for _, t in rows])
-        self.review_page.header.setText(f"“{label}”  ·  {photos(len(rows))}")
-        if rows:  # the least typical photo, selected (the field is empty, so Return alone relabels nothing)
+        """`rows`: (paths, notes) from `review_lists`, shown a chunk at a time (`LazyPhotoModel`)."""
+        paths, notes = rows
+        self.review_model.set_photos(paths, notes)
+        self.review_page.header.setText(f"“{label}”  ·  {photos(len(paths))}")
+        if paths:  # the least typical photo, selected (the field is empty, so Return alone relabels nothing)
             self.review_page.grid.selectionModel().setCurrentIndex(
                 self.review_model.index(0), QItemSelectionModel.SelectionFlag.ClearAndSelect)
 

@@ -1,6 +1,8 @@
 """A 20,000-photo label opened in the review page (Ctrl+R) and in the browse page (Ctrl+B, filtered by
 that label): the time until the photos are on screen, and the longest GUI stall against a 5 ms
 heartbeat (a QTimer on the GUI thread), while the grid is scrolled from top to bottom.
+"rows loaded" is what the grid's model hands the view by the end of the scroll: both pages hold back
+rows until they are scrolled to (review: a chunk of 600 at a time; browse: a page of 600).
 
     python -m benchmarks.review_scale                  # 20,000 photos (the figure)
     python -m benchmarks.review_scale --n 5000         # quick
@@ -116,6 +118,48 @@ def engine_scale(n: int, work: Path) -> list[tuple[str, float, int]]:
     return out
 
 
+def hand_over(n: int, repeats: int = 3) -> dict[str, float]:
+    """The GUI thread's cost of putting a label's `n` ranked photos in the review grid, best of
+    `repeats`, milliseconds: the lists made, the model set, the view laid out and painted once.
+    "every row" is the model every photo was set in at once (app.photo_grid.PhotoModel, its lists
+    made on the GUI thread, as the review page did before); "a chunk at a time" the review page's
+    app.lazy_grid.LazyPhotoModel (lists made on the engine thread, not timed here)."""
+    from PySide6.QtWidgets import QApplication
+
+    from app.lazy_grid import LazyPhotoModel, review_lists
+    from app.pages import ReviewPage
+    from app.photo_grid import PhotoModel
+    from app.thumbnails import Thumbnails
+
+    app = QApplication.instance() or QApplication([])
+    rows = [(f"part{i % 20:02d}/photo_{i:05d}.png", i / n) for i in range(n)]
+    lists = review_lists(rows)
+    out = {}
+    for name, cls in (("every row", PhotoModel), ("a chunk at a time", LazyPhotoModel)):
+        model = cls(Thumbnails())
+        page = ReviewPage(model)
+        page.resize(1280, 820)
+        page.show()
+        app.processEvents()
+        best = float("inf")
+        for _ in range(repeats):
+            model.set_photos([])
+            page.grid.doItemsLayout()
+            app.processEvents()
+            t = time.perf_counter()
+            if cls is PhotoModel:
+                model.set_photos([p for p, _ in rows], [f"typicality {t:.2f}" for _, t in rows])
+            else:
+                model.set_photos(*lists)
+            page.grid.doItemsLayout()
+            page.grid.viewport().repaint()
+            best = min(best, time.perf_counter() - t)
+        out[name] = best * 1000
+        page.close()
+        page.deleteLater()
+    return out
+
+
 def run(folder: Path, n: int) -> dict:
     from PySide6.QtCore import QSettings, Qt, QTimer
     from PySide6.QtTest import QTest
@@ -188,7 +232,7 @@ def run(folder: Path, n: int) -> dict:
     grid = w.group_page.grid
     grid.setFocus()
     measure("review", lambda: QTest.keyClick(grid, Qt.Key.Key_R, Qt.KeyboardModifier.ControlModifier),
-            lambda: w.stack.currentWidget() is w.review_page and w.review_model.rowCount() == n and w.idle(),
+            lambda: w.stack.currentWidget() is w.review_page and len(w.review_model.paths) == n and w.idle(),
             w.review_page.grid)
     QTest.keyClick(w.review_page.grid, Qt.Key.Key_Escape)
     pump_until(lambda: w.stack.currentWidget() is w.work)
@@ -228,6 +272,11 @@ def main(argv=None) -> int:
     print(f"core.browse on a store of {args.engine_n} photos (one SQL query a page of 600):")
     for name, ms, total in engine_scale(args.engine_n, Path(args.work)):
         print(f"  {name:26s} {ms:7.1f} ms   ({total} matching)")
+    ho = hand_over(args.n)
+    print(f"the review grid handed {args.n} photos on the GUI thread (lists, model, layout, one paint; best of 3):")
+    for name, ms in ho.items():
+        print(f"  {name:20s} {ms:7.1f} ms")
+    print(f"  ratio                {ho['every row'] / ho['a chunk at a time']:7.1f} x")
     t0 = time.perf_counter()
     folder = prepare(args.n, Path(args.work))
     print(f"prepared {args.n} photos, all labelled “{LABEL}”, in {time.perf_counter() - t0:.0f} s ({folder})",

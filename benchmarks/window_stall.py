@@ -64,7 +64,7 @@ def prepare(n: int, work: Path) -> tuple[Path, dict[str, str], Path]:
         shutil.rmtree(base, ignore_errors=True)
         features, _ = fashion_features(n)
         p = Project.open(folder, store=base, annotator="bench")
-        cat = catalogue.scan_folder(folder, {}, {}, ignore=folder / ".kinfold")
+        cat = catalogue.scan_folder(folder, {}, {})   # the walk leaves hidden folders (a .kinfold/) out
         row_of = {r.path: int(r.path.rsplit("_", 1)[1].split(".")[0]) for r in cat.photos}
         ext = _extractor_id()
         p.store.set_setting("extractor_id", ext)
