@@ -72,10 +72,10 @@ def group_features(graph: Graph, members: Sequence[int], suggested: bool, margin
 
 
 def entropy_ranks(graph: Graph) -> np.ndarray:
-    n = graph.n
-    r = np.empty(n)
-    r[np.argsort(graph.entropy, kind="stable")] = np.arange(n) / max(n - 1, 1)
-    return r
+    """Each photo's entropy rank in [0, 1], made once per graph (shared, read-only)."""
+    from core import proposals
+
+    return proposals.entropy_ranks(graph)
 
 
 def _logit(p):

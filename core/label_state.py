@@ -93,20 +93,27 @@ class LabelState:
                 self._apply_labels(change[1])
             elif what == "rejected":
                 for pair in change[1]:
-                    self._rejections[tuple(pair)] += 1
-                self._not_label = None
+                    pair = tuple(pair)
+                    self._rejections[pair] += 1
+                    self._mark_not_label(pair, True)
             elif what == "unrejected":
                 for pair in change[1]:
                     pair = tuple(pair)
                     self._rejections[pair] -= 1
                     if self._rejections[pair] <= 0:
                         del self._rejections[pair]
-                self._not_label = None
+                        self._mark_not_label(pair, False)
             elif what == "deferred":
                 for fp, t in change[1].items():
                     self._set_deferred(fp, t is not None)
             elif what == "decision":
                 self.decisions += 1
+
+    def _mark_not_label(self, pair: tuple, on: bool) -> None:
+        """Keep a built "not this label" matrix in step with one pair (only the photo's rows)."""
+        fp, lab = pair
+        if self._not_label is not None and lab in self._pos and fp in self._rows_of:
+            self._not_label[self._rows_of[fp], self._pos[lab]] = on
 
     def _apply_labels(self, changes: dict[str, LabelRow | None]) -> None:
         for fp, new in changes.items():

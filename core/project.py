@@ -641,10 +641,14 @@ class Project:
             return cache["calibrator"]
         if cache.get("graph") != key[1:]:        # features are measured on the graph in use
             cache.clear()
-            cache.update(graph=key[1:], seen={})
+            cache.update(graph=key[1:], seen={}, log=[])
         seen, graph = cache["seen"], self.graph()
         ranks = None
-        decisions = self.store.decisions()
+        log = cache["log"]                     # the decisions read so far: only the new ones are read
+        log += self.store.decisions(after=log[-1]["id"] if log else 0)
+        if len(log) != key[0]:                 # the log was rewritten under us: read it whole
+            log[:] = self.store.decisions()
+        decisions = log
         undone = {d["undoes"] for d in decisions if d["undoes"] is not None}
         cal = calibration.Calibrator()
         for d in decisions:

@@ -29,6 +29,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from core.incremental_propagation import PropagationCache
 from core.neighbours import Graph
 
 MAX_GROUP = 96         # 48 -> 96 raised yield@80 on Fashion-MNIST 10,000 from 4.74 to 4.91 (yield simulator)
@@ -71,19 +72,15 @@ def propagate(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: i
     Seeds: a labelled photo is one-hot on its label, a set-aside photo one-hot on unknown, an
     unlabelled photo feeds `unknown_prior` into unknown. Iterates F <- a W F + (1 - a) Y on the
     row-normalised kNN graph; rows are normalised to probabilities at the end.
+    Computed once per change of the seeds, on the graph renumbered for cache locality, bit for bit
+    the plain product (core/incremental_propagation.py); the result is shared, read-only: copy it
+    before changing it.
     """
-    n = graph.n
-    step = _propagation_matrix(graph, settings.propagation_k)
-    y = np.zeros((n, n_labels + 1), np.float32)
-    lab = state == LABELLED
-    y[np.nonzero(lab)[0], label_of[lab]] = 1.0
-    y[state == SET_ASIDE, n_labels] = 1.0
-    y[state == FREE, n_labels] = settings.unknown_prior
-    f = y.copy()
-    a = settings.alpha
-    for _ in range(settings.iterations):
-        f = a * (step @ f) + (1 - a) * y
-    return f / np.maximum(f.sum(1, keepdims=True), 1e-12)
+    cache = _cache_of(graph)
+    key = ("propagation", settings.propagation_k)
+    if key not in cache:
+        cache[key] = PropagationCache(_propagation_matrix(graph, settings.propagation_k))
+    return cache[key].get(state, label_of, n_labels, settings)
 
 
 def _propagation_matrix(graph: Graph, k: int):
@@ -98,6 +95,25 @@ def _propagation_matrix(graph: Graph, k: int):
         n, kk = idx.shape
         cache[("step", k)] = csr_matrix((w.ravel(), idx.ravel(), np.arange(0, n * kk + 1, kk)), shape=(n, n))
     return cache[("step", k)]
+
+
+def entropy_order(graph: Graph) -> np.ndarray:
+    """Photo indices by rising neighbourhood entropy (stable), made once per graph."""
+    cache = _cache_of(graph)
+    if "entropy_order" not in cache:
+        cache["entropy_order"] = np.argsort(graph.entropy, kind="stable")
+    return cache["entropy_order"]
+
+
+def entropy_ranks(graph: Graph) -> np.ndarray:
+    """Each photo's place in `entropy_order`, scaled to [0, 1], made once per graph."""
+    cache = _cache_of(graph)
+    if "entropy_ranks" not in cache:
+        n = graph.n
+        r = np.empty(n)
+        r[entropy_order(graph)] = np.arange(n) / max(n - 1, 1)
+        cache["entropy_ranks"] = r
+    return cache["entropy_ranks"]
 
 
 def _cache_of(graph: Graph) -> dict:
@@ -123,6 +139,17 @@ def smooth(graph: Graph, p: np.ndarray, settings: Settings) -> np.ndarray:
         return p
     idx, w = _graph_weights(graph, settings.propagation_k)
     return (1 - settings.smoothing) * p + settings.smoothing * np.einsum("nk,nkc->nc", w, p[idx])
+
+
+def _smoothed(graph: Graph, classifier: np.ndarray, settings: Settings) -> np.ndarray:
+    """`smooth` of the classifier's probabilities, kept with the graph while the same array comes
+    back (the project keeps one per relearned version and label list): not redone per decision."""
+    cache = _cache_of(graph)
+    key = ("smoothed", settings.smoothing, settings.propagation_k)
+    hit = cache.get(key)
+    if hit is None or hit[0] is not classifier:
+        hit = cache[key] = (classifier, smooth(graph, classifier, settings))
+    return hit[1]
 
 
 def with_classifier(prob: np.ndarray, classifier: np.ndarray) -> np.ndarray:
@@ -191,26 +218,30 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
     available = (state == FREE) if eligible is None else (eligible & (state == FREE))
     if not available.any():
         return []
-    ent_rank = np.empty(n)
-    ent_rank[np.argsort(graph.entropy, kind="stable")] = np.arange(n) / max(n - 1, 1)
+    ent_rank = entropy_ranks(graph)
 
     probable: list[Group] = []
     if n_labels > 0 and (state == LABELLED).any():
         prob = propagate(graph, state, label_of, n_labels, s)
         if classifier is not None:
-            prob = with_classifier(prob, smooth(graph, classifier, s))
+            prob = with_classifier(prob, _smoothed(graph, classifier, s))
         if not_label is not None and not_label.any():
+            prob = prob.copy() if classifier is None else prob     # the propagation's result is shared
             prob[:, :n_labels][not_label] = 0.0
             prob /= np.maximum(prob.sum(1, keepdims=True), 1e-12)
         pred = prob[:, :n_labels].argmax(1)
         conf = prob[np.arange(n), pred]
         sure = available & (conf >= s.min_confidence)
         # Every label gets its chance: up to `limit` groups each, then the most trusted overall.
+        # The sure photos sorted once by (label, falling confidence, index), cut per label; one trial
+        # copy of `available`, restored after each label (not a pass over all photos per label).
+        sure_idx = np.flatnonzero(sure)
+        sure_idx = sure_idx[np.lexsort((-conf[sure_idx], pred[sure_idx]))]
+        cuts = np.searchsorted(pred[sure_idx], np.arange(n_labels + 1))
+        trial = available.copy()
         for c in range(n_labels):
-            cand = np.nonzero(sure & (pred == c))[0]
-            cand = cand[np.argsort(-conf[cand], kind="stable")]
-            trial = available.copy()
-            made = 0
+            cand = sure_idx[cuts[c]:cuts[c + 1]]
+            made, taken_here = 0, []
             while len(cand) and made < limit:
                 members = _fill(cand, graph, trial, s.max_group)
                 if not members:
@@ -219,8 +250,10 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
                 g = Group(members, mean_conf, "probable label", c, mean_conf)
                 g.extra["expected_yield"] = expected_yield(g, conf[members])
                 probable.append(g)
+                taken_here += members
                 cand = cand[trial[cand]]
                 made += 1
+            trial[taken_here] = True            # back as `available` for the next label
         probable.sort(key=_rank)
         probable = probable[:limit]
         # Burst-mates of one label's candidates can be another label's; keep the groups disjoint.
@@ -239,10 +272,12 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
 
     explore: list[Group] = []
     k = min(s.mutual_k, graph.idx.shape[1])
-    for a in np.argsort(graph.entropy, kind="stable"):
+    # The anchors in entropy order, taken photos skipped in one vectorised step (no loop over all photos).
+    anchors = entropy_order(graph)
+    for a in anchors[available[anchors]]:
         if len(explore) >= limit:
             break
-        if not available[a]:
+        if not available[a]:          # taken by a group formed in this loop
             continue
         nb = graph.idx[a, :k]
         ok = graph.mutual[a, :k] & (nb >= 0) & (graph.sims[a, :k] >= s.min_mutual_sim)

@@ -483,10 +483,11 @@ class Store:
         with self._lock:
             return self._conn().execute(q).fetchone()[0]
 
-    def decisions(self) -> list[dict]:
+    def decisions(self, after: int = 0) -> list[dict]:
+        """The logged decisions in order; `after`: only those with a larger id (the ones logged since)."""
         with self._lock:
             rows = self._conn().execute("SELECT id, kind, label, annotator, time, group_id, photos, undoes "
-                                    "FROM decisions ORDER BY id").fetchall()
+                                    "FROM decisions WHERE id > ? ORDER BY id", (after,)).fetchall()
         return [dict(id=r[0], kind=r[1], label=r[2], annotator=r[3], time=r[4], group_id=r[5],
                      photos=json.loads(r[6]), undoes=r[7]) for r in rows]
 

@@ -1,0 +1,127 @@
+"""Label propagation kept with the graph: computed once per change of the seeds, in a memory order
+that keeps each step's reads close together.
+
+The diffusion of core/proposals.py (`F <- a W F + (1 - a) Y`, `iterations` times from `F = Y`) is a
+sparse product per step whose cost is the random reads of neighbour rows of F (each photo's k
+neighbours lie anywhere in the collection). Here the photos are renumbered once per graph by
+reverse Cuthill-McKee (scipy.sparse.csgraph) so that neighbours get nearby numbers and the reads
+mostly hit the cache: 20 steps in 64-68 ms against 86-163 ms (two runs under load) on a
+synthetic 100,000-photo 5-NN graph of 10 clusters, 11 columns. Each row keeps its entries in their original
+order, so every sum is the same sequence of float32 operations as the plain product: the result is
+bit for bit the same.
+
+The result is cached with the seeds it was computed from (state, label_of, labels), so asking again
+without a decision in between (the proposal queue forms several batches per call) costs nothing.
+
+With seven labels or more (2 of at least 8 columns), a decision's seed difference is diffused alone (linearity: F changes by
+M_T dY), in only the 2-3 label columns it touched (`_update`), and added to the kept F; rows it does
+not reach keep their values. 20 steps on the renumbered 100,000-photo graph: 28 ms for 2 columns
+against 64 ms for 11. That is not bit for bit a fresh computation (float32 rounding, checked against
+the plain diffusion in tests/test_incremental_propagation.py); the yield simulator's curves on
+Fashion-MNIST 2,000 stay byte for byte the same. A change of many photos, and every REFRESH
+updates, computes afresh.
+
+Following the difference photo by photo (its support is within
+T reverse-neighbour hops of the changed photos) was tried and measured: on kNN graphs it reaches
+most of the collection within the 20 steps (the graph mixes fast), so it did as much work as the
+full product and was slower in numpy. It is not used.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+
+FULL_SHARE = 0.05       # a change of more photos' seeds than this share: computed afresh
+REFRESH = 64            # computed afresh after this many updates, so rounding cannot drift
+COLUMN_SHARE = 4        # an update diffuses at most 1/4 of the columns (else computed afresh)
+
+
+class PropagationCache:
+    """The renumbered step matrix of one graph and the last result with its seeds."""
+
+    def __init__(self, step):
+        from scipy.sparse import csr_matrix
+        from scipy.sparse.csgraph import reverse_cuthill_mckee
+
+        n = step.shape[0]
+        sym = (step + step.T).tocsr()
+        self.order = reverse_cuthill_mckee(sym, symmetric_mode=True).astype(np.int64)   # new -> old
+        self.place = np.empty(n, np.int64)                                             # old -> new
+        self.place[self.order] = np.arange(n)
+        # Row r of the renumbered matrix is row order[r], entries in their original order, columns renamed.
+        starts, ends = step.indptr[self.order], step.indptr[self.order + 1]
+        counts = ends - starts
+        pos = np.repeat(starts - (np.cumsum(counts) - counts), counts) + np.arange(int(counts.sum()))
+        indptr = np.concatenate([[0], np.cumsum(counts)])
+        self.step = csr_matrix((step.data[pos], self.place[step.indices[pos]], indptr), shape=(n, n))
+        self.step.has_sorted_indices = False
+        self.key = None
+        self.prob = self.f = self.y = None
+        self.updates = 0
+
+    def get(self, state: np.ndarray, label_of: np.ndarray, n_labels: int, settings) -> np.ndarray:
+        """The label distribution (n, n_labels + 1) for these seeds; shared, read-only."""
+        figures = (n_labels, settings.alpha, settings.iterations, settings.unknown_prior)
+        if self.key is not None and self.key[0] == figures:
+            changed = np.flatnonzero((state != self.key[1]) | (label_of != self.key[2]))
+            if len(changed) == 0:
+                return self.prob
+            if len(changed) <= FULL_SHARE * len(state) and self.updates < REFRESH and self._update(
+                    changed, state, label_of, n_labels, settings):
+                return self.prob
+        y = seeds(state[self.order], label_of[self.order], n_labels, settings.unknown_prior)
+        f = y.copy()
+        a = settings.alpha
+        for _ in range(settings.iterations):
+            f = a * (self.step @ f) + (1 - a) * y
+        self.f, self.y = f, y
+        prob = f / np.maximum(f.sum(1, keepdims=True), 1e-12)
+        self.prob = prob[self.place]
+        self.key = (figures, state.copy(), label_of.copy())
+        self.updates = 0
+        return self.prob
+
+    def _update(self, changed, state, label_of, n_labels, settings) -> bool:
+        """By linearity, F changes by the diffusion of the seed difference, which lies in the few label
+        columns the decision touched (the label given, "unknown"): only those columns are diffused.
+        Used when they are at most 1/COLUMN_SHARE of the columns; otherwise (returns False) the full
+        product costs about the same."""
+        new_place = self.place[changed]
+        new_y = seeds(state[changed], label_of[changed], n_labels, settings.unknown_prior)
+        dy = new_y - self.y[new_place]
+        cols = np.flatnonzero(np.abs(dy).max(0) > 0)
+        if len(cols) * COLUMN_SHARE > n_labels + 1:
+            return False
+        n, a = len(state), settings.alpha
+        seed = np.zeros((n, len(cols)), np.float32)
+        seed[new_place] = (1 - a) * dy[:, cols]
+        d = np.zeros((n, len(cols)), np.float32)
+        d[new_place] = dy[:, cols]
+        for _ in range(settings.iterations):
+            d = a * (self.step @ d)
+            d += seed
+        nz = d[:, 0] != 0
+        for c in range(1, len(cols)):
+            nz |= d[:, c] != 0
+        rows = np.flatnonzero(nz)                      # renumbered rows the difference reached
+        self.f[np.ix_(rows, cols)] += d[rows]
+        f = self.f[rows]
+        self.prob[self.order[rows]] = f / np.maximum(f.sum(1, keepdims=True), 1e-12)
+        self.y[new_place] = new_y
+        self.key[1][changed] = state[changed]
+        self.key[2][changed] = label_of[changed]
+        self.updates += 1
+        return True
+
+
+def seeds(state: np.ndarray, label_of: np.ndarray, n_labels: int, unknown_prior: float) -> np.ndarray:
+    """Y: a labelled photo one-hot on its label, a set-aside photo one-hot on unknown, an unlabelled
+    photo `unknown_prior` on unknown (float32, (len(state), n_labels + 1))."""
+    from core.proposals import FREE, LABELLED, SET_ASIDE
+
+    y = np.zeros((len(state), n_labels + 1), np.float32)
+    lab = state == LABELLED
+    y[np.nonzero(lab)[0], label_of[lab]] = 1.0
+    y[state == SET_ASIDE, n_labels] = 1.0
+    y[state == FREE, n_labels] = unknown_prior
+    return y
