@@ -60,15 +60,30 @@ def group_features(graph: Graph, members: Sequence[int], suggested: bool, margin
     if ent_rank is None:
         ent_rank = entropy_ranks(graph)
     size = len(m)
-    if size > 1:
-        x = graph.rows(m).astype(np.float64)   # just these rows (the graph holds no copy)
-        tot = x.sum(0)
-        # mean over the pairs i != j of x_i . x_j, without the size x size matrix
-        pair = float((tot @ tot - np.einsum("ij,ij->", x, x)) / (size * (size - 1)))
-    else:
-        pair = 1.0
+    pair = pair_similarity(graph, m) if size > 1 else 1.0
     return np.array([float(ent_rank[m].mean()), pair, float(np.log(size)),
                      float(margin or 0.0) if suggested else 0.0, float(bool(suggested))])
+
+
+PAIR_CACHE = 4096          # groups whose pair similarity is kept per graph (a held group comes back each call)
+
+
+def pair_similarity(graph: Graph, members: np.ndarray) -> float:
+    """Mean over the pairs i != j of the members' prepared x_i . x_j, without the size x size matrix.
+    It reads the members' vectors (the graph holds no copy), so it is kept per graph and member list:
+    a group is measured again on every proposal call that returns it and when it is accepted."""
+    from core import proposals
+
+    cache = proposals.derived(graph).setdefault("pair_similarity", {})
+    key = members.tobytes()
+    if key not in cache:
+        if len(cache) >= PAIR_CACHE:
+            cache.clear()
+        x = graph.rows(members).astype(np.float64)
+        tot = x.sum(0)
+        size = len(members)
+        cache[key] = float((tot @ tot - np.einsum("ij,ij->", x, x)) / (size * (size - 1)))
+    return cache[key]
 
 
 def entropy_ranks(graph: Graph) -> np.ndarray:

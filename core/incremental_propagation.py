@@ -13,12 +13,13 @@ bit for bit the same.
 The result is cached with the seeds it was computed from (state, label_of, labels), so asking again
 without a decision in between (the proposal queue forms several batches per call) costs nothing.
 
-With seven labels or more (2 of at least 8 columns), a decision's seed difference is diffused alone (linearity: F changes by
-M_T dY), in only the 2-3 label columns it touched (`_update`), and added to the kept F; rows it does
-not reach keep their values. 20 steps on the renumbered 100,000-photo graph: 28 ms for 2 columns
-against 64 ms for 11. That is not bit for bit a fresh computation (float32 rounding, checked against
-the plain diffusion in tests/test_incremental_propagation.py); the yield simulator's curves on
-Fashion-MNIST 2,000 stay byte for byte the same. A change of many photos, and every REFRESH
+A decision's seed difference is diffused alone (linearity: F changes by M_T dY), in only the 2-3
+label columns it touched (`_update`), one vector at a time, and added to the kept F; rows it does not
+reach keep their values. 20 steps on the renumbered 100,000-photo graph: 16 ms for 2 columns against
+41 ms for the full product of 5 columns and 70 ms of 11 (CPU time, SINGLE_STEP / MULTI_STEP below).
+That is not bit for bit a fresh computation (float32 rounding, checked against the plain diffusion in
+tests/test_incremental_propagation.py). A new label widens the kept result by a zero column at its
+place (`_add_labels`) and is then updated the same way. A change of many photos, and every REFRESH
 updates, computes afresh.
 
 Following the difference photo by photo (its support is within
@@ -33,7 +34,12 @@ import numpy as np
 
 FULL_SHARE = 0.05       # a change of more photos' seeds than this share: computed afresh
 REFRESH = 64            # computed afresh after this many updates, so rounding cannot drift
-COLUMN_SHARE = 4        # an update diffuses at most 1/4 of the columns (else computed afresh)
+# CPU ms of the 20 steps on a 100,000-photo 5-NN graph (measured once with a throwaway script): scipy's
+# product of one vector is about 4 times cheaper per column than of several at once (csr_matvec against
+# csr_matvecs): 1 column 7.9, and for 2 / 3 / 5 / 11 columns at once 30 / 38 / 41 / 70. An update
+# diffuses its columns one at a time while that costs less than the full product.
+SINGLE_STEP = 8
+MULTI_STEP = {2: 30, 3: 38, 4: 40, 5: 41, 6: 47, 7: 52, 8: 57, 9: 62, 10: 66, 11: 70}
 
 
 class PropagationCache:
@@ -55,13 +61,19 @@ class PropagationCache:
         indptr = np.concatenate([[0], np.cumsum(counts)])
         self.step = csr_matrix((step.data[pos], self.place[step.indices[pos]], indptr), shape=(n, n))
         self.step.has_sorted_indices = False
-        self.key = None
+        self.key = self.names = None
         self.prob = self.f = self.y = None
         self.updates = 0
 
-    def get(self, state: np.ndarray, label_of: np.ndarray, n_labels: int, settings) -> np.ndarray:
-        """The label distribution (n, n_labels + 1) for these seeds; shared, read-only."""
+    def get(self, state: np.ndarray, label_of: np.ndarray, n_labels: int, settings,
+            names: list[str] | None = None) -> np.ndarray:
+        """The label distribution (n, n_labels + 1) for these seeds; shared, read-only. `names`: the
+        label names behind the columns, so that a new label widens the kept result (`_add_labels`)."""
         figures = (n_labels, settings.alpha, settings.iterations, settings.unknown_prior)
+        if (self.key is not None and names is not None and self.names is not None and len(names) == n_labels
+                and self.key[0][1:] == figures[1:] and self.key[0][0] < n_labels):
+            self._add_labels(list(names))
+        self.names = None if names is None else list(names)
         if self.key is not None and self.key[0] == figures:
             changed = np.flatnonzero((state != self.key[1]) | (label_of != self.key[2]))
             if len(changed) == 0:
@@ -81,29 +93,49 @@ class PropagationCache:
         self.updates = 0
         return self.prob
 
+    def _add_labels(self, names: list[str]) -> None:
+        """New labels: their columns of Y, so of F, are zero until a photo carries them. Zero columns go
+        in at their places ("unknown" stays last) and the kept label indices are renumbered, so the
+        decision that gave the label is then an update like any other, not a fresh product over every
+        column. Nothing is done (a fresh product follows) unless every old name is still there."""
+        pos = {name: i for i, name in enumerate(names)}
+        if any(name not in pos for name in self.names):
+            return
+        new_of = np.array([pos[name] for name in self.names] + [len(names)], np.int64)   # old column -> new
+        n = len(self.f)
+
+        def widen(a):
+            out = np.zeros((n, len(names) + 1), a.dtype)
+            out[:, new_of] = a
+            return out
+
+        self.f, self.y, self.prob = widen(self.f), widen(self.y), widen(self.prob)
+        old_of = self.key[2]
+        self.key = ((len(names),) + self.key[0][1:], self.key[1],
+                    np.where(old_of >= 0, new_of[np.maximum(old_of, 0)], old_of))
+
     def _update(self, changed, state, label_of, n_labels, settings) -> bool:
         """By linearity, F changes by the diffusion of the seed difference, which lies in the few label
-        columns the decision touched (the label given, "unknown"): only those columns are diffused.
-        Used when they are at most 1/COLUMN_SHARE of the columns; otherwise (returns False) the full
-        product costs about the same."""
+        columns the decision touched (the label given, "unknown"): only those columns are diffused, one
+        vector at a time. Used while that costs less than the full product (SINGLE_STEP, MULTI_STEP);
+        otherwise returns False."""
         new_place = self.place[changed]
         new_y = seeds(state[changed], label_of[changed], n_labels, settings.unknown_prior)
         dy = new_y - self.y[new_place]
         cols = np.flatnonzero(np.abs(dy).max(0) > 0)
-        if len(cols) * COLUMN_SHARE > n_labels + 1:
+        if len(cols) >= n_labels + 1 or len(cols) * SINGLE_STEP > MULTI_STEP[min(n_labels + 1, 11)]:
             return False
         n, a = len(state), settings.alpha
-        seed = np.zeros((n, len(cols)), np.float32)
-        seed[new_place] = (1 - a) * dy[:, cols]
         d = np.zeros((n, len(cols)), np.float32)
-        d[new_place] = dy[:, cols]
-        for _ in range(settings.iterations):
-            d = a * (self.step @ d)
-            d += seed
-        nz = d[:, 0] != 0
-        for c in range(1, len(cols)):
-            nz |= d[:, c] != 0
-        rows = np.flatnonzero(nz)                      # renumbered rows the difference reached
+        for j, c in enumerate(cols):                   # one vector at a time: scipy's single-vector product
+            v = np.zeros(n, np.float32)
+            v[new_place] = dy[:, c]
+            seed = (1 - a) * v
+            for _ in range(settings.iterations):
+                v = a * (self.step @ v)
+                v += seed
+            d[:, j] = v
+        rows = np.flatnonzero((d != 0).any(1))         # renumbered rows the difference reached
         self.f[np.ix_(rows, cols)] += d[rows]
         f = self.f[rows]
         self.prob[self.order[rows]] = f / np.maximum(f.sum(1, keepdims=True), 1e-12)

@@ -646,12 +646,16 @@ class Project:
         ranks = None
         log = cache["log"]                     # the decisions read so far: only the new ones are read
         log += self.store.decisions(after=log[-1]["id"] if log else 0)
-        if len(log) != key[0]:                 # the log was rewritten under us: read it whole
+        rewritten = len(log) != key[0]
+        if rewritten:                          # the log was rewritten under us: read it whole
             log[:] = self.store.decisions()
         decisions = log
         undone = {d["undoes"] for d in decisions if d["undoes"] is not None}
-        cal = calibration.Calibrator()
-        for d in decisions:
+        # Observed groups are only ever appended unless a decision is undone: then every one is observed
+        # again; otherwise the kept calibrator observes just the new decisions (not the whole log per call).
+        fresh = rewritten or cache.get("undone") != undone or "calibrator" not in cache
+        cal = calibration.Calibrator() if fresh else cache["calibrator"]
+        for d in decisions if fresh else decisions[cache["observed"]:]:
             if d["kind"] != "accept" or d["group_id"] is None or d["id"] in undone:
                 continue
             if d["id"] not in seen:                # each accepted group is measured once
@@ -668,7 +672,7 @@ class Project:
                                  (kept if d["label"] == row.suggested_label else 0.0) if sug else None)
             if seen[d["id"]] is not None:
                 cal.observe(*seen[d["id"]])
-        cache.update(key=key, calibrator=cal)
+        cache.update(key=key, calibrator=cal, undone=undone, observed=len(decisions))
         return cal
 
     def _calibrated(self, groups: list[Proposal]) -> list[Proposal]:

@@ -77,7 +77,7 @@ def propose(project, limit: int = 20, settings: proposals.Settings | None = None
                 eligible = rested
         out = []
         for gr in proposals.form_groups(graph, state, label_of, len(names), BATCH, s, eligible,
-                                        project.label_state.not_label(), classifier):
+                                        project.label_state.not_label(), classifier, names):
             taken[gr.members] = True
             fresh.append(dict(members=[project._rows[i].path for i in gr.members], trust=round(gr.trust, 4),
                               suggested_label=None if gr.suggested_label is None else names[gr.suggested_label],

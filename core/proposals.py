@@ -66,7 +66,7 @@ class Group:
 
 
 def propagate(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: int,
-              settings: Settings) -> np.ndarray:
+              settings: Settings, names: list[str] | None = None) -> np.ndarray:
     """Label distribution of every photo, shape (n, n_labels + 1); the last column is 'unknown'.
 
     Seeds: a labelled photo is one-hot on its label, a set-aside photo one-hot on unknown, an
@@ -76,11 +76,11 @@ def propagate(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: i
     the plain product (core/incremental_propagation.py); the result is shared, read-only: copy it
     before changing it.
     """
-    cache = _cache_of(graph)
+    cache = derived(graph)
     key = ("propagation", settings.propagation_k)
     if key not in cache:
         cache[key] = PropagationCache(_propagation_matrix(graph, settings.propagation_k))
-    return cache[key].get(state, label_of, n_labels, settings)
+    return cache[key].get(state, label_of, n_labels, settings, names)
 
 
 def _propagation_matrix(graph: Graph, k: int):
@@ -89,7 +89,7 @@ def _propagation_matrix(graph: Graph, k: int):
     neighbour rows, without copying n x k x labels values per step)."""
     from scipy.sparse import csr_matrix
 
-    cache = _cache_of(graph)
+    cache = derived(graph)
     if ("step", k) not in cache:
         idx, w = _graph_weights(graph, k)
         n, kk = idx.shape
@@ -99,7 +99,7 @@ def _propagation_matrix(graph: Graph, k: int):
 
 def entropy_order(graph: Graph) -> np.ndarray:
     """Photo indices by rising neighbourhood entropy (stable), made once per graph."""
-    cache = _cache_of(graph)
+    cache = derived(graph)
     if "entropy_order" not in cache:
         cache["entropy_order"] = np.argsort(graph.entropy, kind="stable")
     return cache["entropy_order"]
@@ -107,7 +107,7 @@ def entropy_order(graph: Graph) -> np.ndarray:
 
 def entropy_ranks(graph: Graph) -> np.ndarray:
     """Each photo's place in `entropy_order`, scaled to [0, 1], made once per graph."""
-    cache = _cache_of(graph)
+    cache = derived(graph)
     if "entropy_ranks" not in cache:
         n = graph.n
         r = np.empty(n)
@@ -116,7 +116,7 @@ def entropy_ranks(graph: Graph) -> np.ndarray:
     return cache["entropy_ranks"]
 
 
-def _cache_of(graph: Graph) -> dict:
+def derived(graph: Graph) -> dict:
     """Figures derived from a graph alone, kept with it (a graph never changes once built)."""
     cache = graph.__dict__.get("_derived")
     if cache is None:
@@ -144,7 +144,7 @@ def smooth(graph: Graph, p: np.ndarray, settings: Settings) -> np.ndarray:
 def _smoothed(graph: Graph, classifier: np.ndarray, settings: Settings) -> np.ndarray:
     """`smooth` of the classifier's probabilities, kept with the graph while the same array comes
     back (the project keeps one per relearned version and label list): not redone per decision."""
-    cache = _cache_of(graph)
+    cache = derived(graph)
     key = ("smoothed", settings.smoothing, settings.propagation_k)
     hit = cache.get(key)
     if hit is None or hit[0] is not classifier:
@@ -178,7 +178,7 @@ def _take_unit(j: int, graph: Graph, available: np.ndarray) -> list[int]:
 
 def _burst_members(graph: Graph) -> list[np.ndarray]:
     """Photos of each burst, in index order, made once per graph (not a pass over all photos per unit)."""
-    cache = _cache_of(graph)
+    cache = derived(graph)
     if "bursts" not in cache:
         b = graph.burst
         order = np.argsort(b, kind="stable")
@@ -205,13 +205,15 @@ def _fill(candidates, graph: Graph, available: np.ndarray, cap: int) -> list[int
 
 def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: int, limit: int,
                 settings: Settings | None = None, eligible: np.ndarray | None = None,
-                not_label: np.ndarray | None = None, classifier: np.ndarray | None = None) -> list[Group]:
+                not_label: np.ndarray | None = None, classifier: np.ndarray | None = None,
+                names: list[str] | None = None) -> list[Group]:
     """Up to `limit` groups of eligible unlabelled photos, most trustworthy first.
 
     state: FREE / LABELLED / SET_ASIDE per photo; label_of: label index per labelled photo (else -1);
     eligible: photos that may be proposed (default: all FREE ones); not_label: (n, n_labels) True
     where the annotator said a photo is not that label (it was taken out of that label's group);
     classifier: (n, n_labels) label probabilities from the relearned classifier (see with_classifier).
+    names: the labels' names, which lets the kept propagation follow a new label (incremental_propagation).
     """
     s = settings or Settings()
     n = graph.n
@@ -222,7 +224,7 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
 
     probable: list[Group] = []
     if n_labels > 0 and (state == LABELLED).any():
-        prob = propagate(graph, state, label_of, n_labels, s)
+        prob = propagate(graph, state, label_of, n_labels, s, names)
         if classifier is not None:
             prob = with_classifier(prob, _smoothed(graph, classifier, s))
         if not_label is not None and not_label.any():

@@ -421,17 +421,19 @@ class Store:
         `before`: what undo needs for a decision that changes no label (kind 'later')."""
         with self.transaction() as db:
             before = dict(before or {})
-            for fp in changes:
-                r = db.execute("SELECT fingerprint, state, label, how, annotator, time FROM labels "
-                               "WHERE fingerprint=?", (fp,)).fetchone()
-                before[fp] = list(r[1:]) if r else None
-            for fp, row in changes.items():
-                if row is None:
-                    db.execute("DELETE FROM labels WHERE fingerprint=?", (fp,))
-                else:
-                    db.execute("INSERT OR REPLACE INTO labels VALUES (?, ?, ?, ?, ?, ?)",
-                               (fp, row.state, row.label, row.how, row.annotator, row.time))
-                db.execute("DELETE FROM deferred WHERE fingerprint=?", (fp,))
+            fps = list(changes)
+            was = {}
+            for s in range(0, len(fps), 900):              # under SQLite's oldest limit of 999 parameters
+                part = fps[s:s + 900]
+                was.update((r[0], list(r[1:])) for r in db.execute(
+                    "SELECT fingerprint, state, label, how, annotator, time FROM labels WHERE fingerprint IN "
+                    f"({','.join('?' * len(part))})", part))
+            before.update((fp, was.get(fp)) for fp in fps)
+            db.executemany("DELETE FROM labels WHERE fingerprint=?", [(fp,) for fp, row in changes.items() if row is None])
+            db.executemany("INSERT OR REPLACE INTO labels VALUES (?, ?, ?, ?, ?, ?)",
+                           [(fp, row.state, row.label, row.how, row.annotator, row.time)
+                            for fp, row in changes.items() if row is not None])
+            db.executemany("DELETE FROM deferred WHERE fingerprint=?", [(fp,) for fp in fps])
             cur = db.execute("INSERT INTO decisions(kind, label, annotator, time, group_id, photos, before, undoes) "
                              "VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
                              (kind, label, annotator, utc_now(), group_id, json.dumps(list(photos)),

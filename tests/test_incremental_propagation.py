@@ -44,7 +44,7 @@ def test_renumbered_diffusion_is_bit_for_bit_the_plain_one_decision_after_decisi
             state[pick], label_of[pick] = proposals.LABELLED, truth[pick] % (2 + step // 5)
         n_labels = int(label_of.max()) + 1 if (label_of >= 0).any() else 0
         got = proposals.propagate(graph, state, label_of, n_labels, s)
-        cache = proposals._cache_of(graph)[("propagation", s.propagation_k)]
+        cache = proposals.derived(graph)[("propagation", s.propagation_k)]
         if cache.updates == 0:      # computed afresh: bit for bit the plain diffusion
             assert np.array_equal(got, _plain(graph, state, label_of, n_labels, s))
             fresh += 1
@@ -79,7 +79,7 @@ def test_with_many_labels_a_decision_diffuses_only_its_columns_and_matches_the_p
     first = [int(np.flatnonzero(classes == c)[0]) for c in range(30)]
     state[first], label_of[first] = proposals.LABELLED, classes[first]
     proposals.propagate(graph, state, label_of, 30, s)
-    cache = proposals._cache_of(graph)[("propagation", s.propagation_k)]
+    cache = proposals.derived(graph)[("propagation", s.propagation_k)]
     updates = 0
     for step in range(40):
         c = int(rng.integers(0, 30))                      # one group accepted under one label
@@ -93,3 +93,33 @@ def test_with_many_labels_a_decision_diffuses_only_its_columns_and_matches_the_p
         free = state == proposals.FREE
         assert (got[free, :30].argmax(1) == want[free, :30].argmax(1)).mean() > 0.999
     assert updates >= 30
+
+
+def test_a_new_label_is_an_update_not_a_fresh_product_and_matches_the_plain_diffusion():
+    # Names are kept sorted (core/label_state.py), so a new label can land between old ones and shift
+    # their indices: the kept result must follow by name.
+    graph, truth = _graph()
+    s = proposals.Settings()
+    n = graph.n
+    state = np.zeros(n, np.int8)
+    label_of = np.full(n, -1, np.int64)
+    names: list[str] = []
+    order = [7, 2, 9, 0, 5, 3, 8, 1, 6, 4]                 # digit classes in the order they are first labelled
+    cache, widened = None, 0
+    for step, c in enumerate(order * 2):
+        pick = np.flatnonzero((state == proposals.FREE) & (truth == c))[:12]
+        name = f"digit {c}"
+        if name not in names:
+            names = sorted(names + [name])
+        given = np.array([int(truth[i]) for i in np.flatnonzero(state == proposals.LABELLED)])
+        state[pick] = proposals.LABELLED
+        label_of[:] = -1
+        lab = np.flatnonzero(state == proposals.LABELLED)
+        label_of[lab] = [names.index(f"digit {int(truth[i])}") for i in lab]
+        got = proposals.propagate(graph, state, label_of, len(names), s, names)
+        cache = proposals.derived(graph)[("propagation", s.propagation_k)]
+        want = _plain(graph, state, label_of, len(names), s)
+        assert np.abs(got - want).max() < 1e-5, step       # float32 rounding only
+        if step > 0 and len(given):
+            widened += cache.updates > 0
+    assert widened >= 15                                   # new labels too went the update's way
