@@ -88,6 +88,7 @@ class Vectors:
             raise VectorError(f"the embeddings file {path.name} is shorter than the store says "
                               f"({size} of {need} bytes); scan again to embed the photos anew")
         mm = np.memmap(path, dtype=DTYPE, mode="r", shape=(rows, dim)) if rows else np.zeros((0, dim), DTYPE)
+        _read_ahead(mm)
         self._maps[extractor] = (token, rows, mm)
         return mm, dim
 
@@ -213,6 +214,21 @@ class Vectors:
                 db.executemany("DELETE FROM embeddings WHERE fingerprint=? AND extractor=?", [(fp, ext) for fp in fps])
             moved += len(todo)
         return moved
+
+
+def _read_ahead(mm) -> None:
+    """Ask the kernel to read the mapped file in the background. Once mapped, rows are wanted soon and
+    at random (a group's members for its pair similarity): from a cold file each costs a disk read,
+    about 70 ms for a 96-photo group of 1,280-d rows measured at 100,000 photos. Only a hint: the
+    kernel reads what memory allows and nothing waits for it."""
+    import mmap
+
+    handle = getattr(mm, "_mmap", None)
+    if handle is not None and hasattr(handle, "madvise") and hasattr(mmap, "MADV_WILLNEED"):
+        try:
+            handle.madvise(mmap.MADV_WILLNEED)
+        except OSError:
+            pass
 
 
 def _write_rows(path: Path, offset: int, vectors: np.ndarray) -> None:
