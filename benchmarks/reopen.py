@@ -23,6 +23,7 @@ unpacked in DIR) against the same stores, so before/after ratios come from one r
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
 import shutil
@@ -36,7 +37,7 @@ import numpy as np
 OUT = Path(os.environ.get("KINFOLD_SCALE_DIR", "/tmp/kinfold-scale"))
 EXTRACTOR = "benchmark-stand-in:1280"
 DIM = 1280
-RECIPE = 2                  # bump when the store recipe changes, so kept stores are rebuilt
+RECIPE = 3                  # bump when the store recipe changes, so kept stores are rebuilt
 HEAVY = ("torch", "faiss", "scipy", "sklearn", "PIL")
 TARGET_S = 1.0
 
@@ -49,7 +50,9 @@ def make_store(n: int, folder: Path, dim: int = DIM, seed: int = 0) -> dict:
     shutil.rmtree(folder, ignore_errors=True)
     folder.mkdir(parents=True)
     st = Store(folder / ".kinfold")
-    rows = [PhotoRow(f"p/{i // 1000:03d}/{i:07d}.png", f"{i:016x}", 1000, 0, 28, 28) for i in range(n)]
+    # Fingerprints as the scan makes them (BLAKE2b-128 hex), so they are in no relation to the paths.
+    rows = [PhotoRow(f"p/{i // 1000:03d}/{i:07d}.png", hashlib.blake2b(str(i).encode(), digest_size=16).hexdigest(),
+                     1000, 0, 28, 28) for i in range(n)]
     st.replace_catalogue(rows, {})
     rng = np.random.default_rng(seed)
     for s in range(0, n, 20_000):
