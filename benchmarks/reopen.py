@@ -147,7 +147,7 @@ print(json.dumps(out))
 """
 
 _CLI = r"""
-import runpy, sys, time, json
+import sys, json
 t0 = time.perf_counter()
 sys.argv = ['kinfold', 'status', sys.argv[1], '--json']
 import app.cli
