@@ -148,7 +148,6 @@ print(json.dumps(out))
 
 _CLI = r"""
 import sys, json
-t0 = time.perf_counter()
 sys.argv = ['kinfold', 'status', sys.argv[1], '--json']
 import app.cli
 rc = app.cli.main(sys.argv[1:])
