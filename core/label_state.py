@@ -29,9 +29,13 @@ class LabelState:
         `rejections`: Counter of (fingerprint, label) pairs; `deferred`: deferred fingerprints;
         `decisions`: how many decisions the log holds."""
         n = len(fingerprints)
-        self._rows_of: dict[str, list[int]] = {}
-        for i, fp in enumerate(fingerprints):
-            self._rows_of.setdefault(fp, []).append(i)
+        # The row of each content: an int, or a list of rows when several paths share one content.
+        self._rows_of: dict[str, int | list[int]] = dict(zip(fingerprints, range(n)))
+        if len(self._rows_of) != n:
+            shared: dict[str, list[int]] = {}
+            for i, fp in enumerate(fingerprints):
+                shared.setdefault(fp, []).append(i)
+            self._rows_of.update((fp, rows) for fp, rows in shared.items() if len(rows) > 1)
         self._labels = dict(labels)
         self._rejections = Counter(rejections)
         self._deferred = set(deferred)
@@ -42,12 +46,26 @@ class LabelState:
         self.state = np.zeros(n, np.int8)
         self.label_of = np.full(n, -1, np.int64)
         self.deferred = np.zeros(n, bool)
-        for fp, rows in self._rows_of.items():
-            lr = self._labels.get(fp)
-            if lr is not None:
-                self._set_rows(rows, lr)
-            if fp in self._deferred:
-                self.deferred[rows] = True
+        # Filled in one vectorised step per array (only the labelled / set aside / deferred photos are
+        # looked at, never every row in Python).
+        rows, state, label_of = [], [], []
+        for fp, lr in self._labels.items():
+            r = self._rows_of.get(fp)
+            if r is None:
+                continue
+            k = 1 if isinstance(r, int) else len(r)
+            rows.append(r) if k == 1 else rows.extend(r)
+            labelled = lr.state == "labelled"
+            state += [LABELLED if labelled else SET_ASIDE] * k
+            label_of += [self._pos[lr.label] if labelled else -1] * k
+        self.state[rows] = state
+        self.label_of[rows] = label_of
+        deferred = []
+        for fp in self._deferred:
+            r = self._rows_of.get(fp)
+            if r is not None:
+                deferred.append(r) if isinstance(r, int) else deferred.extend(r)
+        self.deferred[deferred] = True
         self._not_label: np.ndarray | None = None      # built on demand, dropped when it changes
 
     @classmethod
@@ -132,7 +150,7 @@ class LabelState:
         for fp, new in changes.items():
             self._set_deferred(fp, False)           # a decision on a photo ends its 'later'
             rows = self._rows_of.get(fp)
-            if rows:
+            if rows is not None:
                 self._set_rows(rows, new)
 
     def _reindex(self, names: list[str]) -> None:
@@ -144,7 +162,7 @@ class LabelState:
         self.names, self._pos = names, pos
         self._not_label = None
 
-    def _set_rows(self, rows: list[int], lr: LabelRow | None) -> None:
+    def _set_rows(self, rows: int | list[int], lr: LabelRow | None) -> None:
         if lr is None:
             self.state[rows] = FREE
             self.label_of[rows] = -1
@@ -161,5 +179,5 @@ class LabelState:
         else:
             self._deferred.discard(fp)
         rows = self._rows_of.get(fp)
-        if rows:
+        if rows is not None:
             self.deferred[rows] = on

@@ -33,11 +33,11 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Callable
 
-import faiss
 import numpy as np
-from scipy import sparse
-from scipy.sparse.csgraph import connected_components
 from threadpoolctl import threadpool_limits
+
+# faiss and scipy are imported by the functions that search (not at import time), so reading a
+# project's status or opening it never loads them (benchmarks/reopen.py checks).
 
 EXACT_LIMIT = 20_000         # exact kNN and entropy up to here; approximate above
 EXACT_KNN_LIMIT = EXACT_LIMIT        # (names kept for callers of the earlier two limits)
@@ -190,6 +190,8 @@ def _exact(src: Source, k: int, temperature: float, progress, cancel, want_entro
     # The neighbours come from faiss's exact inner-product search (as before this module searched
     # at scale, so a collection below the limit keeps exactly the neighbours it had); the entropy
     # from the same block's products.
+    import faiss
+
     index = faiss.IndexFlatIP(x.shape[1])
     index.add(x)
     kk = min(k + 1, n)
@@ -318,6 +320,9 @@ def make_lists(src: Source, n_lists: int | None = None, *, cancel: Cancel | None
     pk = np.ascontiguousarray(src.rows(ksample) @ proj)
     if cancel is not None and cancel():
         raise Cancelled()
+    import faiss
+    from scipy import sparse
+
     threads = faiss.omp_get_max_threads()
     faiss.omp_set_num_threads(1)                          # see _run_blocks: one thread per worker
     try:

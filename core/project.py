@@ -145,16 +145,14 @@ class Project:
         return self.store.get_setting("extractor_id")
 
     def _load_catalogue(self) -> None:
-        rows = self.store.photos()
-        ext = self.extractor_id
-        embedded = self.store.embedded_fingerprints(ext) if ext else set()
-        self._rows: list[PhotoRow] = [r for r in rows if r.fingerprint in embedded]
-        self._index = {r.path: i for i, r in enumerate(self._rows)}
+        """Forget the catalogue and everything built on it; each part is read from the store again
+        when first needed (`_rows`, `_features`, `graph`, `label_state`), so opening reads none."""
+        self._catalogue = None               # (rows, index by path), read by `_rows` / `_index`
         self._features_map = None            # read when first needed (`_features`)
         self._graph = None
         self._graph_version = None
         self._classifier_cache: tuple = (None, None)
-        self._labels = LabelState.load(self.store, [r.fingerprint for r in self._rows])
+        self._labels = None                  # read when first needed (`label_state`)
 
     def _on_commit(self, changes: list[tuple]) -> None:
         """The store's after_commit hook: each decision updates the label state in place."""
@@ -169,9 +167,16 @@ class Project:
 
     @property
     def label_state(self) -> LabelState:
-        """Where every photo stands (core/label_state.py), kept up to date by each decision."""
+        """Where every photo stands (core/label_state.py), kept up to date by each decision; read
+        from the tables when first needed."""
         if self._labels is None:
-            self._labels = LabelState.load(self.store, [r.fingerprint for r in self._rows])
+            with self._mutex:
+                if self._labels is not None:
+                    return self._labels
+                state = LabelState.load(self.store, [r.fingerprint for r in self._rows])
+                if self._store_has_pending_changes():
+                    return state    # read mid-transaction: its commit would be applied twice; read again after
+                self._labels = state
         return self._labels
 
     @_serialised
@@ -358,13 +363,15 @@ class Project:
     # -- reading -----------------------------------------------------------------------------
     @_serialised
     def status(self) -> Status:
+        if self._labels is None:                 # nothing read yet: let SQLite count (core/quick_status.py)
+            return self._quick_status()
         ls = self.label_state
         by_label = ls.counts()
         labelled = int((ls.state == proposals.LABELLED).sum())
         aside = int((ls.state == proposals.SET_ASIDE).sum())
         return Status(photos=len(self._rows), labelled=labelled, set_aside=aside,
                       unlabelled=len(self._rows) - labelled - aside, by_label=dict(sorted(by_label.items())),
-                      actions=self.store.decision_count(actions_only=True), skipped=len(self.store.skipped()),
+                      actions=self.store.decision_count(actions_only=True), skipped=self.store.skipped_count(),
                       relearned_version=self.store.active_relearn_version())
 
     @_serialised
@@ -711,6 +718,41 @@ class Project:
         for fp, reason in run.retry.items():
             retry.update((path, reason) for path in paths_of[fp])
         return run.embedded, run.cancelled or run.lost is not None, run.lost
+
+
+    # --- reopen: the catalogue read when first needed, status counted by SQLite (core/quick_status.py) ---
+    @property
+    def _rows(self) -> list[PhotoRow]:
+        """The catalogue: the photos embedded with the project's extractor, by path."""
+        return (self._catalogue or self._read_catalogue())[0]
+
+    @property
+    def _index(self) -> dict[str, int]:
+        """Row of each catalogued path."""
+        return (self._catalogue or self._read_catalogue())[1]
+
+    def _read_catalogue(self) -> tuple[list[PhotoRow], dict[str, int]]:
+        with self._mutex:
+            if self._catalogue is None:
+                rows = self.store.catalogue(self.extractor_id) if self.extractor_id else []
+                self._catalogue = (rows, {r.path: i for i, r in enumerate(rows)})
+            return self._catalogue
+
+    def _store_has_pending_changes(self) -> bool:
+        """Whether this thread is inside a store transaction that already changed labels or decisions."""
+        st = self.store
+        with st._lock:
+            return st._depth > 0 and bool(st._pending)
+
+    def _quick_status(self) -> Status:
+        from core import quick_status
+
+        c = quick_status.counts(self.store, self.extractor_id)
+        return Status(photos=c.photos, labelled=c.labelled, set_aside=c.set_aside,
+                      unlabelled=c.photos - c.labelled - c.set_aside, by_label=c.by_label,
+                      actions=self.store.decision_count(actions_only=True),
+                      skipped=self.store.skipped_count(),
+                      relearned_version=self.store.active_relearn_version())
 
 
 def _check_extractor(obj) -> None:

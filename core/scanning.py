@@ -11,7 +11,6 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 
-from core import catalogue
 from core.errors import ProjectError
 from core.store import PhotoRow
 
@@ -34,6 +33,8 @@ class ScanReport:
 def scan(project, progress=None, cancel=None, cluster=None, **cluster_options) -> ScanReport:
     """Scan `project`'s folder (a core.project.Project); see the module's docstring. With `cluster`
     the embedding runs on Dask (core/cluster_scan.py, through Project's "dask" block)."""
+    from core import catalogue    # here, not at import: reading a project's status never loads PIL
+
     if cluster is not None:
         cluster = project._cluster_target(cluster)
     t0 = time.perf_counter()

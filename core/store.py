@@ -365,6 +365,17 @@ class Store:
                                     "ORDER BY path").fetchall()
         return [PhotoRow(*r) for r in rows]
 
+    def catalogue(self, extractor: str) -> list[PhotoRow]:
+        """The photos embedded with `extractor`, by path: a project's catalogue (one indexed join)."""
+        with self._lock:
+            rows = self._conn().execute("SELECT p.path, p.fingerprint, p.size, p.mtime_ns, p.width, p.height "
+                                        "FROM photos p JOIN vector_rows e ON e.fingerprint = p.fingerprint "
+                                        "AND e.extractor = ? ORDER BY p.path", (extractor,)).fetchall()
+        return [PhotoRow(*r) for r in rows]
+
+    def skipped_count(self) -> int:
+        return self._one("SELECT COUNT(*) FROM skipped")[0]
+
     def skipped(self) -> dict[str, tuple[int, int, str]]:
         with self._lock:
             rows = self._conn().execute("SELECT path, size, mtime_ns, reason FROM skipped").fetchall()
