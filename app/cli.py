@@ -19,6 +19,7 @@ import sys
 import threading
 import time
 
+from app.graph_progress import GraphInterrupted, prepare_on_terminal
 from core.export import WHY_LINKS, ExportError, folder_export_mode
 from core.project import STORE_DIR, FolderInUse, Project, ProjectError
 from core.store import StoreError
@@ -188,6 +189,7 @@ def cmd_scan(args):
 
 def cmd_propose(args):
     with _open(args) as p:
+        prepare_on_terminal(p, args.json)
         groups = p.propose(limit=args.limit)
         if args.json:
             _print([dict(dataclasses.asdict(g), splittable=g.splittable) for g in groups], True)
@@ -222,6 +224,8 @@ def _report_status(st, as_json: bool) -> None:
 
 def cmd_split(args):
     with _open(args) as p:
+        p.group(args.group)                  # an unknown group: its one line before any wait
+        prepare_on_terminal(p, args.json)
         parts = p.split(args.group)
     if args.json:
         _print([dataclasses.asdict(g) for g in parts], True)
@@ -278,6 +282,7 @@ def cmd_browse(args):
 
 def cmd_mistakes(args):
     with _open(args, lock=False) as p:   # only reads: works while the window has the folder open
+        prepare_on_terminal(p, args.json)
         found = p.likely_mistakes(limit=args.limit)
     if args.json:
         _print([dataclasses.asdict(m) for m in found], True)
@@ -304,6 +309,7 @@ def cmd_status(args):
 
 def cmd_export(args):
     with _open(args) as p:
+        prepare_on_terminal(p, args.json)
         written = p.export(csv=args.csv, coco=args.coco, folders=args.folders, split=args.split,
                            mode=args.mode, overwrite=args.overwrite)
         out = {}
@@ -396,6 +402,9 @@ def cmd_restore(args):
 
 def cmd_review(args):
     with _open(args, lock=False) as p:     # only reads
+        if args.label not in p.label_arrays()[2]:     # its one line before any wait for the graph
+            raise ProjectError(f"no photo carries the label {args.label!r}")
+        prepare_on_terminal(p, args.json)
         found = p.review(args.label)
     shown = found[: args.limit]
     if args.json:
@@ -788,6 +797,9 @@ def main(argv=None) -> int:
         return 1
     except KeyboardInterrupt:
         print("kinfold: interrupted; decisions made so far are saved", file=sys.stderr)
+        return 130
+    except GraphInterrupted as exc:      # Ctrl+C while the graph was built (app/graph_progress.py)
+        print(f"kinfold: {exc}", file=sys.stderr)
         return 130
     except Exception as exc:
         if os.environ.get(DEBUG_ENV):
