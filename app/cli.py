@@ -41,21 +41,25 @@ class _Bar:
         self.t0 = time.monotonic()
         self.last = 0.0
         self.message = None
+        self.done0 = 0
 
     def __call__(self, done: int, total: int, message: str) -> None:
         if not self.enabled:
             return
         now = time.monotonic()
-        if message != self.message:
-            self.t0, self.message = now, message
+        phase = message.split(" ", 1)[0]       # "embedded 12 of 80 photos": one step, its words change
+        if phase != self.message:
+            self.t0, self.message, self.done0 = now, phase, done
         if now - self.last < 0.1 and done < total:
             return
         self.last = now
         frac = done / total if total else 1.0
-        rate = done / max(now - self.t0, 1e-6)
-        left = (total - done) / rate if rate > 0 else 0
+        # The rate from this step's start, once there is something to measure (a step's first report
+        # may come after a whole block of work, so no rate is shown before half a second).
+        rate = (done - self.done0) / max(now - self.t0, 1e-6) if now - self.t0 >= 0.5 else 0.0
+        speed = f"{rate:6.1f}/s  {(total - done) / rate:5.0f} s left " if rate > 0 else " " * 22
         bar = "#" * int(30 * frac)
-        sys.stderr.write(f"\r{message:<16} [{bar:<30}] {done}/{total}  {rate:6.1f}/s  {left:5.0f} s left ")
+        sys.stderr.write(f"\r{message:<16} [{bar:<30}] {done}/{total}  {speed}")
         if done >= total:
             sys.stderr.write("\n")
         sys.stderr.flush()
