@@ -1225,7 +1225,9 @@ class MainWindow(QMainWindow):
         self.find_groups.hide()
         self.find_groups.clicked.connect(self.find_groups_again)
         lay = self.group_page.layout()
-        lay.insertWidget(lay.indexOf(self.group_page.empty) + 1, self.find_groups, 0, Qt.AlignmentFlag.AlignHCenter)
+        # Shown only with the empty text, which then sits at the bottom of its half, the button at the top of its own.
+        lay.insertWidget(lay.indexOf(self.group_page.empty) + 1, self.find_groups, 1,
+                         Qt.AlignmentFlag.AlignHCenter | Qt.AlignmentFlag.AlignTop)
         for signal in (self.group_page.grid.escaped, self.group_page.label.escaped):
             signal.connect(self._escape_build)
 
@@ -1245,12 +1247,14 @@ class MainWindow(QMainWindow):
             if view.curve is not None:
                 self.curve = view.curve
             self._apply(view)
-        self.group_page.say(stopped.line(), problem=True)
+        self.group_page.say("Stopped finding neighbours.", problem=True)
         self._sync_actions()
 
     def _show_graph_missing(self, missing: bool) -> None:
         """The group page's state while there is no graph: what happened and the button to go on."""
         self.find_groups.setVisible(missing)
+        self.group_page.empty.setAlignment(Qt.AlignmentFlag.AlignHCenter | Qt.AlignmentFlag.AlignBottom if missing
+                                           else Qt.AlignmentFlag.AlignCenter)
         if not missing:
             return
         self.group_page.header.setText("No groups yet")
