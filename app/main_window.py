@@ -1218,12 +1218,13 @@ class MainWindow(QMainWindow):
         """A "Find groups" button for the group page's stopped state; Esc on the group page stops a
         build shown in its progress bar (the scan page's Esc already clicks its Cancel)."""
         self.graph_stop: graph_progress.Stopped | None = None   # the last build stopped, until one ends
-        self.find_groups = QPushButton("Find groups")
+        self.find_groups = _FindGroupsButton("Find groups")
         self.find_groups.setObjectName("primary")
         self.find_groups.setToolTip("Find the nearest photos of every photo and form the groups "
                                     "(shows its progress; Cancel or Esc stops it)")
         self.find_groups.hide()
         self.find_groups.clicked.connect(self.find_groups_again)
+        self.find_groups.escaped.connect(self._escape_build)
         lay = self.group_page.layout()
         # Shown only with the empty text, which then sits at the bottom of its half, the button at the top of its own.
         lay.insertWidget(lay.indexOf(self.group_page.empty) + 1, self.find_groups, 1,
@@ -1249,6 +1250,7 @@ class MainWindow(QMainWindow):
             self._apply(view)
         self.group_page.say("Stopped finding neighbours.", problem=True)
         self._sync_actions()
+        self.find_groups.setFocus()      # the keyboard has a place: Return or Space goes on, Esc stops again
 
     def _show_graph_missing(self, missing: bool) -> None:
         """The group page's state while there is no graph: what happened and the button to go on."""
@@ -1270,6 +1272,8 @@ class MainWindow(QMainWindow):
             return False
         self.stack.setCurrentWidget(self.work)
         self.group_page.busy.show()
+        if not self.group_page.grid.isVisible():
+            self.find_groups.setFocus()  # Esc there stops the build (the grid, hidden now, would take it else)
         self.group_page.say("Finding neighbours first…")
         self._propose_in_background(self.group_page.busy, "Groups formed.", then=retry)
         return True
@@ -1279,3 +1283,14 @@ class MainWindow(QMainWindow):
             return
         if not self._graph_first(None):
             self.refresh()
+
+
+class _FindGroupsButton(QPushButton):
+    """The "Find groups" button; Esc on it (it has the keyboard while there are no groups) stops a build."""
+    escaped = Signal()
+
+    def keyPressEvent(self, event):
+        if event.key() == Qt.Key.Key_Escape:
+            self.escaped.emit()
+            return
+        super().keyPressEvent(event)

@@ -21,6 +21,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from PySide6.QtCore import QSettings, Qt, QTimer
+from PySide6.QtWidgets import QApplication
 
 from app import jobs
 from app.main_window import MainWindow
@@ -132,6 +133,7 @@ def test_build_shown_cancelled_then_found_again(qtbot, window, folder, slow_buil
     assert w.group_page.header.text() == "No groups yet"
     assert "stopped at" in w.group_page.empty.text() and "Every photo is labelled" not in w.group_page.empty.text()
     assert w.status.photos == N and w.project.status().photos == N
+    assert QApplication.focusWidget() is w.find_groups     # Return or Space goes on from here
 
     # Usable meanwhile: a decision made outside the group page shows in the status, with no build.
     paths = w.project.photos()
@@ -145,12 +147,13 @@ def test_build_shown_cancelled_then_found_again(qtbot, window, folder, slow_buil
     qtbot.mouseClick(w.find_groups, Qt.MouseButton.LeftButton)
     busy = w.group_page.busy
     qtbot.waitUntil(lambda: busy.isVisible() and _counts(busy.text.text()) is not None, timeout=60_000)
-    qtbot.keyClick(w.group_page.grid, Qt.Key.Key_Escape)
+    assert QApplication.focusWidget() is w.find_groups     # the keyboard is on the page, where Esc stops it
+    qtbot.keyClick(QApplication.focusWidget(), Qt.Key.Key_Escape)
     qtbot.waitUntil(lambda: w.job is None, timeout=30_000)
     assert not w.project.graph_ready() and w.find_groups.isVisible() and not busy.isVisible()
 
     # Review needs the graph: Ctrl+R builds it first (progress in the group page), then opens the review.
-    qtbot.keyClick(w.group_page.grid, Qt.Key.Key_R, Qt.KeyboardModifier.ControlModifier)
+    qtbot.keyClick(QApplication.focusWidget(), Qt.Key.Key_R, Qt.KeyboardModifier.ControlModifier)
     qtbot.waitUntil(lambda: _counts(busy.text.text()) is not None, timeout=60_000)
     qtbot.waitUntil(lambda: w.stack.currentWidget() is w.review_page and w.idle(), timeout=120_000)
     assert w.project.graph_ready() and len(_graph_files(folder)) == 1
