@@ -15,6 +15,8 @@ import os
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")  # before any Qt import
 
 import shutil
+import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -176,4 +178,27 @@ def test_closing_the_folder_mid_build_cancels_and_waits(qtbot, window, folder, s
     # The folder's lock is free: it opens again at once, and a build from there is whole.
     with Project.open(folder, annotator="t") as p:
         p.prepare_graph()
+    assert len(_graph_files(folder)) == 1
+
+
+@pytest.mark.skipif(not (shutil.which("xvfb-run") and shutil.which("xdotool")), reason="needs Xvfb and xdotool")
+def test_real_keys_under_an_x_server(folder, tmp_path):
+    """The same flow with real key presses (xdotool) in a real window: Esc reaches the build's cancel
+    on the scan page and, with no groups on screen, on the group page too (the "Find groups" button
+    holds the keyboard there)."""
+    with Project.open(folder, annotator="t") as p:       # labels, so review has something to open
+        paths = p.photos()
+        p.label(paths[:5], "shirt")
+        p.label(paths[5:9], "shoe")
+    run = subprocess.run(["xvfb-run", "-a", "-s", "-screen 0 1400x900x24", sys.executable, "-m",
+                          "tests.graph_xvfb_drive", str(folder), str(tmp_path / "settings.ini")],
+                         cwd=Path(__file__).resolve().parent.parent, capture_output=True, text=True, timeout=600,
+                         env=dict(os.environ, QT_QPA_PLATFORM="xcb",
+                                  PYTHONPATH=str(Path(__file__).resolve().parent.parent)))
+    assert run.returncode == 0, run.stderr[-2000:]
+    assert "Traceback" not in run.stderr, run.stderr[-2000:]
+    steps = {line.split()[0]: line.split()[1:] for line in run.stdout.splitlines() if line.strip()}
+    assert list(steps) == ["shown", "stopped", "building", "stopped-again", "review"], run.stdout
+    for step, facts in steps.items():
+        assert facts and all(f == "True" for f in facts), (step, facts)
     assert len(_graph_files(folder)) == 1
