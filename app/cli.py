@@ -19,6 +19,7 @@ import sys
 import threading
 import time
 
+from app.graph_progress import GraphInterrupted, prepare_on_terminal
 from core.export import WHY_LINKS, ExportError, folder_export_mode
 from core.project import STORE_DIR, FolderInUse, Project, ProjectError
 from core.store import StoreError
@@ -40,21 +41,25 @@ class _Bar:
         self.t0 = time.monotonic()
         self.last = 0.0
         self.message = None
+        self.done0 = 0
 
     def __call__(self, done: int, total: int, message: str) -> None:
         if not self.enabled:
             return
         now = time.monotonic()
-        if message != self.message:
-            self.t0, self.message = now, message
+        phase = message.split(" ", 1)[0]       # "embedded 12 of 80 photos": one step, its words change
+        if phase != self.message:
+            self.t0, self.message, self.done0 = now, phase, done
         if now - self.last < 0.1 and done < total:
             return
         self.last = now
         frac = done / total if total else 1.0
-        rate = done / max(now - self.t0, 1e-6)
-        left = (total - done) / rate if rate > 0 else 0
+        # The rate from this step's start, once there is something to measure (a step's first report
+        # may come after a whole block of work, so no rate is shown before half a second).
+        rate = (done - self.done0) / max(now - self.t0, 1e-6) if now - self.t0 >= 0.5 else 0.0
+        speed = f"{rate:6.1f}/s  {(total - done) / rate:5.0f} s left " if rate > 0 else " " * 22
         bar = "#" * int(30 * frac)
-        sys.stderr.write(f"\r{message:<16} [{bar:<30}] {done}/{total}  {rate:6.1f}/s  {left:5.0f} s left ")
+        sys.stderr.write(f"\r{message:<16} [{bar:<30}] {done}/{total}  {speed}")
         if done >= total:
             sys.stderr.write("\n")
         sys.stderr.flush()
@@ -188,6 +193,7 @@ def cmd_scan(args):
 
 def cmd_propose(args):
     with _open(args) as p:
+        prepare_on_terminal(p, args.json)
         groups = p.propose(limit=args.limit)
         if args.json:
             _print([dict(dataclasses.asdict(g), splittable=g.splittable) for g in groups], True)
@@ -222,6 +228,8 @@ def _report_status(st, as_json: bool) -> None:
 
 def cmd_split(args):
     with _open(args) as p:
+        p.group(args.group)                  # an unknown group: its one line before any wait
+        prepare_on_terminal(p, args.json)
         parts = p.split(args.group)
     if args.json:
         _print([dataclasses.asdict(g) for g in parts], True)
@@ -278,6 +286,7 @@ def cmd_browse(args):
 
 def cmd_mistakes(args):
     with _open(args, lock=False) as p:   # only reads: works while the window has the folder open
+        prepare_on_terminal(p, args.json)
         found = p.likely_mistakes(limit=args.limit)
     if args.json:
         _print([dataclasses.asdict(m) for m in found], True)
@@ -304,6 +313,7 @@ def cmd_status(args):
 
 def cmd_export(args):
     with _open(args) as p:
+        prepare_on_terminal(p, args.json)
         written = p.export(csv=args.csv, coco=args.coco, folders=args.folders, split=args.split,
                            mode=args.mode, overwrite=args.overwrite)
         out = {}
@@ -396,6 +406,9 @@ def cmd_restore(args):
 
 def cmd_review(args):
     with _open(args, lock=False) as p:     # only reads
+        if args.label not in p.label_arrays()[2]:     # its one line before any wait for the graph
+            raise ProjectError(f"no photo carries the label {args.label!r}")
+        prepare_on_terminal(p, args.json)
         found = p.review(args.label)
     shown = found[: args.limit]
     if args.json:
@@ -788,6 +801,9 @@ def main(argv=None) -> int:
         return 1
     except KeyboardInterrupt:
         print("kinfold: interrupted; decisions made so far are saved", file=sys.stderr)
+        return 130
+    except GraphInterrupted as exc:      # Ctrl+C while the graph was built (app/graph_progress.py)
+        print(f"kinfold: {exc}", file=sys.stderr)
         return 130
     except Exception as exc:
         if os.environ.get(DEBUG_ENV):

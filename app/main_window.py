@@ -24,10 +24,10 @@ from typing import Any, Callable
 
 from PySide6.QtCore import QEvent, QItemSelectionModel, QKeyCombination, QSettings, Qt, QTimer, Signal
 from PySide6.QtGui import QAction, QKeyEvent, QKeySequence
-from PySide6.QtWidgets import (QApplication, QFileDialog, QFrame, QMainWindow, QMessageBox, QSplitter,
-                               QStackedWidget, QVBoxLayout, QListWidgetItem, QWidget)
+from PySide6.QtWidgets import (QApplication, QFileDialog, QFrame, QMainWindow, QMessageBox, QPushButton,
+                               QSplitter, QStackedWidget, QVBoxLayout, QListWidgetItem, QWidget)
 
-from app import jobs, theme
+from app import graph_progress, jobs, theme
 from app.export_dialog import ExportDialog
 from app.help_overlay import GRID_KEYS, HelpOverlay
 from app.history import Curve
@@ -88,6 +88,7 @@ class View:
     status: Any = None
     review: tuple[str, tuple[list, list]] | None = None   # (label, (paths, notes)), least typical first
     curve: Curve | None = None                    # only when the log was replayed (a folder opened)
+    graph_missing: bool = False                   # no neighbour graph (its build was stopped): no groups
 
 
 def engine_view(project: Project, call: Callable | None = None, review_label: str | None = None,
@@ -99,7 +100,10 @@ def engine_view(project: Project, call: Callable | None = None, review_label: st
             view.result = call(project)
         except _ENGINE_ERRORS as exc:
             view.error = str(exc)
-    view.groups = project.propose(limit=LOOKAHEAD, hold=1)  # the current group keeps its number; the next-up list is a peek
+    # The current group keeps its number; the next-up list is a peek. Without the graph (its build was
+    # stopped) no groups are formed here: the window builds it with progress (app/graph_progress.py).
+    view.graph_missing = not project.graph_ready()
+    view.groups = [] if view.graph_missing else project.propose(limit=LOOKAHEAD, hold=1)
     view.status = project.status()
     if review_label is not None:
         label = review_label if review_label in view.status.by_label else next(iter(view.status.by_label), None)
@@ -202,6 +206,7 @@ class MainWindow(QMainWindow):
         self.mistakes_page.fix_requested.connect(self.fix_mistake)
         self.mistakes_page.back.connect(self.back_to_groups)
         self._wire_browse()
+        self._wire_graph()
         self.stack.currentChanged.connect(lambda _: self._sync_actions())
         for lst in (self.side.labels, self.review_page.labels):   # right-click a label: Rename…
             lst.setContextMenuPolicy(Qt.ContextMenuPolicy.CustomContextMenu)
@@ -453,16 +458,24 @@ class MainWindow(QMainWindow):
         self.scan_page.title.setText("Finding groups")
         self._propose_in_background(self.scan_page.progress, note, replay=True)
 
-    def _propose_in_background(self, progress_widget, note: str, replay: bool = False) -> None:
-        """The first proposals after a scan or a relearn build the neighbour graph; `note` is shown once
-        they are on screen. `replay`: read the decision log once for the chart (a folder just opened)."""
+    def _propose_in_background(self, progress_widget, note: str, replay: bool = False,
+                               then: Callable[[], None] | None = None) -> None:
+        """The first proposals after a scan or a relearn build the neighbour graph, with its progress
+        and a cancel (app/graph_progress.py); `note` is shown once they are on screen, then `then()`
+        runs. `replay`: read the decision log once for the chart (a folder just opened). A cancel
+        leaves the folder open with no groups (`_graph_stopped`)."""
         project = self.project
 
         def work(progress, cancel):
-            progress(0, 1, "finding neighbours and forming groups")
-            return engine_view(project, replay=replay)
+            return graph_progress.prepare_then(project, progress, cancel, lambda: engine_view(project, replay=replay),
+                                               lambda: engine_view(project, replay=replay))
 
         def done(view):
+            progress_widget.unit = unit
+            if isinstance(view, graph_progress.Stopped):
+                self._graph_stopped(view)
+                return
+            self.graph_stop = None
             # What is loaded by now (the engine's modules and caches, Qt's, torch's) lives as long as
             # the folder: moved out of the cyclic collector's reach, so its full passes (150-650 ms
             # holding the interpreter lock, measured by benchmarks.window_stall --profile) do not
@@ -474,8 +487,12 @@ class MainWindow(QMainWindow):
                 self.curve = view.curve
             self._apply(view)
             self.group_page.say(note)
+            if then is not None:
+                then()
 
-        self._start_job("finding groups", work, progress_widget, done, cancellable=False)
+        unit, progress_widget.unit = progress_widget.unit, "photos"
+        self._start_job("finding groups", work, progress_widget, done).failed.connect(
+            lambda _: setattr(progress_widget, "unit", unit))
 
     # -- decisions: one at a time on the engine thread; the GUI thread applies the result -------
     def _busy(self, where=None) -> bool:
@@ -625,6 +642,7 @@ class MainWindow(QMainWindow):
         """Show a view: the current group and what follows, the figures, the review page's photos."""
         self.status = view.status
         self._show_groups(view.groups, focus_grid)
+        self._show_graph_missing(view.graph_missing)
         if view.review is not None:
             self._fill_review(*view.review)
         elif self.stack.currentWidget() is self.review_page and not view.status.by_label:
@@ -816,7 +834,7 @@ class MainWindow(QMainWindow):
         grid = {self.review_page: self.review_page.grid, self.browse_page: self.browse_page.grid}.get(
             page, self.group_page.grid)
         path = path or grid.current_path()
-        if not path:
+        if not path or self._graph_first(lambda: self.preview(path)):
             return
         project = self.project
 
@@ -842,6 +860,8 @@ class MainWindow(QMainWindow):
             return
         if not (self.status and self.status.by_label):
             self.group_page.say("No labels yet: accept a group first.", problem=True)
+            return
+        if self._graph_first(lambda: self.open_review(label)):
             return
         self.stack.setCurrentWidget(self.review_page)
         self._fill_review(label or self._side_label() or next(iter(self.status.by_label)), None)
@@ -927,6 +947,8 @@ class MainWindow(QMainWindow):
         if not (self.status and len(self.status.by_label) >= 2):
             self.group_page.say("Finding mistakes needs photos of at least two labels.", problem=True)
             return
+        if self._graph_first(self.open_mistakes):
+            return
         self.stack.setCurrentWidget(self.mistakes_page)
         self.mistakes_page.fix.set_names(list(self.status.by_label))
         self._load_mistakes()
@@ -998,7 +1020,7 @@ class MainWindow(QMainWindow):
         dlg.open()
 
     def export(self) -> None:
-        if self.project is None or self._busy():
+        if self.project is None or self._busy() or self._graph_first(self.export):
             return
         dlg = ExportDialog(self.project, self)
         dlg.setStyleSheet(theme.STYLE)
@@ -1190,3 +1212,85 @@ class MainWindow(QMainWindow):
         if path in m.paths:
             m.toggle(m.paths.index(path))
         return path in m.out
+
+    # --- graphprog: the neighbour graph's build shown and cancellable (app/graph_progress.py) ---
+    def _wire_graph(self) -> None:
+        """A "Find groups" button for the group page's stopped state; Esc on the group page stops a
+        build shown in its progress bar (the scan page's Esc already clicks its Cancel)."""
+        self.graph_stop: graph_progress.Stopped | None = None   # the last build stopped, until one ends
+        self.find_groups = _FindGroupsButton("Find groups")
+        self.find_groups.setObjectName("primary")
+        self.find_groups.setToolTip("Find the nearest photos of every photo and form the groups "
+                                    "(shows its progress; Cancel or Esc stops it)")
+        self.find_groups.hide()
+        self.find_groups.clicked.connect(self.find_groups_again)
+        self.find_groups.escaped.connect(self._escape_build)
+        lay = self.group_page.layout()
+        # Shown only with the empty text, which then sits at the bottom of its half, the button at the top of its own.
+        lay.insertWidget(lay.indexOf(self.group_page.empty) + 1, self.find_groups, 1,
+                         Qt.AlignmentFlag.AlignHCenter | Qt.AlignmentFlag.AlignTop)
+        for signal in (self.group_page.grid.escaped, self.group_page.label.escaped):
+            signal.connect(self._escape_build)
+
+    def _escape_build(self) -> None:
+        job = self.job
+        if job is not None and job.name == "finding groups" and self.group_page.busy.isVisible():
+            self.group_page.busy.cancel_button.click()
+
+    def _graph_stopped(self, stopped: "graph_progress.Stopped") -> None:
+        """A build was cancelled: the folder stays open (browse, import, statistics work), with no groups
+        until "Find groups" or an action that needs the graph builds it again."""
+        self.graph_stop = stopped
+        self.group_page.busy.hide()
+        self.stack.setCurrentWidget(self.work)
+        view = stopped.view
+        if view is not None:
+            if view.curve is not None:
+                self.curve = view.curve
+            self._apply(view)
+        self.group_page.say("Stopped finding neighbours.", problem=True)
+        self._sync_actions()
+        self.find_groups.setFocus()      # the keyboard has a place: Return or Space goes on, Esc stops again
+
+    def _show_graph_missing(self, missing: bool) -> None:
+        """The group page's state while there is no graph: what happened and the button to go on."""
+        self.find_groups.setVisible(missing)
+        self.group_page.empty.setAlignment(Qt.AlignmentFlag.AlignHCenter | Qt.AlignmentFlag.AlignBottom if missing
+                                           else Qt.AlignmentFlag.AlignCenter)
+        if not missing:
+            return
+        self.group_page.header.setText("No groups yet")
+        self.group_page.empty.setText(
+            (self.graph_stop.line() if self.graph_stop is not None else "The groups have not been formed yet.")
+            + " Browsing, importing labels and the statistics work meanwhile. Find groups goes on; reviewing, "
+              "finding mistakes, the preview and exporting find the neighbours first too.")
+
+    def _graph_first(self, retry: Callable[[], None] | None) -> bool:
+        """When the neighbour graph is not built (its build was stopped), build it now, shown in the
+        group page's progress bar with its Cancel, then call `retry`. True when it started that."""
+        if self.project is None or self.job is not None or self.project.graph_ready():
+            return False
+        self.stack.setCurrentWidget(self.work)
+        self.group_page.busy.show()
+        if not self.group_page.grid.isVisible():
+            self.find_groups.setFocus()  # Esc there stops the build (the grid, hidden now, would take it else)
+        self.group_page.say("Finding neighbours first…")
+        self._propose_in_background(self.group_page.busy, "Groups formed.", then=retry)
+        return True
+
+    def find_groups_again(self) -> None:
+        if self.project is None or self._busy():
+            return
+        if not self._graph_first(None):
+            self.refresh()
+
+
+class _FindGroupsButton(QPushButton):
+    """The "Find groups" button; Esc on it (it has the keyboard while there are no groups) stops a build."""
+    escaped = Signal()
+
+    def keyPressEvent(self, event):
+        if event.key() == Qt.Key.Key_Escape:
+            self.escaped.emit()
+            return
+        super().keyPressEvent(event)

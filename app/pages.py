@@ -290,9 +290,12 @@ class ScanProgress(JobProgress):
             step = self.GROUPS
         if step > self.step:
             self._enter(step)
+        elif step == self.GROUPS and message.split(":")[0] != self._last[2].split(":")[0]:
+            self._step_done0 = None     # the graph's next phase (dividing, then finding neighbours)
         self._last = (done, total, message)
-        if step == self.GROUPS:
-            self.bar.setRange(0, 0)  # one call into the engine: no count to show
+        if step == self.GROUPS and total <= 0:
+            self.bar.setRange(0, 0)  # forming the groups: one call into the engine, no count to show
+            self.text.setText(f"{message}…" if message else " ")
             return
         now = time.monotonic()
         if self._step_done0 is None:
@@ -300,7 +303,8 @@ class ScanProgress(JobProgress):
         self.bar.setRange(0, max(total, 1))
         self.bar.setValue(min(done, max(total, 1)))
         what = "files read" if step == self.READ else "photos embedded"
-        parts = [f"{done} of {total} {what}"]
+        # Finding neighbours (app/graph_progress.py) comes with its own words and counts.
+        parts = [message if step == self.GROUPS else f"{done} of {total} {what}"]
         rate = (done - self._step_done0) / max(now - self._step_t0, 1e-6)
         if rate > 0 and now - self._step_t0 > 0.5:
             parts.append(f"{rate:.1f} {'files' if step == self.READ else 'photos'}/s")

@@ -205,6 +205,7 @@ def render(out: Path, source: Path) -> list[Path]:
         exp.reject()
 
         _import_shot(app, w, folder, accepted, name_of, out, written)
+        _graph_shot(app, w, folder, out, written)   # --- graphprog: 14-graph-progress ---
         w.close()
     finally:
         os.chdir(saved_cwd)
@@ -242,6 +243,51 @@ def _import_shot(app, w, folder: Path, accepted: list[str], name_of, out: Path, 
     _save(imp, out / "9-import.png")
     written.append(out / "9-import.png")
     imp.reject()
+
+
+def _graph_shot(app, w, folder: Path, out: Path, written: list) -> None:
+    """14-graph-progress.png: above, the scan page while the neighbour graph is built (step 3 with its
+    count and Cancel); below, the group page once that build was cancelled (no groups, "Find groups").
+    The folder is opened again without its graph cache. So that the picture catches the build midway,
+    it runs in blocks of 8 photos with a 50 ms pause each; the counts shown are the build's own."""
+    from PySide6.QtCore import Qt
+    from PySide6.QtGui import QImage, QPainter
+    from PySide6.QtTest import QTest
+
+    from core import neighbours
+
+    w.close_folder()
+    for cache in (folder / ".kinfold").glob("graph-*.npz"):
+        cache.unlink()
+    block, run_blocks = neighbours._BLOCK, neighbours._run_blocks
+
+    def paced(work, *a, **kw):
+        return run_blocks(lambda item: (time.sleep(0.05), work(item))[1], *a, **kw)
+
+    neighbours._BLOCK, neighbours._run_blocks = 8, paced
+    try:
+        w.open_folder(str(folder))
+        w.statusBar().clearMessage()
+        progress = w.scan_page.progress
+        _wait(app, lambda: progress.text.text().startswith("Finding neighbours") and progress.bar.value() > 0, 300)
+        top = w.grab().toImage()
+        QTest.keyClick(w.scan_page, Qt.Key.Key_Escape)       # Esc on the scan page: Cancel
+        _wait(app, lambda: w.job is None, 60)
+        w.statusBar().clearMessage()
+        _settle(app, 0.8)
+        bottom = w.grab().toImage()
+    finally:
+        neighbours._BLOCK, neighbours._run_blocks = block, run_blocks
+    sheet = QImage(top.width(), top.height() + bottom.height() + 6, QImage.Format.Format_RGB888)
+    sheet.fill(Qt.GlobalColor.gray)
+    painter = QPainter(sheet)
+    painter.drawImage(0, 0, top)
+    painter.drawImage(0, top.height() + 6, bottom)
+    painter.end()
+    path = out / "14-graph-progress.png"
+    sheet.save(str(path), "PNG", 0)
+    print(f"wrote {path} ({path.stat().st_size // 1024} KB)")
+    written.append(path)
 
 
 def main(argv=None) -> int:

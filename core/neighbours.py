@@ -54,11 +54,14 @@ SEED = 0
 _BLOCK = 1024
 WORKERS = max(1, min(2, os.cpu_count() or 1))   # threads scoring blocks (each one BLAS thread)
 BURST_NEIGHBOURS = 8
-# Everything above that changes a graph; a cache key must include it (see `settings_key`).
-APPROXIMATION = dict(exact_limit=EXACT_LIMIT, pca_dim=PCA_DIM, list_factor=LIST_FACTOR, probes=PROBES,
-                     tail_sample=TAIL_SAMPLE, uniform_share=UNIFORM_SHARE, pca_train=PCA_TRAIN,
-                     kmeans_train_per_list=KMEANS_TRAIN_PER_LIST, kmeans_iter=KMEANS_ITER, seed=SEED,
-                     burst_neighbours=BURST_NEIGHBOURS, format=3)
+# Everything above that changes a graph; a cache key must include it (see `settings_key`). Read when
+# called, not at import: a caller (a test, a benchmark) that changes one of them changes the key too.
+_SETTING_NAMES = dict(exact_limit="EXACT_LIMIT", pca_dim="PCA_DIM", list_factor="LIST_FACTOR", probes="PROBES",
+                      tail_sample="TAIL_SAMPLE", uniform_share="UNIFORM_SHARE", pca_train="PCA_TRAIN",
+                      kmeans_train_per_list="KMEANS_TRAIN_PER_LIST", kmeans_iter="KMEANS_ITER", seed="SEED",
+                      burst_neighbours="BURST_NEIGHBOURS")
+FORMAT = 3
+APPROXIMATION = {**{k: globals()[v] for k, v in _SETTING_NAMES.items()}, "format": FORMAT}   # at import (kept for readers)
 
 Progress = Callable[[int, int, str], None]
 Cancel = Callable[[], bool]
@@ -69,8 +72,8 @@ class Cancelled(Exception):
 
 
 def settings_key() -> dict:
-    """The module's settings that change a graph, for cache keys."""
-    return dict(APPROXIMATION)
+    """The module's settings that change a graph, for cache keys: their values now."""
+    return {**{k: globals()[v] for k, v in _SETTING_NAMES.items()}, "format": FORMAT}
 
 
 def prepare(x: np.ndarray) -> np.ndarray:
@@ -235,7 +238,7 @@ def _drop_self(sims: np.ndarray, idx: np.ndarray, k: int, offset: int = 0) -> tu
     return np.ascontiguousarray(out_s, np.float32), np.ascontiguousarray(out_i, np.int64)
 
 
-def _run_blocks(block: Callable[[int], int], items, total: int, progress, cancel, message: str = "neighbours") -> None:
+def _run_blocks(block: Callable[[int], int], items, total: int, progress, cancel, message: str = "finding neighbours") -> None:
     """Run block(item) for every item on WORKERS threads, each with one BLAS thread (on shared
     cores, one BLAS team per worker spins far less than a multi-threaded BLAS: 6.5 times faster
     measured with other jobs on the 2 cores); progress after each round, cancel checked before each."""
@@ -357,9 +360,11 @@ def make_lists(src: Source, n_lists: int | None = None, *, cancel: Cancel | None
     return Lists(assign, order, starts, means.astype(np.float32))
 
 
-def _approximate(src: Source, k: int, temperature: float, progress, cancel, *, probes: int = PROBES,
-                 tail_sample: int = TAIL_SAMPLE, want_entropy: bool = True, lists: Lists | None = None):
+def _approximate(src: Source, k: int, temperature: float, progress, cancel, *, probes: int | None = None,
+                 tail_sample: int | None = None, want_entropy: bool = True, lists: Lists | None = None):
     n = src.n
+    probes = PROBES if probes is None else probes
+    tail_sample = TAIL_SAMPLE if tail_sample is None else tail_sample
     lists = lists or make_lists(src, cancel=cancel, progress=progress)
     L = len(lists.starts) - 1
     sizes = lists.sizes
@@ -417,12 +422,13 @@ def _approximate(src: Source, k: int, temperature: float, progress, cancel, *, p
     return sims, idx, ent.astype(np.float32)
 
 
-def search(src: Source, k: int, temperature: float = 0.1, *, exact_limit: int = EXACT_LIMIT,
+def search(src: Source, k: int, temperature: float = 0.1, *, exact_limit: int | None = None,
            want_entropy: bool = True, progress: Progress | None = None, cancel: Cancel | None = None,
            **approx) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(sims, idx, entropy) for every photo of `src`: the k nearest other photos (most similar first,
     padded with -inf / -1) and the neighbourhood entropy; exact up to `exact_limit` photos."""
     n = src.n
+    exact_limit = EXACT_LIMIT if exact_limit is None else exact_limit   # (module settings read when called)
     if n < 2:
         return (np.full((n, k), -np.inf, np.float32), np.full((n, k), -1, np.int64), np.zeros(n, np.float32))
     if n <= exact_limit:
@@ -430,7 +436,7 @@ def search(src: Source, k: int, temperature: float = 0.1, *, exact_limit: int = 
     return _approximate(src, k, temperature, progress, cancel, want_entropy=want_entropy, **approx)
 
 
-def knn(x: np.ndarray, k: int, *, exact_limit: int = EXACT_LIMIT) -> tuple[np.ndarray, np.ndarray]:
+def knn(x: np.ndarray, k: int, *, exact_limit: int | None = None) -> tuple[np.ndarray, np.ndarray]:
     """The k nearest other photos of every photo by cosine similarity (rows of x L2-normalised).
 
     Returns (similarities, indices), each (n, k), most similar first, self excluded. Rows with fewer
@@ -441,14 +447,15 @@ def knn(x: np.ndarray, k: int, *, exact_limit: int = EXACT_LIMIT) -> tuple[np.nd
     return sims, idx
 
 
-def neighbourhood_entropy(x: np.ndarray, temperature: float = 0.1, *, exact_limit: int = EXACT_LIMIT,
-                          knn_result=None, tail_sample: int = TAIL_SAMPLE, seed: int = 0) -> np.ndarray:
+def neighbourhood_entropy(x: np.ndarray, temperature: float = 0.1, *, exact_limit: int | None = None,
+                          knn_result=None, tail_sample: int | None = None, seed: int = 0) -> np.ndarray:
     """Entropy of each photo's softmax similarity distribution over all other photos (self left out),
     rows of x L2-normalised. Exact up to `exact_limit` photos, approximated above (module docstring).
     `knn_result` and `seed` are accepted for older callers and not needed."""
     src = Source(np.asarray(x, np.float32), centre=False)
     k = 64 if knn_result is None else knn_result[0].shape[1]
     k = max(1, min(k, src.n - 1))
+    exact_limit = EXACT_LIMIT if exact_limit is None else exact_limit
     approx = dict(tail_sample=tail_sample) if src.n > exact_limit else {}
     return search(src, k, temperature, exact_limit=exact_limit, **approx)[2]
 
@@ -532,7 +539,7 @@ class Graph:
 
 def build_graph(features: np.ndarray, *, k: int = 64, temperature: float = 0.1,
                 burst_threshold: float = 0.97, centre: bool = True, progress: Progress | None = None,
-                cancel: Cancel | None = None, exact_limit: int = EXACT_LIMIT) -> Graph:
+                cancel: Cancel | None = None, exact_limit: int | None = None) -> Graph:
     """The neighbour graph of `features` (an array or a memory map; not copied whole). Progress is
     reported after each block; `cancel()` returning True stops it with `Cancelled`."""
     src = Source(features, centre=centre)

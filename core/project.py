@@ -719,6 +719,13 @@ class Project:
             retry.update((path, reason) for path in paths_of[fp])
         return run.embedded, run.cancelled or run.lost is not None, run.lost
 
+    # --- graphprog: whether the neighbour graph is ready (front ends build it with progress first) ---
+    def graph_ready(self) -> bool:
+        """True when the graph of the active geometry is in memory, so the verbs that need it (propose,
+        review, mistakes, split, export) will not build it. Takes no lock (a build holds it): a cheap
+        look for a front end deciding whether to run `prepare_graph` with progress and cancel first."""
+        return self._graph is not None and self._graph_version == self.store.active_relearn_version()
+
 
     # --- reopen: the catalogue read when first needed, status counted by SQLite (core/quick_status.py) ---
     @property
