@@ -122,12 +122,19 @@ def views_of(load_images, names: list[str]) -> dict[str, np.ndarray]:
 
 def variants(v: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
     """The feature variants compared (each from views only: no true backdrop)."""
+    stats = v["border stats"]
     return {
         "baseline (full photo, centre square)": v["full"],
         "centre crop 70%": v["centre 70%"],
         "mean of full + centre 70%": ov.mean_of(v["full"], v["centre 70%"]),
         "mean of full + centre 70% + 50%": ov.mean_of(v["full"], v["centre 70%"], v["centre 50%"]),
         "backdrop clusters (k=8) mean removed": ov.remove_backdrop_clusters(v["full"], v["border"], 8),
+        "backdrop clusters (k=4) mean removed": ov.remove_backdrop_clusters(v["full"], v["border"], 4),
+        "backdrop clusters (k=16) mean removed": ov.remove_backdrop_clusters(v["full"], v["border"], 16),
+        "border-pixel clusters (k=8) mean removed":
+            ov.remove_backdrop_clusters(v["full"], None, assign=ov.stats_clusters(stats, 8)),
+        "border-pixel clusters (k=16) mean removed":
+            ov.remove_backdrop_clusters(v["full"], None, assign=ov.stats_clusters(stats, 16)),
         "backdrop directions (r=8) projected out": ov.project_out(v["full"], v["border"], 8),
         "mean full + centre 70%, backdrop clusters removed":
             ov.remove_backdrop_clusters(ov.mean_of(v["full"], v["centre 70%"]), v["border"], 8),
@@ -219,6 +226,12 @@ def run(name: str) -> dict:
         v = views_of(images, need)
         WORK.mkdir(parents=True, exist_ok=True)
         np.savez(cache, **v)
+    stats_cache = WORK / f"backdrop-stats-{name}.npy"
+    if not stats_cache.is_file():
+        t0 = time.perf_counter()
+        np.save(stats_cache, np.array([ov.border_stats(im) for im in images()]))
+        print(f"  border pixel statistics: {time.perf_counter() - t0:.1f} s")
+    v["border stats"] = np.load(stats_cache)
     if backdrops:
         print(f"  backdrops: {dict(Counter(backdrops))}; chance agreement class {chance(classes):.3f}, "
               f"backdrop {chance(backdrops):.3f}")

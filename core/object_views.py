@@ -60,10 +60,37 @@ def backdrop_clusters(backdrop: np.ndarray, k: int, seed: int = 0) -> np.ndarray
     return km.index.search(x, 1)[1][:, 0]
 
 
-def remove_backdrop_clusters(features: np.ndarray, backdrop: np.ndarray, k: int = 8, seed: int = 0) -> np.ndarray:
+def border_stats(img: Image.Image, keep: float = 0.6) -> np.ndarray:
+    """A cheap backdrop descriptor from pixels alone (no network): mean and spread of each RGB channel
+    in the ring outside the central `keep` box, and the ring's mean horizontal and vertical gradient."""
+    a = np.asarray(img.convert("RGB"), np.float32)
+    h, w = a.shape[:2]
+    y0, y1 = round(h * (1 - keep) / 2), round(h * (1 + keep) / 2)
+    x0, x1 = round(w * (1 - keep) / 2), round(w * (1 + keep) / 2)
+    mask = np.ones((h, w), bool)
+    mask[y0:y1, x0:x1] = False
+    ring = a[mask]
+    g = a.mean(2)
+    gx, gy = np.abs(np.diff(g, axis=1)), np.abs(np.diff(g, axis=0))
+    return np.r_[ring.mean(0), ring.std(0), gx[mask[:, 1:]].mean(), gy[mask[1:, :]].mean()].astype(np.float32)
+
+
+def stats_clusters(stats: np.ndarray, k: int, seed: int = 0) -> np.ndarray:
+    """A cluster id per photo from border_stats rows (k-means on the standardised figures)."""
+    from sklearn.cluster import KMeans
+
+    z = (stats - stats.mean(0)) / np.maximum(stats.std(0), 1e-6)
+    k = max(1, min(k, len(z) // 4))
+    return KMeans(k, n_init=4, random_state=seed).fit_predict(z)
+
+
+def remove_backdrop_clusters(features: np.ndarray, backdrop: np.ndarray, k: int = 8, seed: int = 0,
+                             assign: np.ndarray | None = None) -> np.ndarray:
     """Each photo's feature minus the mean feature of the photos whose backdrop views cluster with its
-    own (the overall mean added back, so only the backdrop's share moves), L2-normalised."""
-    assign = backdrop_clusters(backdrop, k, seed)
+    own (the overall mean added back, so only the backdrop's share moves), L2-normalised. `assign`:
+    cluster ids already made (e.g. stats_clusters), else from `backdrop` features."""
+    if assign is None:
+        assign = backdrop_clusters(backdrop, k, seed)
     x = features.astype(np.float64)
     out = x - x.mean(0)
     for c in np.unique(assign):
