@@ -266,6 +266,8 @@ def main(argv=None) -> int:
     ap.add_argument("--no-split", action="store_true")
     ap.add_argument("--order", choices=["engine", "calibrated"], default=None,
                     help="group order (core.proposals.Settings.order; default: the engine's default)")
+    ap.add_argument("--backdrop", type=int, default=None, metavar="K",
+                    help="switch on the backdrop correction with K backdrop groups (Project.backdrop_correction)")
     args = ap.parse_args(argv)
 
     print("command:", "python -m benchmarks.yield_sim " + " ".join(argv if argv is not None else sys.argv[1:]))
@@ -281,6 +283,13 @@ def main(argv=None) -> int:
         scan_s = time.perf_counter() - t0
         print(f"scan: {rep.photos} photos, {rep.embedded} embedded now, {len(rep.skipped)} skipped, {scan_s:.1f} s")
         _reset_decisions(p)
+        if args.backdrop:
+            t0 = time.perf_counter()
+            info = p.backdrop_correction(args.backdrop)
+            print(f"backdrop correction: {args.backdrop} groups of {info['sizes']} photos, "
+                  f"{time.perf_counter() - t0:.1f} s")
+        else:
+            p.backdrop_correction(None)
         settings = None
         if args.order:
             from core.proposals import Settings
