@@ -100,3 +100,32 @@ def test_demo_neighbours_follow_the_object_not_the_backdrop(demo_folder):
     print(f"class {c0:.3f} -> {c1:.3f}, backdrop {b0:.3f} -> {b1:.3f}")
     assert c1 >= c0 + 0.04
     assert b1 <= b0 - 0.15
+
+
+def test_cli_switches_it_on_and_off(photo_project_folder):
+    """`kinfold backdrop` as a user runs it (a subprocess): on, a bad value refused in one line, off."""
+    import json
+    import subprocess
+    import sys
+
+    from tests.conftest import ROOT
+
+    def kinfold(*args):
+        return subprocess.run([sys.executable, "-m", "app.cli", *map(str, args)], cwd=ROOT,
+                              capture_output=True, text=True, timeout=600)
+
+    r = kinfold("backdrop", photo_project_folder, "--groups", "3")
+    assert r.returncode == 0, r.stderr
+    assert "backdrop correction on:" in r.stdout and "3 backdrop groups" in r.stdout
+    with Project.open(photo_project_folder, annotator="tester") as p:
+        assert p.store.get_setting("backdrop_correction")["clusters"] == 3
+    bad = kinfold("backdrop", photo_project_folder, "--groups", "1")
+    assert bad.returncode != 0 and "Traceback" not in bad.stderr and "between 2 and 1000" in bad.stderr
+    r = kinfold("backdrop", photo_project_folder, "--groups", "500")
+    lines = r.stderr.splitlines()
+    assert r.returncode == 1 and len(lines) == 1 and "too few for 500 backdrop groups" in lines[0]
+    r = kinfold("backdrop", photo_project_folder, "--off", "--json")
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout) == {"on": False}
+    with Project.open(photo_project_folder, annotator="tester") as p:
+        assert p.store.get_setting("backdrop_correction") is None
