@@ -728,8 +728,8 @@ def build_parser() -> argparse.ArgumentParser:
                                        "over the photos; helps photos shot on a few backdrops, hurts "
                                        "photos that fill the frame)")
     on_off = s.add_mutually_exclusive_group()
-    on_off.add_argument("--groups", type=_whole(2, 1000, "--groups"), default=8,
-                        help="backdrop groups to look for (default 8)")
+    on_off.add_argument("--groups", type=_whole(2, 1000, "--groups"), default=4,
+                        help="backdrop groups to look for (default 4)")
     on_off.add_argument("--off", action="store_true", help="switch the correction off again")
     s = sub.add_parser("open", help="open the desktop window", description="open the desktop window")
     s.add_argument("folder", nargs="?", help="the photo folder to open (default: choose in the window)")

@@ -171,6 +171,20 @@ def random_group_purity(sizes: list[int], labels: list[str], reps: int = 20, see
                           for _ in range(reps)]))
 
 
+def intruders_on_backdrop(rows: list[list[int]], classes: list[str], backdrops: list[str]) -> tuple[int, float]:
+    """Members of another class than their group's majority (intruders), and the share of them lying on
+    the backdrop most of the majority's members lie on."""
+    n = same = 0
+    for r in rows:
+        m = Counter(classes[i] for i in r).most_common(1)[0][0]
+        bg = Counter(backdrops[i] for i in r if classes[i] == m).most_common(1)[0][0]
+        for i in r:
+            if classes[i] != m:
+                n += 1
+                same += backdrops[i] == bg
+    return n, same / max(n, 1)
+
+
 def measure(x: np.ndarray, classes: list[str], backdrops: list[str] | None, limit: int = 50) -> dict:
     out = dict(knn_class=knn_purity(x, classes))
     if backdrops:
@@ -186,6 +200,7 @@ def measure(x: np.ndarray, classes: list[str], backdrops: list[str] | None, limi
         if backdrops:
             out["group_backdrop"] = group_purity([[backdrops[i] for i in r] for r in rows])
             out["group_backdrop_random"] = random_group_purity(sizes, backdrops)
+            out["intruders"], out["intruders_same_backdrop"] = intruders_on_backdrop(rows, classes, backdrops)
     with opened(x, classes) as (project, truth, _):
         s = simulate(project, truth).summary()
     out["yield80"], out["yield100"] = s["yield80"], s["yield100"]
@@ -268,6 +283,12 @@ def print_table(name: str, res: dict) -> None:
     if has_bg:
         print(f"  first 50 groups drawn at random with the baseline's sizes: class {base['group_class_random']:.3f}, "
               f"backdrop {base['group_backdrop_random']:.3f}")
+        print(f"  photos of another class in those groups (baseline): {base['intruders']}, of which "
+              f"{base['intruders_same_backdrop']:.2f} lie on the backdrop of the group's majority "
+              f"(chance {res['chance_backdrop']:.3f})")
+        for k, m in r.items():
+            if "intruders" in m:
+                print(f"    {k:<52} intruders {m['intruders']:>3}, on the majority's backdrop {m['intruders_same_backdrop']:.2f}")
 
 
 def main(argv=None) -> int:

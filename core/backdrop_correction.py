@@ -7,7 +7,8 @@ objects. The correction estimates each photo's backdrop from the photo alone and
 1. each photo's **border view** (core.object_views.border_view: the central 60 % of each side painted
    over with the border's median colour) is embedded by the project's own extractor (one more
    backbone pass per photo, like a scan's);
-2. the border views are grouped by spherical k-means (`clusters`, default 8);
+2. the border views are grouped by spherical k-means (`clusters`, default 4: on the demo 4 and 8 gave
+   the same yield@80, 4 the higher yield@100, and 4 lost least on Fashion-MNIST; 16 was worse on both);
 3. from every photo's feature the mean feature of its backdrop group is subtracted (the overall mean
    added back), so what photos on one backdrop share no longer pulls them together.
 
@@ -17,7 +18,10 @@ Nothing about the true backdrop is used. The assignment is stored in the project
 `Project.backdrop_correction(None)`. Photos scanned after it was computed form one more group of
 their own until it is computed again.
 
-Measured by `python -m benchmarks.backdrop` (README, trust section).
+Measured by `python -m benchmarks.backdrop` (README, trust section): on the demo folder (five drawer
+liners) yield@80 4.20 -> 5.65 and yield@100 2.97 -> 5.48; on Fashion-MNIST (no backdrop: the border
+view then sees the garment's outline) yield@80 3.66 -> 3.31. So it is opt-in, for photos shot on a few
+backdrops, never the default.
 """
 from __future__ import annotations
 
@@ -28,7 +32,7 @@ import numpy as np
 from core import object_views
 
 SETTING = "backdrop_correction"
-DEFAULT_CLUSTERS = 8
+DEFAULT_CLUSTERS = 4
 BATCH = 32
 
 Progress = Callable[[int, int, str], None]

@@ -710,7 +710,7 @@ class Project:
 
     # --- order19: backdrop correction, opt-in (core/backdrop_correction.py) ---
     @_serialised
-    def backdrop_correction(self, clusters: int | None = 8, progress: Progress | None = None,
+    def backdrop_correction(self, clusters: int | None = 4, progress: Progress | None = None,
                             cancel: Cancel | None = None) -> dict:
         """Switch the backdrop correction on (embed each photo's border view, group the views into
         `clusters` backdrops, remove each group's mean from the features proposals use) or off
