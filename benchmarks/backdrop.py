@@ -256,10 +256,31 @@ def run(name: str) -> dict:
         results[vname] = measure(x, classes, backdrops)
         print(f"  {vname}: {json.dumps({k: round(v, 3) if isinstance(v, float) else v for k, v in results[vname].items()})}"
               f" ({time.perf_counter() - t0:.1f} s)", flush=True)
+    results_check = label_check_figures(v["full"], ov.remove_backdrop_clusters(v["full"], v["border"], 4), classes)
     km = kmeans_baseline(v["full"], classes).summary()
     results["k-means groups, random order (baseline features)"] = dict(yield80=km["yield80"], yield100=km["yield100"])
-    return dict(results=results, chance_class=chance(classes),
+    return dict(results=results, label_check=results_check, chance_class=chance(classes),
                 chance_backdrop=chance(backdrops) if backdrops else None)
+
+
+def label_check_figures(x: np.ndarray, corrected: np.ndarray, classes: list[str],
+                        stages=(10, 15, 30)) -> list[dict]:
+    """What the annotator's own labels say (core.backdrop_correction.label_check) after `stages`
+    accepted groups of the yield protocol's annotator on the baseline features."""
+    from benchmarks.yield_sim import majority
+    from core.backdrop_correction import label_check
+
+    out = []
+    for stage in stages:
+        with opened(x, classes) as (project, truth, _):
+            for _ in range(stage):
+                g = project.propose(limit=3, hold=1)[0]
+                cls = [truth[m] for m in g.members]
+                m = majority(cls)
+                project.accept(g.id, m, drop=[q for q, c in zip(g.members, cls) if c != m])
+            chk = label_check(x, corrected, project.label_arrays()[1])
+        out.append(dict(groups=stage, **(chk or {})))
+    return out
 
 
 def print_table(name: str, res: dict) -> None:
@@ -280,6 +301,10 @@ def print_table(name: str, res: dict) -> None:
         line += f" {m['yield80']:>8.3f} {m['yield100']:>9.3f}"
         print(line)
     base = r["baseline (full photo, centre square)"]
+    for c in res["label_check"]:
+        print(f"  after {c['groups']} accepted groups, the labels' check of the correction (k=4): "
+              + (f"{c['labelled']} labelled, agreement {c['before']:.3f} -> {c['after']:.3f}, {c['verdict']}"
+                 if "labelled" in c else "too few labels"))
     if has_bg:
         print(f"  first 50 groups drawn at random with the baseline's sizes: class {base['group_class_random']:.3f}, "
               f"backdrop {base['group_backdrop_random']:.3f}")

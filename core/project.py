@@ -218,11 +218,15 @@ class Project:
     def features(self) -> np.ndarray:
         """The embedding proposals work in: the backbone's, or the relearned one when active."""
         version = self._geometry_version()
+        return self._backdrop_corrected(self._base_features(version), version)
+
+    def _base_features(self, version=None) -> np.ndarray:
+        """features() before the opt-in backdrop correction (core/backdrop_correction.py)."""
         if version is None:
-            return self._backdrop_corrected(self._features, version)
+            return self._features
         from core import relearning
 
-        return self._backdrop_corrected(relearning.apply(self.store.relearn_state(version), self._features), version)
+        return relearning.apply(self.store.relearn_state(version), self._features)
 
     @_serialised
     def label_classifier(self, names: list[str]) -> np.ndarray | None:

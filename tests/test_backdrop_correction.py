@@ -47,6 +47,26 @@ def test_cluster_means_removed_make_photos_of_one_backdrop_no_closer():
     assert np.allclose(np.linalg.norm(y, axis=1), 1, atol=1e-5)
 
 
+def test_the_labels_check_says_whether_it_helps():
+    """label_check: labels that follow the objects say the correction helps, labels that follow the
+    backdrops say it hurts; too few labels say nothing."""
+    from core.backdrop_correction import label_check
+
+    rng = np.random.default_rng(1)
+    n, d = 96, 32                     # 8 objects x 2 backdrops, 6 photos each: fewer than the 10 nearest
+    obj, bg = np.arange(n) % 8, (np.arange(n) // 8) % 2
+    x = 3.0 * np.eye(d)[bg] + 1.0 * np.eye(d)[2 + obj] + 0.1 * rng.standard_normal((n, d))
+    y = object_views.remove_backdrop_clusters(x, None, assign=bg)
+    c = label_check(x, y, obj)
+    assert c["verdict"] == "helps" and c["labelled"] == n and c["after"] > c["before"] + 0.3
+    assert label_check(x, y, bg)["verdict"] == "hurts"
+    few = np.full(n, -1)
+    few[:40] = obj[:40]
+    assert label_check(x, y, few) is None
+    one = np.where(np.arange(n) < 60, 0, -1)
+    assert label_check(x, y, one) is None
+
+
 def test_bad_input_and_cancel_change_nothing(photo_project_folder):
     with Project.open(photo_project_folder, annotator="tester") as p:
         before = p.features().copy()
@@ -93,8 +113,13 @@ def test_demo_neighbours_follow_the_object_not_the_backdrop(demo_folder):
         cls = [truth[p.photos()[i]] for i in keep]
         bg = [backdrop[p.photos()[i]] for i in keep]
         before = np.array(p.features())[keep]
-        p.backdrop_correction(8)
+        # 150 photos labelled with their true class: the labels' own check should see the gain.
+        for c in sorted(set(cls)):
+            p.label([p.photos()[i] for i, k in zip(keep, cls) if k == c][:15], c)
+        out = p.backdrop_correction(8)
         after = np.array(p.features())[keep]
+    print(out["check"])
+    assert out["check"]["labelled"] >= 150 and out["check"]["verdict"] == "helps"
     c0, c1 = knn_purity(before, cls), knn_purity(after, cls)
     b0, b1 = knn_purity(before, bg), knn_purity(after, bg)
     print(f"class {c0:.3f} -> {c1:.3f}, backdrop {b0:.3f} -> {b1:.3f}")
