@@ -526,6 +526,32 @@ def _quoted(text: str) -> str:
     return shlex.quote(text)
 
 
+def cmd_backdrop(args):
+    """Switch the opt-in backdrop correction on or off (core/backdrop_correction.py)."""
+    bar = _Bar(not args.json)
+    with _InterruptToCancel() as interrupt, _open(args) as p:
+        info = p.backdrop_correction(None if args.off else args.groups, progress=bar, cancel=interrupt.asked.is_set)
+    if info.get("cancelled"):
+        print(("\n" if bar.enabled else "") + "kinfold: interrupted; nothing changed", file=sys.stderr)
+        return 130
+    if args.json:
+        _print(dict(info, on=not args.off), True)
+    elif args.off:
+        print("backdrop correction off: proposals use the photos' features as they are")
+    else:
+        unread = f"; {info['unreadable']} photos could not be read" if info["unreadable"] else ""
+        print(f"backdrop correction on: {info['photos']} photos in {info['clusters']} backdrop groups "
+              f"({', '.join(map(str, info['sizes']))} photos){unread}; new groups are formed without what "
+              f"each backdrop group shares")
+        check = info.get("check")
+        if check:
+            print(f"your {check['labelled']} labelled photos: their nearest labelled photos carry the same label "
+                  f"{check['before']:.3f} of the time without it, {check['after']:.3f} with it: "
+                  + {"helps": "it helps this collection",
+                     "hurts": "it hurts this collection; 'kinfold backdrop FOLDER --off' switches it off",
+                     "no clear difference": "no clear difference yet"}[check["verdict"]])
+
+
 def cmd_open(args):
     # The engine never imports the window: the window replaces this process (same pid, so whoever
     # started `kinfold open` can still stop it), and Qt loads only there.
@@ -716,6 +742,15 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("new", help="the new name (an existing label: merge)")
     s.add_argument("--yes", action="store_true", help="keep the new name even when it is close to an existing "
                                                       "label (case, spacing or a prefix)")
+    # --- order19: backdrop ---
+    s = verb("backdrop", cmd_backdrop, "group photos by what they show, not what they lie on: estimate each photo's "
+                                       "backdrop from its edges and take it out of the comparison (one more pass "
+                                       "over the photos; helps photos shot on a few backdrops, hurts "
+                                       "photos that fill the frame)")
+    on_off = s.add_mutually_exclusive_group()
+    on_off.add_argument("--groups", type=_whole(2, 1000, "--groups"), default=4,
+                        help="backdrop groups to look for (default 4)")
+    on_off.add_argument("--off", action="store_true", help="switch the correction off again")
     s = sub.add_parser("open", help="open the desktop window", description="open the desktop window")
     s.add_argument("folder", nargs="?", help="the photo folder to open (default: choose in the window)")
     s.set_defaults(func=cmd_open)

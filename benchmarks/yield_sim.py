@@ -76,7 +76,7 @@ class Run:
         return out
 
 
-def geometry_figures(project: Project, truth: dict[str, str], top: int = 100) -> dict:
+def geometry_figures(project: Project, truth: dict[str, str], top: int = 100, settings=None) -> dict:
     """10-neighbour purity of the whole collection in the space proposals use (share of each photo's
     10 nearest other photos of its true class), and the purity of the top `top` proposed groups
     (share of their members in their group's majority class) with their mean size."""
@@ -89,7 +89,7 @@ def geometry_figures(project: Project, truth: dict[str, str], top: int = 100) ->
     # Over the photos still unlabelled: the relearned head was trained on the others' labels.
     free = project.label_arrays()[0] == FREE
     purity_free = float(hit[free].sum() / max(ok[free].sum(), 1)) if free.any() else float("nan")
-    groups = project.propose(limit=top, hold=0)
+    groups = project.propose(limit=top, hold=0, settings=settings)
     sizes = [len(gr.members) for gr in groups]
     kept = sum(Counter(truth[m] for m in gr.members).most_common(1)[0][1] for gr in groups)
     return dict(labelled=project.status().labelled, purity10=round(purity, 4),
@@ -107,7 +107,8 @@ def majority(classes: list[str]) -> str:
 
 def simulate(project: Project, truth: dict[str, str], *, sitting: int = 100, relearn: bool = False,
              allow_split: bool = True, name: str = "kinfold", relearn_seconds: float | None = None,
-             max_actions: int | None = None) -> Run:
+             max_actions: int | None = None, settings=None) -> Run:
+    """The yield protocol's annotator on `project`; `settings`: core.proposals.Settings for propose."""
     photos = [p for p in project.photos() if p in truth]
     run = Run(name, len(photos))
     used: set[str] = set(project.status().by_label)
@@ -116,7 +117,7 @@ def simulate(project: Project, truth: dict[str, str], *, sitting: int = 100, rel
     next_relearn = sitting
     while labelled < len(photos):
         t0 = time.perf_counter()
-        groups = project.propose(limit=3, hold=1)
+        groups = project.propose(limit=3, hold=1, settings=settings)
         run.propose_seconds.append(time.perf_counter() - t0)
         if not groups:
             break
@@ -143,12 +144,12 @@ def simulate(project: Project, truth: dict[str, str], *, sitting: int = 100, rel
         run.record(actions, labelled)
         if actions >= next_relearn:
             # The end of a sitting: geometry figures before and (with relearning) after the relearn.
-            row = dict(actions=actions, before=geometry_figures(project, truth))
+            row = dict(actions=actions, before=geometry_figures(project, truth, settings=settings))
             if relearn:
                 t0 = time.perf_counter()
                 project.relearn(seconds=relearn_seconds)
                 run.relearn_seconds.append(time.perf_counter() - t0)
-                row["after"] = geometry_figures(project, truth)
+                row["after"] = geometry_figures(project, truth, settings=settings)
             run.sittings.append(row)
             next_relearn = actions + sitting
         if max_actions and actions >= max_actions:
@@ -263,6 +264,10 @@ def main(argv=None) -> int:
     ap.add_argument("--relearn", action="store_true", help="also run with relearning every sitting")
     ap.add_argument("--sitting", type=int, default=100)
     ap.add_argument("--no-split", action="store_true")
+    ap.add_argument("--order", choices=["engine", "calibrated"], default=None,
+                    help="group order (core.proposals.Settings.order; default: the engine's default)")
+    ap.add_argument("--backdrop", type=int, default=None, metavar="K",
+                    help="switch on the backdrop correction with K backdrop groups (Project.backdrop_correction)")
     args = ap.parse_args(argv)
 
     print("command:", "python -m benchmarks.yield_sim " + " ".join(argv if argv is not None else sys.argv[1:]))
@@ -278,7 +283,20 @@ def main(argv=None) -> int:
         scan_s = time.perf_counter() - t0
         print(f"scan: {rep.photos} photos, {rep.embedded} embedded now, {len(rep.skipped)} skipped, {scan_s:.1f} s")
         _reset_decisions(p)
-        run = simulate(p, truth, sitting=args.sitting, relearn=relearn, allow_split=not args.no_split, name=name)
+        if args.backdrop:
+            t0 = time.perf_counter()
+            info = p.backdrop_correction(args.backdrop)
+            print(f"backdrop correction: {args.backdrop} groups of {info['sizes']} photos, "
+                  f"{time.perf_counter() - t0:.1f} s")
+        else:
+            p.backdrop_correction(None)
+        settings = None
+        if args.order:
+            from core.proposals import Settings
+
+            settings = Settings(order=args.order)
+        run = simulate(p, truth, sitting=args.sitting, relearn=relearn, allow_split=not args.no_split, name=name,
+                       settings=settings)
         runs.append(run)
         feats, paths = p._features, p.photos()
         p.close()

@@ -223,6 +223,10 @@ class Project:
     def features(self) -> np.ndarray:
         """The embedding proposals work in: the backbone's, or the relearned one when active."""
         version = self._geometry_version()
+        return self._backdrop_corrected(self._base_features(version), version)
+
+    def _base_features(self, version=None) -> np.ndarray:
+        """features() before the opt-in backdrop correction (core/backdrop_correction.py)."""
         if version is None:
             return self._features
         from core import relearning
@@ -760,6 +764,47 @@ class Project:
                       actions=self.store.decision_count(actions_only=True),
                       skipped=self.store.skipped_count(),
                       relearned_version=self.store.active_relearn_version())
+
+    # --- order19: backdrop correction, opt-in (core/backdrop_correction.py) ---
+    @_serialised
+    def backdrop_correction(self, clusters: int | None = 4, progress: Progress | None = None,
+                            cancel: Cancel | None = None) -> dict:
+        """Switch the backdrop correction on (embed each photo's border view, group the views into
+        `clusters` backdrops, remove each group's mean from the features proposals use) or off
+        (clusters=None). Returns {photos, clusters, sizes, unreadable} ({} when switched off,
+        {"cancelled": True} when cancelled: nothing changed)."""
+        from core import backdrop_correction
+
+        if clusters is None:
+            self.store.set_setting(backdrop_correction.SETTING, None)
+            out = {}
+        else:
+            try:
+                out = backdrop_correction.compute(self, clusters, progress, cancel)
+            except backdrop_correction.Cancelled:
+                return dict(cancelled=True)
+            except (ValueError, TypeError) as exc:
+                raise ProjectError(str(exc)) from None
+        # Proposals work in another space now: groups formed in the old one are formed again.
+        self._graph = None
+        self.__dict__.pop("_calibration_cache", None)
+        stale = [row.id for row in self.store.open_proposals() if not row.pinned]
+        if stale:
+            self.store.update_open_proposals(stale, [])
+        return out
+
+    def _backdrop_corrected(self, feats: np.ndarray, version) -> np.ndarray:
+        from core import backdrop_correction
+
+        assign = backdrop_correction.assignment(self)
+        if assign is None:
+            return feats
+        key = (version, len(self._rows), assign.tobytes())
+        cache = self.__dict__.get("_backdrop_cache")
+        if cache is None or cache[0] != key:
+            cache = (key, backdrop_correction.apply(feats, assign))
+            self._backdrop_cache = cache
+        return cache[1]
 
 
 def _check_extractor(obj) -> None:

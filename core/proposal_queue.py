@@ -15,7 +15,7 @@ import contextlib
 
 import numpy as np
 
-from core import proposals
+from core import calibrated_order, proposals
 from core.group import Group
 
 # Groups are formed this many at a time (each batch ranked on its own), so the first groups do not
@@ -63,12 +63,15 @@ def propose(project, limit: int = 20, settings: proposals.Settings | None = None
 
     fresh: list[dict] = []           # groups formed now, stored below; negative ids until then
     deferred = project.label_state.deferred
-    graph = classifier = None
+    graph = classifier = rescore = None
+    calibrated = calibrated_order.check(s.order) == calibrated_order.CALIBRATED
 
     def batch() -> list[Group]:
-        nonlocal graph, classifier
+        nonlocal graph, classifier, rescore
         if graph is None:
             graph, classifier = project.graph(), project.label_classifier(names)
+            if calibrated:
+                rescore = calibrated_order.rescorer(project.calibration(), graph)
         eligible = ~taken
         if deferred.any():
             rested = eligible & ~deferred
@@ -77,7 +80,7 @@ def propose(project, limit: int = 20, settings: proposals.Settings | None = None
                 eligible = rested
         out = []
         for gr in proposals.form_groups(graph, state, label_of, len(names), BATCH, s, eligible,
-                                        project.label_state.not_label(), classifier, names):
+                                        project.label_state.not_label(), classifier, rescore, names):
             taken[gr.members] = True
             fresh.append(dict(members=[project._rows[i].path for i in gr.members], trust=round(gr.trust, 4),
                               suggested_label=None if gr.suggested_label is None else names[gr.suggested_label],
@@ -92,13 +95,13 @@ def propose(project, limit: int = 20, settings: proposals.Settings | None = None
         order = [i for i in saved["order"] if i in kept]
         queue = [kept[i] for i in order] + [p for i, p in kept.items() if i not in set(order)]
     else:
-        queue = _ranked(list(kept.values()) + batch(), s.explore_every)
+        queue = _ranked(list(kept.values()) + batch(), s.explore_every, project if calibrated else None)
     want = limit - len(pinned)
     while len(queue) < want:
         more = batch()
         if not more:
             break
-        queue += _ranked(more, s.explore_every)
+        queue += _ranked(more, s.explore_every, project if calibrated else None)
 
     with project.store.transaction() if (close or fresh) else _nothing():
         ids = project.store.update_open_proposals(close, fresh) if (close or fresh) else []
@@ -120,15 +123,22 @@ def _nothing():
     yield
 
 
-def _ranked(groups: list[Group], every: int) -> list[Group]:
+def _ranked(groups: list[Group], every: int, project=None) -> list[Group]:
     """Open groups in the order of expected photos per action (proposals.order), from the figures
-    stored with each, ties in the order they were made."""
+    stored with each, ties in the order they were made. With `project` (Settings.order "calibrated"):
+    from the project's calibrated trust instead (core/calibrated_order.py)."""
+    if project is not None and groups:
+        yields = calibrated_order.ranked_yields(
+            project.calibration(), project.graph(),
+            [([project._index[m] for m in p.members], p.suggested_label is not None, p.confidence)
+             for p in groups])
     items = []
-    for p in groups:
+    for k, p in enumerate(groups):
         conf = p.confidence if p.kind == "probable label" and p.confidence is not None else p.trust
         g = proposals.Group(list(range(len(p.members))), p.trust, p.kind, 0 if p.suggested_label else None,
                             p.confidence)
-        g.extra["expected_yield"] = proposals.expected_yield(g, np.full(len(p.members), conf))
+        g.extra["expected_yield"] = (float(yields[k]) if project is not None
+                                     else proposals.expected_yield(g, np.full(len(p.members), conf)))
         g.extra["proposal"] = p
         items.append(g)
     return [g.extra["proposal"] for g in proposals.order(items, every)]

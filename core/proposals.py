@@ -53,6 +53,8 @@ class Settings:
     explore_every: int = 3           # a new-area group at least every this many places
     min_shared: int = 2              # new-area member must share this many of its 10 nearest with the anchor
     smoothing: float = 0.5           # weight of the graph neighbours in the classifier's smoothed probabilities
+    order: str = "engine"            # "calibrated": expected photos per action from the calibrated trust
+                                     # (core/calibrated_order.py; measured by benchmarks/calibrated_order.py)
 
 
 @dataclass
@@ -210,13 +212,15 @@ def _fill(candidates, graph: Graph, available: np.ndarray, cap: int) -> list[int
 def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: int, limit: int,
                 settings: Settings | None = None, eligible: np.ndarray | None = None,
                 not_label: np.ndarray | None = None, classifier: np.ndarray | None = None,
-                names: list[str] | None = None) -> list[Group]:
+                rescore=None, names: list[str] | None = None) -> list[Group]:
     """Up to `limit` groups of eligible unlabelled photos, most trustworthy first.
 
     state: FREE / LABELLED / SET_ASIDE per photo; label_of: label index per labelled photo (else -1);
     eligible: photos that may be proposed (default: all FREE ones); not_label: (n, n_labels) True
     where the annotator said a photo is not that label (it was taken out of that label's group);
-    classifier: (n, n_labels) label probabilities from the relearned classifier (see with_classifier).
+    classifier: (n, n_labels) label probabilities from the relearned classifier (see with_classifier);
+    rescore: None, or a function that sets the candidates' extra["expected_yield"] anew before they are
+    ranked (core.calibrated_order.rescorer: from the calibrated trust);
     names: the labels' names, which lets the kept propagation follow a new label (incremental_propagation).
     """
     s = settings or Settings()
@@ -260,6 +264,8 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
                 cand = cand[trial[cand]]
                 made += 1
             trial[taken_here] = True            # back as `available` for the next label
+        if rescore is not None:
+            rescore(probable)
         probable.sort(key=_rank)
         probable = probable[:limit]
         # Burst-mates of one label's candidates can be another label's; keep the groups disjoint.
@@ -307,6 +313,8 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
         g.extra["expected_yield"] = expected_yield(g, np.full(len(members), trust))
         explore.append(g)
 
+    if rescore is not None:
+        rescore(explore)
     return _order(probable, explore, limit, s.explore_every)
 
 
