@@ -49,8 +49,8 @@ class Variant:
     def __getattr__(self, name):
         return getattr(self.project, name)
 
-    def propose(self, limit: int = 20, hold: int | None = None):
-        return self.project.propose(limit=limit, settings=self.propose_settings, hold=hold)
+    def propose(self, limit: int = 20, hold: int | None = None, settings=None):
+        return self.project.propose(limit=limit, settings=settings or self.propose_settings, hold=hold)
 
     def relearn(self, seconds: float | None = None) -> dict:
         return self.project.relearn(seconds=seconds, settings=self.relearn_settings)
