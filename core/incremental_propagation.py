@@ -127,14 +127,21 @@ class PropagationCache:
             return False
         n, a = len(state), settings.alpha
         d = np.zeros((n, len(cols)), np.float32)
-        for j, c in enumerate(cols):                   # one vector at a time: scipy's single-vector product
+
+        def diffuse(j: int) -> None:                   # one vector at a time: scipy's single-vector product
             v = np.zeros(n, np.float32)
-            v[new_place] = dy[:, c]
+            v[new_place] = dy[:, cols[j]]
             seed = (1 - a) * v
             for _ in range(settings.iterations):
                 v = a * (self.step @ v)
                 v += seed
             d[:, j] = v
+
+        if len(cols) > 1 and n >= THREADED_FROM:
+            list(_pool().map(diffuse, range(len(cols))))
+        else:
+            for j in range(len(cols)):
+                diffuse(j)
         rows = np.flatnonzero((d != 0).any(1))         # renumbered rows the difference reached
         self.f[np.ix_(rows, cols)] += d[rows]
         f = self.f[rows]
@@ -144,6 +151,25 @@ class PropagationCache:
         self.key[2][changed] = label_of[changed]
         self.updates += 1
         return True
+
+
+THREADED_FROM = 50_000   # photos from which an update's columns are diffused on parallel threads
+
+
+def _pool():
+    """Threads for an update's columns: scipy's sparse product releases the GIL, so two columns on two
+    threads took 513 ms against 829 ms one after the other (1,000,000 rows, 20 steps, 2 cores, one run
+    of a throwaway script). Each column is the same sequence of operations either way."""
+    global _POOL
+    if _POOL is None:
+        import os
+        from concurrent.futures import ThreadPoolExecutor
+
+        _POOL = ThreadPoolExecutor(max(1, min(4, os.cpu_count() or 1)), thread_name_prefix="propagation")
+    return _POOL
+
+
+_POOL = None
 
 
 def seeds(state: np.ndarray, label_of: np.ndarray, n_labels: int, unknown_prior: float) -> np.ndarray:

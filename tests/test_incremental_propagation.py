@@ -123,3 +123,26 @@ def test_a_new_label_is_an_update_not_a_fresh_product_and_matches_the_plain_diff
         if step > 0 and len(given):
             widened += cache.updates > 0
     assert widened >= 15                                   # new labels too went the update's way
+
+
+def test_an_update_on_threads_is_bit_for_bit_the_update_one_column_after_another(monkeypatch):
+    graph, truth = _graph()
+    s = proposals.Settings()
+    results = []
+    for threaded_from in (10 ** 9, 0):              # never on threads, then always
+        monkeypatch.setattr(incremental_propagation, "THREADED_FROM", threaded_from)
+        cache = incremental_propagation.PropagationCache(proposals._propagation_matrix(graph, s.propagation_k))
+        state = np.zeros(graph.n, np.int8)
+        label_of = np.full(graph.n, -1, np.int64)
+        first = [int(np.flatnonzero(truth == c)[0]) for c in range(10)]
+        state[first], label_of[first] = proposals.LABELLED, truth[first]
+        cache.get(state, label_of, 10, s)
+        out = []
+        for c in range(10):
+            pick = np.flatnonzero((state == proposals.FREE) & (truth == c))[:20]
+            state[pick], label_of[pick] = proposals.LABELLED, c
+            out.append(cache.get(state, label_of, 10, s).copy())
+            assert cache.updates == c + 1               # each decision an update, not a fresh product
+        results.append(out)
+    for a, b in zip(*results):
+        assert np.array_equal(a, b)
