@@ -73,3 +73,16 @@ def demo_folder(scanned_demo, tmp_path):
     dest = tmp_path / "sample_images"
     shutil.copytree(scanned_demo, dest, symlinks=True)
     return dest
+
+
+@pytest.fixture(scope="session")
+def fashion_2000_named():
+    """Fashion-MNIST test, first 2,000 (Debian dataset-fashion-mnist): cached features and class names.
+    The package is a test requirement: missing data is a failure, not a skip."""
+    from benchmarks import fashion
+
+    try:
+        feats, labels = fashion.fashion_features(2000)
+    except FileNotFoundError as exc:
+        pytest.fail(str(exc))
+    return feats, [fashion.CLASS_NAMES[int(c)] for c in labels]

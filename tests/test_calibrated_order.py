@@ -9,16 +9,6 @@ from core import calibrated_order, proposals
 from core.proposals import Settings
 
 
-@pytest.fixture(scope="module")
-def fashion_2000():
-    fashion = pytest.importorskip("benchmarks.fashion")
-    try:
-        feats, labels = fashion.fashion_features(2000)
-    except FileNotFoundError as exc:
-        pytest.fail(str(exc))
-    return feats, [fashion.CLASS_NAMES[int(c)] for c in labels]
-
-
 def test_default_is_the_engine_order_and_bad_names_are_refused():
     assert Settings().order == calibrated_order.ENGINE
     with pytest.raises(ValueError, match="unknown group order 'best'"):
@@ -32,11 +22,11 @@ def test_expected_yield_is_the_engines_formula_with_a_uniform_share():
             proposals.expected_yield(g, np.full(n, t)))
 
 
-def test_form_groups_ranks_by_the_rescored_figure(fashion_2000):
+def test_form_groups_ranks_by_the_rescored_figure(fashion_2000_named):
     """A rescore hook that prefers small groups turns the engine's order around."""
     from core.neighbours import build_graph
 
-    feats, _ = fashion_2000
+    feats, _ = fashion_2000_named
     graph = build_graph(feats[:600])
     state = np.zeros(600, np.int8)
     label_of = np.full(600, -1)
@@ -65,12 +55,12 @@ def _replay(project, truth, settings, steps):
     return seen
 
 
-def test_engine_order_setting_changes_nothing(fashion_2000, tmp_path):
+def test_engine_order_setting_changes_nothing(fashion_2000_named, tmp_path):
     """Settings(order="engine") gives the same groups, in the same order, as no settings (the yield
     curves of the default stay as they were)."""
     from benchmarks.cached_project import build_project
 
-    feats, classes = fashion_2000
+    feats, classes = fashion_2000_named
     runs = []
     for k, settings in enumerate((None, Settings(order="engine"))):
         p, truth = build_project(tmp_path / str(k), feats, classes, annotator="simulated")
@@ -79,13 +69,13 @@ def test_engine_order_setting_changes_nothing(fashion_2000, tmp_path):
     assert runs[0] == runs[1]
 
 
-def test_calibrated_order_ranks_by_calibrated_expected_photos_per_action(fashion_2000, tmp_path):
+def test_calibrated_order_ranks_by_calibrated_expected_photos_per_action(fashion_2000_named, tmp_path):
     """With order "calibrated", each batch the queue ranks comes in falling expected photos per action
     computed from the trust shown (the calibrated expected purity), before and after decisions; and
     the run differs from the engine's order."""
     from benchmarks.cached_project import build_project
 
-    feats, classes = fashion_2000
+    feats, classes = fashion_2000_named
     s = Settings(order="calibrated", explore_every=10 ** 6)
     p, truth = build_project(tmp_path / "c", feats, classes, annotator="simulated")
     with p:

@@ -88,24 +88,14 @@ def test_pool_adjacent_violators_agrees_with_scikit_learn():
     assert (np.diff(fitted) >= 0).all()
 
 
-@pytest.fixture(scope="module")
-def fashion_2000():
-    fashion = pytest.importorskip("benchmarks.fashion")
-    try:
-        feats, labels = fashion.fashion_features(2000)
-    except FileNotFoundError as exc:
-        pytest.fail(str(exc))
-    return feats, [fashion.CLASS_NAMES[int(c)] for c in labels]
-
-
-def test_fashion_mnist_2000_calibration_error(fashion_2000):
+def test_fashion_mnist_2000_calibration_error(fashion_2000_named):
     """The calibration measurement of the yield protocol on Fashion-MNIST test 2,000 (true classes from
     the data set): photo-weighted |trust - purity| over the first 50 groups, cold and after 15 accepted
     groups and a relearn, through a real Project over the cached features (its own propose, accept,
     relearn and calibration). Measured: see README (benchmarks/calibration.py); the bounds leave margin."""
     from benchmarks.calibration import run
 
-    res = run(*fashion_2000)
+    res = run(*fashion_2000_named)
     cold, warm = res["cold"], res["warm"]
     print(f"cold {cold['error']:.3f} (raw {cold['raw_error']:.3f}), warm {warm['error']:.3f} "
           f"(raw {warm['raw_error']:.3f})")
