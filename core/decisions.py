@@ -131,6 +131,9 @@ def undo(project) -> dict | None:
             changes = {fp: (LabelRow(fp, *prev) if prev else None) for fp, prev in before.items()}
             project.store.record_decision("undo", project.annotator, [], changes, undoes=dec_id)
             photos = len(changes)
+            if kind == "rename":            # open groups' suggestions follow the name back
+                from core import label_rename
+                label_rename.follow_undo(project, dec_id)
         if kind in ("accept", "later") and group_id is not None:
             project.store.repin_proposal(group_id)  # the group comes back first, as it was
         elif kind == "split" and group_id is not None:

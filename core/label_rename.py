@@ -75,3 +75,31 @@ def rename_label(project: "Project", old: str, new: str, confirm: bool = False) 
                                                  rejected=rejected)
         db.execute("UPDATE proposals SET suggested_label=? WHERE suggested_label=? AND open=1", (new, old))
     return RenameResult(old, new, len(photos), merged, decision)
+
+
+def follow_undo(project: "Project", decision_id: int) -> None:
+    """An undo of the rename `decision_id` was just recorded (same transaction): open groups suggesting
+    the new name suggest the old one again, if no photo carries the new name any more (a plain rename
+    undone). After an undone merge both names are labels again and the suggestions are left as they are."""
+    row = project.store._one("SELECT label, before FROM decisions WHERE id = ?", (decision_id,))
+    if row is None:
+        return
+    import json
+    new, before = row[0], json.loads(row[1])
+    old = next((r[1] for r in before.values() if r), None)
+    if old is None or new is None or old == new:
+        return
+    still = project.store._one("SELECT 1 FROM labels WHERE state = 'labelled' AND label = ? LIMIT 1", (new,))
+    if still is None:
+        _map_open_suggestions(project, new, old)
+
+
+def follow_redo(project: "Project", old: str, new: str) -> None:
+    """A rename from `old` to `new` was applied again by redo: open groups follow it, as they did the
+    first time."""
+    _map_open_suggestions(project, old, new)
+
+
+def _map_open_suggestions(project: "Project", frm: str, to: str) -> None:
+    with project.store.transaction() as db:
+        db.execute("UPDATE proposals SET suggested_label=? WHERE suggested_label=? AND open=1", (to, frm))

@@ -597,6 +597,9 @@ class Project:
                 # A rename carried the old name's "not this label" marks over to the new name.
                 old = next((row[1] for row in d["before"].values() if row), None)
                 rejected = [fp for fp, names in self.store.rejections().items() if old in names]
+                if old is not None:
+                    from core import label_rename
+                    label_rename.follow_redo(self, old, d["label"])
             dec = self.store.record_decision(kind, self.annotator, d["photos"], changes, label=d["label"],
                                              group_id=gid,
                                              close_proposals=[gid] if kind == "accept" and gid is not None else [],
