@@ -31,6 +31,7 @@ from app import graph_progress, jobs, theme
 from app.export_dialog import ExportDialog
 from app.help_overlay import GRID_KEYS, HelpOverlay
 from app.history import Curve
+from app import backdrop_menu
 from app.jobs import Job
 from app.mistakes_page import KEYS as MISTAKES_KEYS, MistakesPage
 from app.pages import GroupPage, ReviewPage, ScanPage, StartPage, action_button, scan_summary
@@ -186,6 +187,7 @@ class MainWindow(QMainWindow):
         self.setCentralWidget(container)
         self.help = HelpOverlay(container, self._help_sections())
         self._make_menus()
+        backdrop_menu.install(self)          # Folder menu: Correct for backdrops…, … off
 
         self.start.choose_requested.connect(self.choose_folder)
         self.start.open_requested.connect(self.open_folder)
