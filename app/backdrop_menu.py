@@ -76,6 +76,7 @@ def _run(window, name: str, clusters: int | None, start_line: str) -> None:
         return project.backdrop_correction(clusters, progress=report, cancel=cancel)
 
     def done(info):
+        page.busy.unit = unit
         info = info or {}
         if info.get("was_off"):
             page.busy.hide()
@@ -93,7 +94,8 @@ def _run(window, name: str, clusters: int | None, start_line: str) -> None:
         page.say(line + " Forming groups again…")
         window._propose_in_background(page.busy, line)
 
-    window._run(name, work, page.busy, done)
+    unit, page.busy.unit = page.busy.unit, "photos"        # the bar counts photos, as the scan's does
+    window._run(name, work, page.busy, done).failed.connect(lambda _: setattr(page.busy, "unit", unit))
 
 
 def start(window, clusters: int = DEFAULT_CLUSTERS) -> None:

@@ -45,7 +45,7 @@ def test_backdrop_menu_cancel_run_check_and_off(qtbot, tmp_path, demo_folder):
     # Started, then Cancel clicked on the progress bar at once: nothing changed.
     choose(qtbot, w, "Correct for backdrops…")
     qtbot.waitUntil(lambda: w.job is not None, timeout=10_000)
-    assert w.group_page.busy.isVisible()
+    assert w.group_page.busy.isVisible() and w.group_page.busy.unit == "photos"
     QTest.mouseClick(w.group_page.busy.cancel_button, Qt.MouseButton.LeftButton)
     ended(qtbot, w)
     assert w.last_backdrop == "Backdrop correction stopped: nothing changed."
