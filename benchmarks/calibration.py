@@ -13,8 +13,8 @@ of the calibrated one (core.calibration), the same for the suggested label's con
 share of members that carry it, and the reliability table (trust bins x observed photo-weighted purity,
 groups and photos per bin). A reliability plot goes to --out (default out/calibration/reliability.png).
 
-Data sets: Fashion-MNIST test 2,000 (`fashion`, the one the prior is fitted on), Fashion-MNIST train
-first 2,000 (`fashion-train`), scikit-learn's digits rendered as 32 x 32 grey photos (`digits`), and the
+Data sets: Fashion-MNIST test 2,000 (`fashion`, held out), Fashion-MNIST train first 2,000
+(`fashion-train`, the prior is fitted on it and on digits), scikit-learn's digits rendered as 32 x 32 grey photos (`digits`), and the
 demo folder (`demo`, scanned once into a store under ~/.cache/kinfold-bench/calibration/). All use
 EfficientNet-Lite0 ImageNet features, replayed through a real `core.project.Project` built over them
 (benchmarks/cached_project.py): the calibrated figures are what `Project.propose` returns, the raw ones
