@@ -2,7 +2,7 @@
 
     python -m benchmarks.calibration                          # fashion, fashion-train, digits, demo
     python -m benchmarks.calibration --datasets fashion,demo
-    python -m benchmarks.calibration --fit-prior              # refit the prior on Fashion-MNIST test 2,000
+    python -m benchmarks.calibration --fit-prior              # refit the prior on Fashion-MNIST train + digits
 
 For each data set, with the simulated annotator of the yield protocol who knows the true classes:
 * cold: a fresh project, the first 50 groups the engine proposes;
@@ -13,8 +13,8 @@ of the calibrated one (core.calibration), the same for the suggested label's con
 share of members that carry it, and the reliability table (trust bins x observed photo-weighted purity,
 groups and photos per bin). A reliability plot goes to --out (default out/calibration/reliability.png).
 
-Data sets: Fashion-MNIST test 2,000 (`fashion`, the one the prior is fitted on), Fashion-MNIST train
-first 2,000 (`fashion-train`), scikit-learn's digits rendered as 32 x 32 grey photos (`digits`), and the
+Data sets: Fashion-MNIST test 2,000 (`fashion`, held out), Fashion-MNIST train first 2,000
+(`fashion-train`, the prior is fitted on it and on digits), scikit-learn's digits rendered as 32 x 32 grey photos (`digits`), and the
 demo folder (`demo`, scanned once into a store under ~/.cache/kinfold-bench/calibration/). All use
 EfficientNet-Lite0 ImageNet features, replayed through a real `core.project.Project` built over them
 (benchmarks/cached_project.py): the calibrated figures are what `Project.propose` returns, the raw ones
@@ -214,30 +214,36 @@ def plot(results: dict, path: Path) -> None:
     plt.close(fig)
 
 
-def fit_prior(stages=(0, 15, 30, 60), limit: int = 100) -> None:
-    """Fit PRIOR_TRUST / PRIOR_LABEL on Fashion-MNIST test 2,000: the first `limit` groups proposed
-    cold and after each number of accepted groups in `stages` (each followed by a relearn)."""
-    feats, classes = load("fashion")
+def fit_prior(stages=(0, 15), limit: int = 50, datasets=("fashion-train", "digits")) -> None:
+    """Fit PRIOR_TRUST / PRIOR_LABEL on `datasets` (default Fashion-MNIST train 2,000 and scikit-learn
+    digits, so Fashion-MNIST test 2,000 and the demo stay held out): on each, the first `limit` groups
+    proposed cold and after each number of accepted groups in `stages` (each followed by a relearn)."""
     rows = []
-    with opened(feats, classes) as (project, truth, row_of):
-        done = 0
-        for stage in stages:
-            while done < stage:
-                _accept_as_annotator(project, project.propose(limit=1, hold=1)[0], truth)
-                done += 1
-            if stage:
-                project.relearn()
-            graph = project.graph()
-            ranks = calibration.entropy_ranks(graph)
-            for g in project.propose(limit=limit, hold=0):
-                cls = [truth[m] for m in g.members]
-                if len(cls) < 2:
-                    continue
-                raw = project.store.proposal(g.id)       # the prior is fitted on the engine's own figures
-                sug = raw.suggested_label is not None
-                f = calibration.group_features(graph, [row_of[m] for m in g.members], sug, raw.confidence, ranks)
-                share = float(np.mean([c == raw.suggested_label for c in cls])) if sug else None
-                rows.append((f, calibration.purity(cls), share, len(cls)))
+    for name in datasets:
+        feats, classes = load(name)
+        with opened(feats, classes) as (project, truth, row_of):
+            done = 0
+            for stage in stages:
+                while done < stage:
+                    gs = project.propose(limit=1, hold=1)
+                    if not gs:
+                        break
+                    _accept_as_annotator(project, gs[0], truth)
+                    done += 1
+                if stage:
+                    project.relearn()
+                graph = project.graph()
+                ranks = calibration.entropy_ranks(graph)
+                for g in project.propose(limit=limit, hold=0):
+                    cls = [truth[m] for m in g.members]
+                    if len(cls) < 2:
+                        continue
+                    raw = project.store.proposal(g.id)       # the prior is fitted on the engine's own figures
+                    sug = raw.suggested_label is not None
+                    f = calibration.group_features(graph, [row_of[m] for m in g.members], sug, raw.confidence, ranks)
+                    share = float(np.mean([c == raw.suggested_label for c in cls])) if sug else None
+                    rows.append((f, calibration.purity(cls), share, len(cls)))
+        print(f"{name}: {len(rows)} groups so far", flush=True)
     x = np.array([r[0] for r in rows])
     mean, scale = x.mean(0), np.maximum(x.std(0), 1e-3)
     calibration.MEAN[:], calibration.SCALE[:] = [round(float(v), 4) for v in mean], [round(float(v), 4) for v in scale]
@@ -246,7 +252,7 @@ def fit_prior(stages=(0, 15, 30, 60), limit: int = 100) -> None:
     lab = [r for r in rows if r[2] is not None]
     label = calibration.fit_prior(np.array([r[0] for r in lab]), np.array([r[2] for r in lab]),
                                   np.array([r[3] for r in lab], float))
-    print(f"{len(rows)} groups ({len(lab)} with a suggestion); paste into core/calibration.py:")
+    print(f"{len(rows)} groups ({len(lab)} with a suggestion) from {', '.join(datasets)}; paste into core/calibration.py:")
     print(f"PRIOR_TRUST = {trust}")
     print(f"PRIOR_LABEL = {label}")
     print(f"MEAN = {calibration.MEAN}")
@@ -257,14 +263,16 @@ def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--datasets", default=",".join(DATASETS))
     ap.add_argument("--fit-prior", action="store_true")
-    ap.add_argument("--fit-stages", default="0,15,30,60", help="accepted groups before each set of groups fitted on")
-    ap.add_argument("--fit-limit", type=int, default=100, help="groups fitted on at each stage")
+    ap.add_argument("--fit-stages", default="0,15", help="accepted groups before each set of groups fitted on")
+    ap.add_argument("--fit-limit", type=int, default=50, help="groups fitted on at each stage")
+    ap.add_argument("--fit-datasets", default="fashion-train,digits", help="data sets the prior is fitted on")
     ap.add_argument("--out", default=str(ROOT / "out" / "calibration"))
     ap.add_argument("--plot", default=None, help="also write the reliability plot here (e.g. a screenshot path)")
     args = ap.parse_args(argv)
     print("command: python -m benchmarks.calibration " + " ".join(sys.argv[1:] if argv is None else argv))
     if args.fit_prior:
-        fit_prior(tuple(int(v) for v in args.fit_stages.split(",")), args.fit_limit)
+        fit_prior(tuple(int(v) for v in args.fit_stages.split(",")), args.fit_limit,
+                  tuple(args.fit_datasets.split(",")))
         return 0
     results = {}
     for name in args.datasets.split(","):

@@ -65,12 +65,34 @@ def test_isotonic_map_matches_scikit_learn_inside_the_seen_range():
     f = _features(80, rng)
     y = rng.uniform(0.5, 1.0, 80)
     w = rng.integers(2, 30, 80)
-    cal = Calibrator(pseudo=0.0)
+    cal = Calibrator(pseudo=0.0, decay=1.0)
     for row, yi, wi in zip(f, y, w):
         cal.observe(row, yi, wi)
     p = calibration.prior(f, cal.trust_model)
     ref = IsotonicRegression(y_min=0, y_max=1, out_of_bounds="clip").fit(p, y, sample_weight=w).predict(p)
     assert np.allclose(cal.trust(f), ref, atol=1e-9)
+
+
+def test_recent_decisions_weigh_more():
+    """With RECENT_DECAY < 1 an observation's weight shrinks by that factor with each later accepted
+    group: the map equals scikit-learn's IsotonicRegression with those weights (the reference), and after
+    many 1.0-pure groups followed by a few 0.6-pure ones the figure sits nearer 0.6 than without decay."""
+    from sklearn.isotonic import IsotonicRegression
+
+    rng = np.random.default_rng(3)
+    f = _features(40, rng)
+    y = np.r_[np.ones(30), np.full(10, 0.6)]
+    cal = Calibrator(pseudo=0.0, decay=0.7)
+    flat = Calibrator(pseudo=0.0, decay=1.0)
+    for row, yi in zip(f, y):
+        cal.observe(row, yi, 10)
+        flat.observe(row, yi, 10)
+    p = calibration.prior(f, cal.trust_model)
+    w = 10 * 0.7 ** np.arange(40)[::-1]
+    ref = IsotonicRegression(y_min=0, y_max=1, out_of_bounds="clip").fit(p, y, sample_weight=w).predict(p)
+    assert np.allclose(cal.trust(f), ref, atol=1e-9)
+    probe = _features(50, np.random.default_rng(4))
+    assert np.abs(cal.trust(probe) - 0.6).mean() < np.abs(flat.trust(probe) - 0.6).mean()
 
 
 def test_pool_adjacent_violators_agrees_with_scikit_learn():
@@ -105,11 +127,13 @@ def test_fashion_mnist_2000_calibration_error(fashion_2000_named):
     assert cold["bin_gap"] <= BIN_GAP_BOUND and warm["bin_gap"] <= BIN_GAP_BOUND
 
 
-# Measured (benchmarks/calibration.py through a real Project, this machine): cold 0.096, warm 0.136;
-# bin gap 0.037 / 0.091. The per-group goal of 0.05 is not met (README "How honest the trust figure is").
-COLD_BOUND = 0.12
-WARM_BOUND = 0.17
-BIN_GAP_BOUND = 0.12
+# Measured (benchmarks/calibration.py through a real Project, this machine; the prior is fitted on
+# Fashion-MNIST train + digits, so this set is held out): cold 0.086, warm 0.103; bin gap 0.037 / 0.030
+# (before: 0.096 / 0.136, 0.037 / 0.091). The per-group goal of 0.05 is not met (README "How honest the
+# trust figure is").
+COLD_BOUND = 0.11
+WARM_BOUND = 0.13
+BIN_GAP_BOUND = 0.08
 
 
 def test_project_shows_calibrated_figures_and_keeps_the_order(photo_project_folder):
