@@ -29,10 +29,26 @@ class HelpOverlay(QWidget):
         if self.isVisible():
             self.hide()
             return
+        self._before = self.window().focusWidget()
         self.setGeometry(self.parentWidget().rect())
         self.show()
         self.raise_()
         self.setFocus()
+
+    def hideEvent(self, event):
+        """Give the keyboard back to the widget that had it. Qt moves the focus off a hidden widget only
+        in an active window; in one the window system never made active (an X server without a window
+        manager sends keys to the window under the pointer) the hidden sheet kept it and swallowed every
+        key after (found driving the real window under Xvfb: F1, Esc, then no key did anything)."""
+        super().hideEvent(event)
+        if self.window().focusWidget() is not self:
+            return
+        before = getattr(self, "_before", None)
+        try:
+            usable = before is not None and before is not self and before.isVisible()
+        except RuntimeError:            # the widget was deleted meanwhile
+            usable = False
+        (before if usable else self.window()).setFocus()
 
     def keyPressEvent(self, event):
         self.hide()

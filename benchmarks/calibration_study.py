@@ -29,7 +29,7 @@ from core import calibration  # noqa: E402
 
 STORE = Path(tempfile.gettempdir()) / "kinfold-calibration-study.pkl"
 CANDIDATES = ("entropy_rank", "pair_similarity", "log_size", "margin", "suggested",
-              "pair_rank", "inside_share", "raw_trust")
+              "pair_rank", "inside_share", "raw_trust", "fiedler", "min_loo", "std_loo", "clf_agree", "clf_conf")
 
 
 def candidate_features(graph, idx, suggested: bool, margin, raw_trust: float) -> list[float]:
@@ -39,7 +39,36 @@ def candidate_features(graph, idx, suggested: bool, margin, raw_trust: float) ->
     pair_rank = float(np.searchsorted(ref, base[1]) / len(ref))
     k = min(10, len(m) - 1) if len(m) > 1 else 1
     inside = float(np.isin(graph.idx[m, :k], m).mean()) if len(m) > 1 else 1.0
-    return list(base) + [pair_rank, inside, float(raw_trust)]
+    return list(base) + [pair_rank, inside, float(raw_trust)] + shape_features(graph.rows(m))
+
+
+def label_features(prob, idx) -> list[float]:
+    """clf_agree: share of members whose most probable label (relearned classifier) is the members' most
+    common one; clf_conf: the members' mean top probability. 1.0 / 1.0 without a classifier."""
+    if prob is None or len(idx) < 2:
+        return [1.0, 1.0]
+    p = np.nan_to_num(prob[np.asarray(idx)])
+    top = p.argmax(1)
+    return [float(np.bincount(top).max() / len(top)), float(p.max(1).mean())]
+
+
+def shape_features(x) -> list[float]:
+    """fiedler: the second-smallest eigenvalue of the members' normalised graph Laplacian (affinity
+    max(cos, 0)^3, as proposals.split_members cuts): small when the group falls into two parts;
+    min_loo / std_loo: the least and the spread of each member's similarity to the mean of the others."""
+    x = np.asarray(x, np.float64)
+    m = len(x)
+    if m < 3:
+        return [1.0, 1.0, 0.0]
+    s = x @ x.T
+    a = np.clip(s, 0, None) ** 3 + 1e-6
+    np.fill_diagonal(a, 0.0)
+    d = a.sum(1)
+    lap = np.eye(m) - a / np.sqrt(d[:, None] * d[None, :])
+    lam = np.linalg.eigvalsh(lap)
+    rest = x.sum(0)[None, :] - x
+    loo = (x * rest).sum(1) / np.maximum(np.linalg.norm(rest, axis=1), 1e-9)
+    return [float(lam[1]), float(loo.min()), float(loo.std())]
 
 
 def collect(names) -> dict:
@@ -49,13 +78,15 @@ def collect(names) -> dict:
         with opened(feats, classes) as (project, truth, row_of):
             def rows_of(groups):
                 graph = project.graph()
+                names = project.label_arrays()[2]
+                prob = project.label_classifier(names) if names else None
                 rows = []
                 for g in groups:
                     raw = project.store.proposal(g.id)
                     cls = [truth[m] for m in g.members]
                     sug = raw.suggested_label is not None
                     idx = [row_of[m] for m in g.members]
-                    f = candidate_features(graph, idx, sug, raw.confidence, raw.trust)
+                    f = candidate_features(graph, idx, sug, raw.confidence, raw.trust) + label_features(prob, idx)
                     rows.append(dict(f=f, purity=calibration.purity(cls), size=len(cls), kind=g.kind,
                                      share=float(np.mean([c == raw.suggested_label for c in cls])) if sug else None))
                 return rows
@@ -118,7 +149,14 @@ FEATURE_SETS = {
     "pair rank for pair similarity": ("entropy_rank", "pair_rank", "log_size", "margin", "suggested"),
     "+ pair rank": CANDIDATES[:5] + ("pair_rank",),
     "+ inside share": CANDIDATES[:5] + ("inside_share",),
-    "+ pair rank, inside share, raw trust": CANDIDATES,
+    "+ pair rank, inside share, raw trust": CANDIDATES[:8],
+    "+ fiedler": CANDIDATES[:5] + ("fiedler",),
+    "+ min loo": CANDIDATES[:5] + ("min_loo",),
+    "+ fiedler, min loo": CANDIDATES[:5] + ("fiedler", "min_loo"),
+    "+ fiedler, min loo, std loo": CANDIDATES[:5] + ("fiedler", "min_loo", "std_loo"),
+    "+ classifier agreement": CANDIDATES[:5] + ("clf_agree",),
+    "+ classifier agreement, confidence": CANDIDATES[:5] + ("clf_agree", "clf_conf"),
+    "+ classifier agreement, min loo": CANDIDATES[:5] + ("clf_agree", "min_loo"),
 }
 
 

@@ -6,7 +6,8 @@ window manager would, and Qt counts it active. In the "pointer" case (how /work/
 drives it) X sends the keys to the window under the pointer, but Qt never counts the window active,
 so window-level shortcuts do not fire: typing reaches the focused widget, and Return must as well.
 
-On a copy of the demo folder, from a clean settings folder: take the first group's second photo out
+On a copy of the demo folder, from a clean settings folder: open and close the shortcut sheet (F1, Esc),
+take the first group's second photo out
 (Right, Space), type a new label and press Return; the store must then hold the other photos under
 that label and not the one taken out. Then press Return on the next group whose suggested label
 (preselected in the field) is right; groups on the way get their true class typed (the demo
@@ -225,6 +226,13 @@ def test_type_a_label_and_press_return_in_a_real_window(scanned_demo, tmp_path, 
         s.settled()
         s.shot("first-group")
         assert not s.accepts()
+
+        # The shortcut sheet opened and closed again (F1, Esc) must give the keyboard back to the grid.
+        s.xdotool("key", "F1")
+        s.settled()
+        s.shot("shortcut-sheet")
+        s.xdotool("key", "Escape")
+        s.settled()
 
         # The second photo taken out (Right, Space on the grid, where the keyboard starts), then a new label
         # typed as a user would (the first letter on the grid moves to the label field).
