@@ -1,7 +1,13 @@
 """Does ordering groups by the calibrated figures gain yield? (core/calibrated_order.py)
 
     python -m benchmarks.calibrated_order                                 # fashion, demo, digits
-    python -m benchmarks.calibrated_order --datasets fashion --relearn    # also with relearning
+    python -m benchmarks.calibrated_order --datasets fashion --relearn    # relearning every sitting
+    python -m benchmarks.calibrated_order --datasets fashion,demo,demo-backdrop --relearn both   # the ablation
+
+The ablation (`--relearn both`): each component of issue 19's order and grouping with and without it, in
+one run per data set: relearning, the calibrated order, and (data set `demo-backdrop`: the demo folder's
+features with the product's opt-in backdrop correction, core/backdrop_correction.py, against `demo`)
+the backdrop correction.
 
 For each data set, in one run: the yield protocol's simulated annotator (benchmarks/yield_sim.py,
 no relearning unless --relearn) on a real `core.project.Project` built over the cached
@@ -29,10 +35,11 @@ from core.proposals import Settings  # noqa: E402
 DATASETS = ("fashion", "demo", "digits")
 
 
-def run_dataset(name: str, relearn: bool = False) -> list[dict]:
+def run_dataset(name: str, relearn: bool | str = False) -> list[dict]:
     feats, classes = load(name)
     rows = []
-    for order in ("engine", "calibrated"):
+    for relearn, order in [(r, o) for r in ((False, True) if relearn == "both" else (bool(relearn),))
+                           for o in ("engine", "calibrated")]:
         t0 = time.perf_counter()
         with opened(feats, classes) as (project, truth, _):
             r = simulate(project, truth, relearn=relearn, settings=Settings(order=order),
@@ -47,25 +54,27 @@ def run_dataset(name: str, relearn: bool = False) -> list[dict]:
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--datasets", default=",".join(DATASETS))
-    ap.add_argument("--relearn", action="store_true", help="relearn every sitting (100 actions)")
+    ap.add_argument("--relearn", nargs="?", const="on", default="off", choices=("off", "on", "both"),
+                    help="relearn every sitting (100 actions); both: with and without, in one run")
     ap.add_argument("--out", default=str(ROOT / "out" / "calibrated_order"))
     args = ap.parse_args(argv)
     print("command: python -m benchmarks.calibrated_order " + " ".join(sys.argv[1:] if argv is None else argv))
     results = {}
     for name in args.datasets.split(","):
-        rows = run_dataset(name, args.relearn)
+        rows = run_dataset(name, {"off": False, "on": True, "both": "both"}[args.relearn])
         results[name] = rows
         print(f"{name} ({rows[0]['photos']} photos)")
         print(f"  {'run':<44} {'yield@80':>8} {'yield@100':>9} {'groups':>6} {'propose median s':>16}")
         for r in rows:
             print(f"  {r['run']:<44} {r['yield80']:>8.3f} {r['yield100']:>9.3f} {r['groups']:>6} "
                   f"{r.get('propose_median_s', ''):>16}")
-        eng, cal = rows[0], rows[1]
-        print(f"  calibrated / engine: yield@80 {cal['yield80'] / eng['yield80']:.3f}, "
-              f"yield@100 {cal['yield100'] / eng['yield100']:.3f}", flush=True)
+        for eng, cal in zip(rows[:-1:2], rows[1:-1:2]):
+            print(f"  calibrated / engine{' (relearning)' if 'relearning' in eng['run'] else ''}: yield@80 "
+                  f"{cal['yield80'] / eng['yield80']:.3f}, yield@100 {cal['yield100'] / eng['yield100']:.3f}", flush=True)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
-    (out / ("results-relearn.json" if args.relearn else "results.json")).write_text(json.dumps(results, indent=1))
+    (out / {"off": "results.json", "on": "results-relearn.json", "both": "results-ablation.json"}[args.relearn]
+     ).write_text(json.dumps(results, indent=1))
     return 0
 
 

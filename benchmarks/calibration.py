@@ -44,7 +44,7 @@ from core.project import Project  # noqa: E402
 
 
 WORK = CACHE_DIR / "calibration"
-DATASETS = ("fashion", "fashion-train", "digits", "demo")
+DATASETS = ("fashion", "fashion-train", "digits", "demo", "demo-backdrop")
 
 
 def load(name: str) -> tuple[np.ndarray, list[str]]:
@@ -70,7 +70,7 @@ def load(name: str) -> tuple[np.ndarray, list[str]]:
                 .convert("RGB") for im in d.images)
         feats = embed_images(imgs, get_extractor())
         classes = [str(int(c)) for c in d.target]
-    elif name == "demo":
+    elif name in ("demo", "demo-backdrop"):
         from app.demo import load_demo_truth
 
         truth = load_demo_truth(ROOT / "resources" / "demo_truth.csv")
@@ -78,7 +78,12 @@ def load(name: str) -> tuple[np.ndarray, list[str]]:
         try:
             p.scan()
             keep = [i for i, q in enumerate(p.photos()) if truth.get(q) not in (None, "broken")]
-            feats = p.backbone_features()[keep]
+            if name == "demo-backdrop":       # the product's own opt-in correction (core/backdrop_correction.py)
+                p.backdrop_correction(4)
+                feats = p.features()[keep]
+                p.backdrop_correction(None)
+            else:
+                feats = p.backbone_features()[keep]
             classes = [truth[p.photos()[i]] for i in keep]
         finally:
             p.close()

@@ -9,6 +9,8 @@ from __future__ import annotations
 import unicodedata
 from typing import Sequence
 
+import numpy as np
+
 from core import mistakes, proposals
 from core.errors import ProjectError
 from core.group import Group
@@ -87,19 +89,45 @@ def split(project, group_id: int) -> list[Group]:
         raise ProjectError(f"group {group_id} has {len(members)} photos; splitting needs at least "
                            f"{proposals.MIN_SPLIT} (take the odd ones out instead)")
     g = project.graph()
-    part = proposals.split_members(g.rows([project._index[m] for m in members]))
+    idx = [project._index[m] for m in members]
+    # Once labels exist they cut along the classes better than the geometry alone (the relearned
+    # classifier was fitted on them): yield_replay Fashion-MNIST 10,000 7.839 -> 8.189 (README).
+    part, prob, names = _label_split(project, g, idx)
+    if part is None:
+        part = proposals.split_members(g.rows(idx))
     parts = [[m for m, p in zip(members, part) if p == k] for k in (0, 1)]
     # The part holding the anchor keeps its place first.
     if members[0] in parts[1]:
         parts.reverse()
     records = [dict(members=pm, trust=row.trust, suggested_label=row.suggested_label,
                     confidence=row.confidence, kind="split part") for pm in parts if pm]
+    if prob is not None:       # cut by the labels: each part suggests the label most of its members have
+        at = {m: i for i, m in enumerate(members)}
+        for r in records:
+            rows = prob[[at[m] for m in r["members"]]]
+            col = int(np.bincount(rows.argmax(1), minlength=rows.shape[1]).argmax())
+            known = col < len(names)
+            r["suggested_label"] = names[col] if known else None
+            r["confidence"] = round(float(rows[:, col].mean()), 4) if known else None
     with project.store.transaction():
         project._open_group(group_id)          # still open now that the write lock is held
         project.store.record_decision("split", project.annotator, members, {}, group_id=group_id)
         ids = project.store.add_pinned_proposals(records, close=group_id)
     return [Group(i, r["members"], r["trust"], r["suggested_label"], r["confidence"], r["kind"])
             for i, r in zip(ids, records)]
+
+
+def _label_split(project, graph, idx: list[int]):
+    """(`proposals.label_split` of the members, their rows of the label probabilities, the label names)
+    once labels exist and tell the members apart; (None, None, None) otherwise."""
+    state, label_of, names = project.label_arrays()
+    if not names or not (state == proposals.LABELLED).any():
+        return None, None, None
+    prob = proposals.label_probabilities(graph, state, label_of, len(names), proposals.Settings(),
+                                         project.label_state.not_label(), project.label_classifier(names),
+                                         names, rows=idx)
+    part = proposals.label_split(prob)
+    return (None, None, None) if part is None else (part, prob, names)
 
 
 def defer(project, group_id: int) -> int:

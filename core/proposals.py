@@ -232,13 +232,7 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
 
     probable: list[Group] = []
     if n_labels > 0 and (state == LABELLED).any():
-        prob = propagate(graph, state, label_of, n_labels, s, names)
-        if classifier is not None:
-            prob = with_classifier(prob, _smoothed(graph, classifier, s))
-        if not_label is not None and not_label.any():
-            prob = prob.copy() if classifier is None else prob     # the propagation's result is shared
-            prob[:, :n_labels][not_label] = 0.0
-            prob /= np.maximum(prob.sum(1, keepdims=True), 1e-12)
+        prob = label_probabilities(graph, state, label_of, n_labels, s, not_label, classifier, names)
         pred = prob[:, :n_labels].argmax(1)
         conf = prob[np.arange(n), pred]
         sure = available & (conf >= s.min_confidence)
@@ -316,6 +310,44 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
     if rescore is not None:
         rescore(explore)
     return _order(probable, explore, limit, s.explore_every)
+
+
+def label_probabilities(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels: int, s: Settings,
+                        not_label: np.ndarray | None = None, classifier: np.ndarray | None = None,
+                        names: list[str] | None = None, rows=None) -> np.ndarray:
+    """What the labels say of every photo (or of the photos `rows`), shape (n, n_labels + 1), the last
+    column 'unknown': the propagation, re-scored by the relearned classifier where there is one
+    (`with_classifier`), with the "not this label" answers taken out. Shared with the propagation's
+    cache unless changed here: read-only."""
+    prob = propagate(graph, state, label_of, n_labels, s, names)
+    smoothed = None if classifier is None else _smoothed(graph, classifier, s)
+    if rows is not None:              # a group's rows only: no copy of the whole collection's figures
+        prob = prob[rows]
+        smoothed = None if smoothed is None else smoothed[rows]
+        not_label = None if not_label is None else not_label[rows]
+    if smoothed is not None:
+        prob = with_classifier(prob, smoothed)
+    if not_label is not None and not_label.any():
+        prob = prob.copy() if classifier is None else prob     # the propagation's result is shared
+        prob[:, :n_labels][not_label] = 0.0
+        prob /= np.maximum(prob.sum(1, keepdims=True), 1e-12)
+    return prob
+
+
+def label_split(prob: np.ndarray, min_share: float = 0.2) -> np.ndarray | None:
+    """Two parts of a group by what the labels say of its members (`prob`: their rows of
+    `label_probabilities`): the members whose most probable column (a label, or 'unknown') is the
+    group's most common one, and the rest. None when the smaller part would hold less than
+    `min_share` of the members: then the labels do not tell the group apart, and the caller cuts by
+    geometry (`split_members`)."""
+    top = prob.argmax(1)
+    common = np.bincount(top, minlength=prob.shape[1]).argmax()
+    part = (top != common).astype(np.int64)
+    if min(part.sum(), len(part) - part.sum()) < max(1, min_share * len(part)):
+        return None
+    if part[0]:                       # the anchor's side is part 0
+        part = 1 - part
+    return part
 
 
 def expected_yield(g: Group, member_conf: np.ndarray) -> float:
