@@ -64,6 +64,21 @@ VARIANTS = {
     "no-rejections": dict(relearn=True, settings=relearning.Settings(classifier_rejections=False)),
     "rejections-weight-1": dict(relearn=True, settings=relearning.Settings(classifier_rejection_weight=1.0)),
     "no-smoothing": dict(relearn=True, propose=proposals.Settings(smoothing=0.0)),
+    # A stronger label classifier on the same features (issue 19): less L2 (C 10), or an MLP on top.
+    "c-3": dict(relearn=True, settings=relearning.Settings(classifier_c=3.0)),
+    "c-10": dict(relearn=True, settings=relearning.Settings(classifier_c=10.0)),
+    "c-30": dict(relearn=True, settings=relearning.Settings(classifier_c=30.0)),
+    "mlp-64": dict(relearn=True, settings=relearning.Settings(classifier_hidden=64)),
+    "c-10+mlp-64": dict(relearn=True, settings=relearning.Settings(classifier_c=10.0, classifier_hidden=64)),
+    # Member trimming: photos below member_min never share a probable-label group with surer ones.
+    "trim-0.8": dict(relearn=True, propose=proposals.Settings(member_min=0.8)),
+    "trim-0.9": dict(relearn=True, propose=proposals.Settings(member_min=0.9)),
+    "c-10+trim-0.9": dict(relearn=True, settings=relearning.Settings(classifier_c=10.0),
+                          propose=proposals.Settings(member_min=0.9)),
+    "c-10+conf-0.8": dict(relearn=True, settings=relearning.Settings(classifier_c=10.0),
+                          propose=proposals.Settings(min_confidence=0.8)),
+    "c-10+group-128": dict(relearn=True, settings=relearning.Settings(classifier_c=10.0),
+                           propose=proposals.Settings(max_group=128)),
 }
 
 
