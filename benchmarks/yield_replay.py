@@ -11,6 +11,7 @@ the product.
 
     python -m benchmarks.yield_replay --n 10000                       # no relearning, relearning, k-means
     python -m benchmarks.yield_replay --n 10000 --variants relearn    # one variant
+    python -m benchmarks.yield_replay --n 10000 --variants relearn --breakdown   # where the actions go
 
 Prints yield@80, yield@100 and timings per variant, and writes the curves (CSV and PNG) and the
 per-sitting purity figures into --out (default out/yield/).
