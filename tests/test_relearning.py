@@ -264,7 +264,7 @@ def test_label_classifier_follows_scikit_learn_conventions():
     label_of = np.where(state == 1, y, -1)
     names = ["a", "b", "c"]
     est = LabelClassifier(c=2.0)
-    assert est.get_params() == dict(c=2.0, max_iter=200, balanced=True, rejection_weight=3.0)
+    assert est.get_params() == dict(c=2.0, max_iter=200, balanced=True, rejection_weight=3.0, hidden=0, hidden_steps=80)
     assert not [k for k in vars(est) if k.endswith("_")]          # nothing learned before fit
     assert est.fit(feats, state, label_of, names) is est
     assert {"coef_", "intercept_", "mean_", "classes_"} <= set(vars(est))
