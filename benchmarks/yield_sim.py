@@ -43,6 +43,7 @@ class Run:
     splits: int = 0
     groups: int = 0
     sittings: list[dict] = field(default_factory=list)    # geometry figures at each sitting's end
+    steps: list[dict] = field(default_factory=list)       # one per annotator step: where the actions went
 
     def record(self, actions: int, labelled: int) -> None:
         self.curve.append((actions, labelled))
@@ -125,15 +126,20 @@ def simulate(project: Project, truth: dict[str, str], *, sitting: int = 100, rel
         classes = [truth[m] for m in g.members]
         m = majority(classes)
         minority = sum(c != m for c in classes)
+        step = dict(kind=g.kind, size=len(g.members), sitting=len(run.sittings), take_outs=0, typed=0,
+                    accepts=0, splits=0, suggested=g.suggested_label is not None)
         if allow_split and g.splittable and minority / len(classes) >= 0.3:
             project.split(g.id)
             actions += 1
             run.splits += 1
+            step["splits"] = 1
         else:
             drop = [p for p, c in zip(g.members, classes) if c != m]
             actions += len(drop) + 1
+            step.update(take_outs=len(drop), accepts=1)
             if m not in used and g.suggested_label != m:
                 actions += 1   # typing a new label name
+                step["typed"] = 1
             if g.suggested_label is not None:
                 run.suggested_total += 1
                 run.suggested_right += g.suggested_label == m
@@ -141,6 +147,9 @@ def simulate(project: Project, truth: dict[str, str], *, sitting: int = 100, rel
             project.accept(g.id, m, drop=drop)
             labelled += len(g.members) - len(drop)
             run.groups += 1
+            step["confirmed"] = len(g.members) - len(drop)
+        step.update(actions=actions, labelled=labelled)
+        run.steps.append(step)
         run.record(actions, labelled)
         if actions >= next_relearn:
             # The end of a sitting: geometry figures before and (with relearning) after the relearn.

@@ -50,6 +50,11 @@ class Settings:
     min_confidence: float = 0.6      # below this, a photo is left to new-area groups (0.6 against 0.7:
                                      # yield@80 7.75 / 7.75 against 7.40 / 7.78 on Fashion-MNIST test / train
                                      # 10,000, yield@100 higher on both; benchmarks/yield_replay.py)
+    member_min: float = 0.0          # member trimming: above min_confidence, a probable-label group takes only
+                                     # photos at least this sure while its label has any (the rest form later,
+                                     # smaller groups of their own); 0: off. 0.9 gave yield@80 8.09 / 8.30 against
+                                     # 7.84 / 8.26 (Fashion-MNIST test / train 10,000, one replay each: inside the
+                                     # ~0.3 noise), so it stays opt-in (README, issue 19)
     explore_every: int = 3           # a new-area group at least every this many places
     min_shared: int = 2              # new-area member must share this many of its 10 nearest with the anchor
     smoothing: float = 0.5           # weight of the graph neighbours in the classifier's smoothed probabilities
@@ -246,17 +251,22 @@ def form_groups(graph: Graph, state: np.ndarray, label_of: np.ndarray, n_labels:
         for c in range(n_labels):
             cand = sure_idx[cuts[c]:cuts[c + 1]]
             made, taken_here = 0, []
-            while len(cand) and made < limit:
-                members = _fill(cand, graph, trial, s.max_group)
-                if not members:
-                    break
-                mean_conf = float(conf[members].mean())
-                g = Group(members, mean_conf, "probable label", c, mean_conf)
-                g.extra["expected_yield"] = expected_yield(g, conf[members])
-                probable.append(g)
-                taken_here += members
-                cand = cand[trial[cand]]
-                made += 1
+            # Member trimming: the photos below `member_min` never share a group with surer ones.
+            tiers = [cand] if s.member_min <= s.min_confidence else \
+                [cand[conf[cand] >= s.member_min], cand[conf[cand] < s.member_min]]
+            for cand in tiers:
+                while len(cand) and made < limit:
+                    members = _fill(cand, graph, trial, s.max_group)
+                    if not members:
+                        break
+                    mean_conf = float(conf[members].mean())
+                    g = Group(members, mean_conf, "probable label", c, mean_conf)
+                    g.extra["expected_yield"] = expected_yield(g, conf[members])
+                    g.extra["member_conf"] = conf[members]
+                    probable.append(g)
+                    taken_here += members
+                    cand = cand[trial[cand]]
+                    made += 1
             trial[taken_here] = True            # back as `available` for the next label
         if rescore is not None:
             rescore(probable)

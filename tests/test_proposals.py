@@ -59,3 +59,41 @@ def test_groups_do_not_depend_on_the_order_of_label_names():
                [gr.suggested_label for gr in b]
         members = [m for gr in a for m in gr.members]
         assert len(members) == len(set(members))      # a photo in at most one group
+
+
+def test_member_trimming_keeps_less_sure_photos_out_of_the_surer_group():
+    """`member_min`: a probable-label group takes only photos at least that sure while its label has
+    any; the less sure ones come in groups of their own. Off (0), the groups are unchanged.
+    Data: scikit-learn's bundled digits, raw pixels, five seeded labels per class; the classifier's
+    probabilities are invented so each label has sure and less sure candidates."""
+    from core.neighbours import build_graph
+
+    x, y = _digits(tuple(range(10)), (30,) * 10)
+    g = build_graph(x.astype(np.float32), centre=False)
+    state = np.zeros(len(y), np.int8)
+    for c in range(10):
+        state[np.nonzero(y == c)[0][:5]] = proposals.LABELLED
+    label_of = np.where(state == proposals.LABELLED, y, -1)
+    rng = np.random.default_rng(0)
+    sure = rng.uniform(0.6, 1.0, len(y))
+    clf = np.full((len(y), 10), 0.0)
+    clf[np.arange(len(y)), y] = sure
+    clf[np.arange(len(y)), (y + 1) % 10] += 1 - sure
+    base = proposals.Settings(smoothing=0.0, max_group=200)
+    plain = proposals.form_groups(g, state, label_of, 10, limit=50, settings=base, classifier=clf)
+    same = proposals.form_groups(g, state, label_of, 10, limit=50, classifier=clf,
+                                 settings=proposals.Settings(smoothing=0.0, max_group=200, member_min=0.0))
+    assert [gr.members for gr in plain] == [gr.members for gr in same]
+    mixed = [gr for gr in plain if gr.kind == "probable label"]
+    # The classifier's figure is scaled by the propagation's known mass: cut in the middle of what occurs.
+    cut = float(np.median(np.concatenate([gr.extra["member_conf"] for gr in mixed])))
+    assert any(min(gr.extra["member_conf"]) < cut <= max(gr.extra["member_conf"]) for gr in mixed)
+    trimmed = proposals.form_groups(g, state, label_of, 10, limit=50, classifier=clf,
+                                    settings=proposals.Settings(smoothing=0.0, max_group=200, member_min=cut))
+    prob = [gr for gr in trimmed if gr.kind == "probable label"]
+    assert any(min(gr.extra["member_conf"]) >= cut for gr in prob)
+    for gr in prob:
+        lo, hi = min(gr.extra["member_conf"]), max(gr.extra["member_conf"])
+        assert lo >= cut or hi < cut, (lo, hi, cut)       # never sure and less sure photos together
+    members = [m for gr in trimmed for m in gr.members]
+    assert len(members) == len(set(members))
