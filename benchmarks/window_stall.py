@@ -54,7 +54,8 @@ def prepare(n: int, work: Path) -> tuple[Path, dict[str, str], Path]:
     from core import catalogue
     from core.project import Project
 
-    folder, truth_file, base = work / f"fashion-{n}", work / f"fashion-{n}-truth.json", work / f"fashion-{n}-store"
+    pooling = _extractor_id().partition(":")[0].removeprefix("efficientnet-lite0")   # "" or "-gem"
+    folder, truth_file, base = work / f"fashion-{n}", work / f"fashion-{n}-truth.json", work / f"fashion-{n}-store{pooling}"
     if not truth_file.exists():
         shutil.rmtree(folder, ignore_errors=True)
         truth_file.parent.mkdir(parents=True, exist_ok=True)

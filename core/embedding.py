@@ -29,10 +29,11 @@ from core.images import PhotoError, load_rgb
 PRECISIONS = ("auto", "bf16", "fp32")
 DEFAULT_EXTRACTOR = "efficientnet-lite0"
 # EfficientNet-Lite0 by pooling: the same network, its last stage pooled by the global average or by
-# the generalised mean (benchmarks/feature_variants.py measured both). "efficientnet-lite0" is
-# DEFAULT_POOLING; the explicit names stay for projects scanned with the other one.
+# the generalised mean, p = 3 (benchmarks/feature_variants.py; README "Pooling of the embedding").
+# "efficientnet-lite0" is DEFAULT_POOLING for a new project; a project scanned before keeps the
+# pooling its store holds (core/project.py `_kept_pooling`), so it is never re-embedded by surprise.
 EFFICIENTNET_LITE0 = {"efficientnet-lite0-avg": "avg", "efficientnet-lite0-gem": "gem"}
-DEFAULT_POOLING = "avg"
+DEFAULT_POOLING = "gem"
 # Torchvision architectures offered; the short names map to torchvision's builder names.
 TORCHVISION_MODELS = {
     "resnet18": "resnet18",
