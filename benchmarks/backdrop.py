@@ -233,7 +233,10 @@ def load_fashion(n: int = 2000):
 def run(name: str) -> dict:
     print(f"{name}:", flush=True)
     paths, classes, backdrops, images = load_demo() if name == "demo" else load_fashion()
-    cache = WORK / f"backdrop-views-{name}.npz"
+    from core.embedding import DEFAULT_POOLING
+
+    # views embedded by the default extractor: its pooling in the name (the average's caches kept theirs)
+    cache = WORK / (f"backdrop-views-{name}.npz" if DEFAULT_POOLING == "avg" else f"backdrop-views-{name}-{DEFAULT_POOLING}.npz")
     need = ["full", "centre 70%", "centre 50%", "border"]
     if cache.is_file():
         v = dict(np.load(cache))

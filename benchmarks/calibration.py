@@ -56,7 +56,11 @@ def load(name: str) -> tuple[np.ndarray, list[str]]:
         f, y = fashion_features(2000, split="train")
         return f, [CLASS_NAMES[int(c)] for c in y]
     WORK.mkdir(parents=True, exist_ok=True)
-    cache_f, cache_y = WORK / f"{name}-features.npy", WORK / f"{name}-classes.json"
+    from core.embedding import DEFAULT_POOLING
+
+    # the default extractor's features: its pooling in the names (the average's caches kept theirs)
+    tag = "" if DEFAULT_POOLING == "avg" else f"-{DEFAULT_POOLING}"
+    cache_f, cache_y = WORK / f"{name}{tag}-features.npy", WORK / f"{name}{tag}-classes.json"
     if cache_f.is_file() and cache_y.is_file():
         return np.load(cache_f), json.loads(cache_y.read_text())
     if name == "digits":
@@ -74,7 +78,7 @@ def load(name: str) -> tuple[np.ndarray, list[str]]:
         from app.demo import load_demo_truth
 
         truth = load_demo_truth(ROOT / "resources" / "demo_truth.csv")
-        p = Project.open(ROOT / "sample_images", store=WORK / "demo-store", annotator="simulated")
+        p = Project.open(ROOT / "sample_images", store=WORK / f"demo-store{tag}", annotator="simulated")
         try:
             p.scan()
             keep = [i for i, q in enumerate(p.photos()) if truth.get(q) not in (None, "broken")]

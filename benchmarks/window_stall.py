@@ -43,9 +43,9 @@ ACTION_TIMEOUT = 180.0    # seconds for one action's result (a relearn included)
 
 
 def _extractor_id() -> str:
-    from core.embedding import resolve_precision
+    from core.embedding import DEFAULT_POOLING, efficientnet_lite0_id
 
-    return f"efficientnet-lite0:imagenet:{resolve_precision('auto')}"   # what Project.scan would record
+    return efficientnet_lite0_id(DEFAULT_POOLING, "auto")   # what Project.scan would record
 
 
 def prepare(n: int, work: Path) -> tuple[Path, dict[str, str], Path]:
@@ -54,7 +54,8 @@ def prepare(n: int, work: Path) -> tuple[Path, dict[str, str], Path]:
     from core import catalogue
     from core.project import Project
 
-    folder, truth_file, base = work / f"fashion-{n}", work / f"fashion-{n}-truth.json", work / f"fashion-{n}-store"
+    pooling = _extractor_id().partition(":")[0].removeprefix("efficientnet-lite0")   # "" or "-gem"
+    folder, truth_file, base = work / f"fashion-{n}", work / f"fashion-{n}-truth.json", work / f"fashion-{n}-store{pooling}"
     if not truth_file.exists():
         shutil.rmtree(folder, ignore_errors=True)
         truth_file.parent.mkdir(parents=True, exist_ok=True)

@@ -12,6 +12,7 @@ the product.
     python -m benchmarks.yield_replay --n 10000                       # no relearning, relearning, k-means
     python -m benchmarks.yield_replay --n 10000 --variants relearn    # one variant
     python -m benchmarks.yield_replay --n 10000 --variants relearn --breakdown   # where the actions go
+    python -m benchmarks.yield_replay --n 10000 --extractor efficientnet-lite0-avg   # another embedding
 
 Prints yield@80, yield@100 and timings per variant, and writes the curves (CSV and PNG) and the
 per-sitting purity figures into --out (default out/yield/).
@@ -139,9 +140,11 @@ def main(argv=None) -> int:
     ap.add_argument("--breakdown", action="store_true",
                     help="print where the actions up to 80 %% go (accepts, take-outs, typed labels, singles; by group kind and sitting)")
     ap.add_argument("--out", default=str(ROOT / "out" / "yield"))
+    ap.add_argument("--extractor", default="efficientnet-lite0",
+                    help="whose cached features (benchmarks.fashion --extractor), e.g. efficientnet-lite0-gem")
     args = ap.parse_args(argv)
     print("command: python -m benchmarks.yield_replay " + " ".join(sys.argv[1:] if argv is None else argv))
-    feats, labels = fashion_features(args.n, split=args.split)
+    feats, labels = fashion_features(args.n, args.extractor, split=args.split)
     classes = [CLASS_NAMES[int(c)] for c in labels]
     runs, breakdowns = [], {}
     for v in args.variants.split(","):
@@ -166,7 +169,7 @@ def main(argv=None) -> int:
     runs.append(one_at_a_time(args.n))
     for r in runs[-2:]:
         print(json.dumps(r.summary()))
-    tag = f"replay-fashion-{args.split}-{args.n}"
+    tag = f"replay-fashion-{args.split}-{args.n}" + ("" if args.extractor == "efficientnet-lite0" else f"-{args.extractor}")
     write_outputs(runs, Path(args.out), tag)
     with open(Path(args.out) / f"{tag}-sittings.json", "w") as f:
         json.dump({r.name: r.sittings for r in runs if r.sittings}, f, indent=1)

@@ -5,6 +5,7 @@ protocol in the project's shared yield-protocol notes). The engine never sees th
     python -m benchmarks.yield_sim --dataset fashion --n 2000          # quick
     python -m benchmarks.yield_sim --dataset fashion --n 10000         # the figure that counts
     python -m benchmarks.yield_sim --dataset demo                       # the demo folder
+    python -m benchmarks.yield_sim --dataset demo --extractor efficientnet-lite0-avg   # another embedding
     python -m benchmarks.yield_sim --dataset fashion --n 10000 --relearn   # with relearning every sitting
 
 Prints yield@80, yield@100, suggested-label accuracy and timings for the engine and the baselines,
@@ -277,16 +278,20 @@ def main(argv=None) -> int:
                     help="group order (core.proposals.Settings.order; default: the engine's default)")
     ap.add_argument("--backdrop", type=int, default=None, metavar="K",
                     help="switch on the backdrop correction with K backdrop groups (Project.backdrop_correction)")
+    ap.add_argument("--extractor", default="efficientnet-lite0",
+                    help="the project's extractor (core.embedding.get_extractor names, e.g. efficientnet-lite0-avg); "
+                         "a store per embedding, so runs of two never re-embed each other's")
     args = ap.parse_args(argv)
 
     print("command:", "python -m benchmarks.yield_sim " + " ".join(argv if argv is not None else sys.argv[1:]))
     folder, truth, store = prepare_dataset(args)
     base_store = Path(store) if store else folder.parent / (folder.name + "-store")
+    base_store = base_store.with_name(base_store.name + _store_suffix(args.extractor))
     runs: list[Run] = []
     configs = [("kinfold, no relearning", False)] + ([("kinfold, relearning", True)] if args.relearn else [])
     for name, relearn in configs:
         store_dir = base_store.with_name(base_store.name + ("-relearn" if relearn else ""))
-        p = Project.open(folder, store=store_dir, annotator="simulated")
+        p = Project.open(folder, store=store_dir, annotator="simulated", extractor=args.extractor)
         t0 = time.perf_counter()
         rep = p.scan()
         scan_s = time.perf_counter() - t0
@@ -312,7 +317,7 @@ def main(argv=None) -> int:
     classes = [truth[q] for q in paths]
     runs.append(kmeans_baseline(feats, classes))
     runs.append(one_at_a_time(len(paths)))
-    tag = f"{args.dataset}-{len(paths)}"
+    tag = f"{args.dataset}-{len(paths)}" + ("" if args.extractor == "efficientnet-lite0" else f"-{args.extractor}")
     for r in runs:
         print(json.dumps(r.summary()))
     write_outputs(runs, Path(args.out), tag)
@@ -333,6 +338,17 @@ def main(argv=None) -> int:
         json.dump({r.name: r.sittings for r in runs if r.sittings}, f, indent=1)
     print(f"curves: {Path(args.out) / (tag + '-curves.csv')} and .png")
     return 0
+
+
+def _store_suffix(extractor: str) -> str:
+    """"" for the global-average EfficientNet-Lite0 (the stores this benchmark always kept), else a
+    suffix naming the extractor's id."""
+    from core.embedding import DEFAULT_EXTRACTOR, DEFAULT_POOLING, EFFICIENTNET_LITE0
+
+    if extractor == DEFAULT_EXTRACTOR or extractor in EFFICIENTNET_LITE0:
+        pooling = EFFICIENTNET_LITE0.get(extractor, DEFAULT_POOLING)
+        return "" if pooling == "avg" else f"-lite0-{pooling}"
+    return f"-{extractor}"
 
 
 def _reset_decisions(p: Project) -> None:

@@ -319,8 +319,10 @@ def _embed_with(client, folder, rows, extractor, store, progress, cancel, chunk,
     by_host = _threads_by_host(client, threads)
     name, _, _ = extractor.id.partition(":")
     precision = getattr(extractor, "precision", "auto")
-    # EfficientNet-Lite0's id starts with its registry name; torchvision ids with "torchvision-<arch>".
-    model = extractor_name or (name if not name.startswith("torchvision-") else _torchvision_name(name))
+    # The built-in EfficientNet-Lite0 extractors carry the name that builds them; otherwise the id starts
+    # with the name, torchvision ids with "torchvision-<arch>".
+    model = extractor_name or getattr(extractor, "name", None) or (
+        name if not name.startswith("torchvision-") else _torchvision_name(name))
     chunks = [list(rows[i:i + chunk]) for i in range(0, total, chunk)]
     tag = uuid.uuid4().hex[:8]
     in_flight: dict = {}       # future -> chunk index

@@ -20,6 +20,10 @@ INPUT_MEAN = 127.0
 INPUT_STD = 128.0
 FEATURE_DIM = 1280
 BN_EPS = 1e-3
+# Generalised-mean pooling exponent of `pooled_features(..., "gem")`: (mean of x^p)^(1/p) over the
+# positions of each channel; p = 1 is the average, large p tends to the maximum.
+GEM_P = 3.0
+POOLINGS = ("avg", "gem")
 
 # (repeats, kernel, stride, expand ratio, output channels) per stage; B0 layout.
 STAGES = [
@@ -104,13 +108,26 @@ class EfficientNetLite0(nn.Module):
         self._dropout = nn.Dropout(dropout)
         self._fc = nn.Linear(FEATURE_DIM, num_classes)
 
-    def features(self, x: torch.Tensor) -> torch.Tensor:
-        """Globally average-pooled 1280-d features (before the classifier)."""
+    def feature_map(self, x: torch.Tensor) -> torch.Tensor:
+        """The last stage's (B, 1280, H/32, W/32) activations (after the head's ReLU6, so >= 0)."""
         x = F.relu6(self._bn0(self._conv_stem(x)))
         for block in self._blocks:
             x = block(x)
-        x = F.relu6(self._bn1(self._conv_head(x)))
-        return torch.flatten(F.adaptive_avg_pool2d(x, 1), 1)
+        return F.relu6(self._bn1(self._conv_head(x)))
+
+    def features(self, x: torch.Tensor) -> torch.Tensor:
+        """Globally average-pooled 1280-d features (before the classifier)."""
+        return torch.flatten(F.adaptive_avg_pool2d(self.feature_map(x), 1), 1)
+
+    def pooled_features(self, x: torch.Tensor, pooling: str = "avg") -> torch.Tensor:
+        """1280-d features pooled over the positions by the global average ("avg", what the
+        classifier was trained on) or the generalised mean with exponent GEM_P ("gem")."""
+        if pooling == "avg":
+            return self.features(x)
+        if pooling != "gem":
+            raise ValueError(f"pooling must be one of {POOLINGS}, not {pooling!r}")
+        m = self.feature_map(x).float().clamp(min=1e-6)  # bf16 models pool in float32
+        return m.pow(GEM_P).mean((2, 3)).pow(1.0 / GEM_P)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         return self._fc(self._dropout(self.features(x)))

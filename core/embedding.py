@@ -28,6 +28,12 @@ from core.images import PhotoError, load_rgb
 
 PRECISIONS = ("auto", "bf16", "fp32")
 DEFAULT_EXTRACTOR = "efficientnet-lite0"
+# EfficientNet-Lite0 by pooling: the same network, its last stage pooled by the global average or by
+# the generalised mean, p = 3 (benchmarks/feature_variants.py; README "Pooling of the embedding").
+# "efficientnet-lite0" is DEFAULT_POOLING for a new project; a project scanned before keeps the
+# pooling its store holds (core/project.py `_kept_pooling`), so it is never re-embedded by surprise.
+EFFICIENTNET_LITE0 = {"efficientnet-lite0-avg": "avg", "efficientnet-lite0-gem": "gem"}
+DEFAULT_POOLING = "gem"
 # Torchvision architectures offered; the short names map to torchvision's builder names.
 TORCHVISION_MODELS = {
     "resnet18": "resnet18",
@@ -122,8 +128,21 @@ class _TorchExtractor:
             return self._pooled(x).float().numpy().astype(np.float32, copy=False)
 
 
+def efficientnet_lite0_id(pooling: str, precision: str) -> str:
+    """The extractor id of EfficientNet-Lite0 with `pooling`, without loading the network. The
+    average keeps the id it always had, so stores and caches made with it stay valid; the
+    generalised mean is another id, so its vectors never mix with the average's."""
+    precision = resolve_precision(precision)
+    if pooling == "avg":
+        return f"efficientnet-lite0:imagenet:{precision}"
+    if pooling == "gem":
+        return f"efficientnet-lite0-gem:imagenet:{precision}"
+    raise ValueError(f"pooling must be one of {efficientnet_lite.POOLINGS}, not {pooling!r}")
+
+
 class EfficientNetLite0Extractor(_TorchExtractor):
-    """EfficientNet-Lite0 ImageNet weights, 1280-d pooled features.
+    """EfficientNet-Lite0 ImageNet weights, 1280-d features of the last stage pooled by the
+    global average (``pooling="avg"``) or the generalised mean, p = 3 (``"gem"``).
 
     Preprocessing: resize the short side to 224 (bilinear, antialiased by Pillow) and take
     the central 224 x 224 square, scaled as (x - 127) / 128."""
@@ -132,13 +151,16 @@ class EfficientNetLite0Extractor(_TorchExtractor):
     input_size = efficientnet_lite.INPUT_SIZE
     decode_side = efficientnet_lite.INPUT_SIZE
 
-    def __init__(self, precision: str = "auto"):
+    def __init__(self, precision: str = "auto", pooling: str | None = None):
+        self.pooling = pooling or DEFAULT_POOLING
+        self.id = efficientnet_lite0_id(self.pooling, precision)
+        # The name that builds this extractor again (a Dask worker is told it).
+        self.name = next(n for n, p in EFFICIENTNET_LITE0.items() if p == self.pooling)
         network = efficientnet_lite.fuse_batchnorm(efficientnet_lite.load_efficientnet_lite0())
         super().__init__(network, precision)
-        self.id = f"efficientnet-lite0:imagenet:{self.precision}"
 
     def _pooled(self, x: torch.Tensor) -> torch.Tensor:
-        return self._model.features(x)
+        return self._model.pooled_features(x, self.pooling)
 
     def preprocess(self, img: Image.Image) -> torch.Tensor:
         return _to_tensor(
@@ -218,9 +240,11 @@ def _drop_classifier(model: nn.Module) -> int:
 def get_extractor(name: str = DEFAULT_EXTRACTOR, precision: str = "auto") -> Extractor:
     if name == DEFAULT_EXTRACTOR:
         return EfficientNetLite0Extractor(precision)
+    if name in EFFICIENTNET_LITE0:
+        return EfficientNetLite0Extractor(precision, EFFICIENTNET_LITE0[name])
     if name in TORCHVISION_MODELS:
         return TorchvisionExtractor(name, precision)
-    choices = [DEFAULT_EXTRACTOR, *sorted(TORCHVISION_MODELS)]
+    choices = [DEFAULT_EXTRACTOR, *sorted(EFFICIENTNET_LITE0), *sorted(TORCHVISION_MODELS)]
     raise ValueError(f"unknown extractor {name!r}; choose from {choices}")
 
 

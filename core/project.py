@@ -39,6 +39,9 @@ Cancel = Callable[[], bool]
 
 STORE_DIR = ".kinfold"
 DEFAULT_EXTRACTOR = "efficientnet-lite0"
+# The stored id's first part -> the name of the built-in EfficientNet-Lite0 pooling it was made with
+# (core.embedding.efficientnet_lite0_id; kept here so opening a project never imports torch).
+_LITE0_BY_ID = {"efficientnet-lite0": "efficientnet-lite0-avg", "efficientnet-lite0-gem": "efficientnet-lite0-gem"}
 _GRAPH_SETTINGS = geometry.GRAPH_SETTINGS     # the same dict (kept under its old name for callers)
 
 
@@ -71,6 +74,8 @@ class Project:
         self.annotator = annotator
         # A name (the network loads when a scan first needs it) or an object with the Extractor
         # protocol of core/embedding.py.
+        if isinstance(extractor, str) and extractor == DEFAULT_EXTRACTOR:
+            extractor = self._kept_pooling(store) or extractor
         self._extractor = None if isinstance(extractor, str) else extractor
         self.extractor_name = extractor if isinstance(extractor, str) else str(extractor.id)
         self._lock = lock
@@ -118,6 +123,14 @@ class Project:
                 st.close()
                 raise
         return cls(folder, st, annotator or _default_annotator(), extractor, lk)
+
+    @staticmethod
+    def _kept_pooling(store: Store) -> str | None:
+        """A project opened with the default extractor keeps the EfficientNet-Lite0 pooling its store
+        was scanned with (a change of the default never re-embeds a scanned folder); None for a new
+        store or another backbone."""
+        stored = store.get_setting("extractor_id")
+        return _LITE0_BY_ID.get(stored.partition(":")[0]) if stored else None
 
     @staticmethod
     def _hides_photos(store_dir: Path, folder: Path) -> bool:

@@ -229,3 +229,26 @@ def test_bad_names_are_refused():
         get_extractor("vgg-imaginary")
     with pytest.raises(ValueError, match="precision"):
         resolve_precision("fp8")
+
+
+def test_generalised_mean_pooling_is_its_own_extractor(classifier):
+    from core.embedding import EFFICIENTNET_LITE0, efficientnet_lite0_id
+
+    x = torch.randn(2, 3, 224, 224)
+    with torch.inference_mode():
+        m = classifier.feature_map(x)
+        gem = classifier.pooled_features(x, "gem")
+        avg = classifier.pooled_features(x, "avg")
+    p = efficientnet_lite.GEM_P
+    assert gem.shape == avg.shape == (2, efficientnet_lite.FEATURE_DIM)
+    assert torch.allclose(gem, m.clamp(min=1e-6).pow(p).mean((2, 3)).pow(1 / p), rtol=1e-4, atol=1e-5)
+    assert torch.allclose(avg, classifier.features(x))
+    assert (gem >= avg - 1e-5).all()            # a power mean is never below the average
+    with pytest.raises(ValueError, match="pooling"):
+        classifier.pooled_features(x, "max")
+    # The average keeps the id stores and caches were made with; another pooling never shares it.
+    ids = {efficientnet_lite0_id(p, "fp32") for p in EFFICIENTNET_LITE0.values()}
+    assert len(ids) == len(EFFICIENTNET_LITE0) and "efficientnet-lite0:imagenet:fp32" in ids
+    for name, pooling in EFFICIENTNET_LITE0.items():
+        ext = get_extractor(name, "fp32")
+        assert (ext.id, ext.name, ext.pooling, ext.dim) == (efficientnet_lite0_id(pooling, "fp32"), name, pooling, 1280)

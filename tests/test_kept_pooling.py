@@ -1,0 +1,33 @@
+"""A project opened with the default extractor keeps the EfficientNet-Lite0 pooling its store was
+scanned with, so a change of the default never re-embeds a scanned folder; no network is loaded."""
+from __future__ import annotations
+
+
+import pytest
+
+from core.project import _LITE0_BY_ID, DEFAULT_EXTRACTOR, Project
+
+
+@pytest.mark.parametrize("stored, name", [
+    (None, DEFAULT_EXTRACTOR),
+    ("efficientnet-lite0:imagenet:fp32", "efficientnet-lite0-avg"),
+    ("efficientnet-lite0:imagenet:bf16", "efficientnet-lite0-avg"),
+    ("efficientnet-lite0-gem:imagenet:fp32", "efficientnet-lite0-gem"),
+    ("torchvision-resnet18:IMAGENET1K_V1:fp32", DEFAULT_EXTRACTOR),
+])
+def test_default_extractor_keeps_the_stored_pooling(tmp_path, stored, name):
+    (tmp_path / "photos").mkdir()
+    with Project.open(tmp_path / "photos") as p:
+        if stored:
+            p.store.set_setting("extractor_id", stored)
+    with Project.open(tmp_path / "photos") as p:
+        assert p.extractor_name == name
+    with Project.open(tmp_path / "photos", extractor="resnet18") as p:
+        assert p.extractor_name == "resnet18"          # an explicit choice is never overridden
+
+
+def test_the_table_matches_the_extractor_ids():
+    from core.embedding import EFFICIENTNET_LITE0, efficientnet_lite0_id
+
+    for name, pooling in EFFICIENTNET_LITE0.items():
+        assert _LITE0_BY_ID[efficientnet_lite0_id(pooling, "fp32").partition(":")[0]] == name
