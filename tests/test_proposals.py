@@ -37,10 +37,9 @@ def test_split_of_identical_members_still_gives_two_parts():
     assert sorted(set(part.tolist())) == [0, 1]
 
 
-def test_groups_do_not_depend_on_the_order_of_label_names():
-    """Renaming labels (which permutes their indices) must not change which groups come first:
-    every label's candidates compete, not only the first labels in index order.
-    Data: scikit-learn's bundled digits, raw pixels, five seeded labels per class."""
+def _digits_five_labelled_per_class():
+    """Graph, true classes, state and label indices: 30 digits of each class, raw pixels, the first
+    five of each class labelled."""
     from core.neighbours import build_graph
 
     x, y = _digits(tuple(range(10)), (30,) * 10)
@@ -48,7 +47,14 @@ def test_groups_do_not_depend_on_the_order_of_label_names():
     state = np.zeros(len(y), np.int8)
     for c in range(10):
         state[np.nonzero(y == c)[0][:5]] = proposals.LABELLED
-    label_of = np.where(state == proposals.LABELLED, y, -1)
+    return g, y, state, np.where(state == proposals.LABELLED, y, -1)
+
+
+def test_groups_do_not_depend_on_the_order_of_label_names():
+    """Renaming labels (which permutes their indices) must not change which groups come first:
+    every label's candidates compete, not only the first labels in index order.
+    Data: scikit-learn's bundled digits, raw pixels, five seeded labels per class."""
+    g, y, state, label_of = _digits_five_labelled_per_class()
     perm = np.array([7, 3, 9, 0, 5, 1, 8, 2, 6, 4])          # label c is called perm[c]
     relabelled = np.where(label_of >= 0, perm[np.maximum(label_of, 0)], -1)
     for limit in (1, 3, 20):
@@ -66,14 +72,7 @@ def test_member_trimming_keeps_less_sure_photos_out_of_the_surer_group():
     any; the less sure ones come in groups of their own. Off (0), the groups are unchanged.
     Data: scikit-learn's bundled digits, raw pixels, five seeded labels per class; the classifier's
     probabilities are invented so each label has sure and less sure candidates."""
-    from core.neighbours import build_graph
-
-    x, y = _digits(tuple(range(10)), (30,) * 10)
-    g = build_graph(x.astype(np.float32), centre=False)
-    state = np.zeros(len(y), np.int8)
-    for c in range(10):
-        state[np.nonzero(y == c)[0][:5]] = proposals.LABELLED
-    label_of = np.where(state == proposals.LABELLED, y, -1)
+    g, y, state, label_of = _digits_five_labelled_per_class()
     rng = np.random.default_rng(0)
     sure = rng.uniform(0.6, 1.0, len(y))
     clf = np.full((len(y), 10), 0.0)
