@@ -338,7 +338,8 @@ def label_probabilities(graph: Graph, state: np.ndarray, label_of: np.ndarray, n
     if smoothed is not None:
         prob = with_classifier(prob, smoothed)
     if not_label is not None and not_label.any():
-        prob = prob.copy() if classifier is None else prob     # the propagation's result is shared
+        shared = smoothed is None and rows is None             # still the propagation's own (cached) array
+        prob = prob.copy() if shared else prob
         prob[:, :n_labels][not_label] = 0.0
         prob /= np.maximum(prob.sum(1, keepdims=True), 1e-12)
     return prob
