@@ -5,7 +5,7 @@ from __future__ import annotations
 import time
 
 from PySide6.QtCore import QEvent, QPointF, QStringListModel, Qt, Signal
-from PySide6.QtGui import QAction, QMouseEvent
+from PySide6.QtGui import QAction, QKeySequence, QMouseEvent
 from PySide6.QtWidgets import (QApplication, QCompleter, QFrame, QHBoxLayout, QLabel, QLineEdit, QListWidget,
                                QListWidgetItem, QPushButton, QToolButton, QVBoxLayout, QWidget,
                                QAbstractItemView, QSizePolicy)
@@ -115,13 +115,29 @@ class LabelField(QLineEdit):
         mods = event.modifiers() & ~Qt.KeyboardModifier.KeypadModifier
         return event.key() in self._RETURN and mods == Qt.KeyboardModifier.NoModifier
 
+    def _window_undo(self, event) -> bool:
+        """Ctrl+Z / Ctrl+Shift+Z with no typing of the field's own to undo or redo: the window's undo or
+        redo of the last decision (the field would take the key and do nothing; found driving the real
+        window: after "Type a label first", Ctrl+Z in the empty field undid nothing)."""
+        if event.matches(QKeySequence.StandardKey.Undo):
+            return not self.isUndoAvailable()
+        if event.matches(QKeySequence.StandardKey.Redo):
+            return not self.isRedoAvailable()
+        return False
+
     def event(self, event):
         if event.type() == QEvent.Type.ShortcutOverride and self._is_return(event):
             event.accept()  # Return is the field's: it arrives as a key press below, never as a shortcut
             return True
+        if event.type() == QEvent.Type.ShortcutOverride and self._window_undo(event):
+            event.ignore()  # not claimed: the window's shortcut fires
+            return False
         return super().event(event)
 
     def keyPressEvent(self, event):
+        if self._window_undo(event):
+            event.ignore()  # a window never made active gets it from here (MainWindow.keyPressEvent)
+            return
         if self._is_return(event):
             popup = self.completer().popup()
             if popup.isVisible():

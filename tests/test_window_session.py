@@ -707,3 +707,42 @@ def test_a_session_of_300_actions_on_2000_fashion_photos(qtbot, tmp_path, fashio
     assert set(r.label for r in by_path.values()) <= set(truth.values())
     assert all(r.label == truth[p] for p, r in by_path.items())   # the annotator took every wrong one out
     store.close()
+
+
+@pytest.mark.parametrize("active", [True, False])
+def test_ctrl_z_in_the_empty_label_field_undoes_the_last_decision(qtbot, window, demo, active):
+    """In the label field, Ctrl+Z first undoes the typing; with nothing typed to undo it undoes the last
+    decision, in an active window (the shortcut) and in one never made active (an X server without a
+    window manager, as test_keys_act_when_the_window_is_not_active sets it up)."""
+    from PySide6.QtWidgets import QWidget
+
+    w = window
+    open_and_wait(qtbot, w, demo)
+    store, fp = reader(demo)
+    field = w.group_page.label
+    g = w.current()
+    accept_typed(qtbot, w, "spring")
+    assert {label_of(store, fp, m) for m in g.members} == {("labelled", "spring")}
+    if not active:
+        other = QWidget()
+        qtbot.addWidget(other)
+        other.show()
+        other.activateWindow()
+        qtbot.waitUntil(lambda: QApplication.activeWindow() is other)
+        field.setFocus()
+        send = lambda k, mods=NO: QTest.keyClick(w.focusWidget(), k, mods)   # noqa: E731
+        send_text = lambda t: QTest.keyClicks(w.focusWidget(), t)             # noqa: E731
+    else:
+        focus(field)
+        send, send_text = press, type_text
+    send_text("bo")
+    send(Qt.Key.Key_Z, Qt.KeyboardModifier.ControlModifier)        # the typing goes first
+    settle(qtbot, w)
+    assert {label_of(store, fp, m) for m in g.members} == {("labelled", "spring")}
+    field.close_popup()
+    field.setText("")                                              # nothing typed left to undo
+    field.setFocus()
+    send(Qt.Key.Key_Z, Qt.KeyboardModifier.ControlModifier)
+    settle(qtbot, w)
+    assert {label_of(store, fp, m) for m in g.members} == {None}
+    store.close()
