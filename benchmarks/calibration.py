@@ -133,6 +133,7 @@ def _summary(rows: list[dict]) -> dict:
                table=calibration.reliability_table([r["trust"] for r in rows], pur, size))
     out["bin_gap"] = calibration.bin_gap(out["table"])
     out["floor"] = calibration.calibration_error([float(np.median(pur))] * len(pur), pur, size)
+    out["sampling_floor"] = calibration.sampling_floor(pur, size)
     lab = [r for r in rows if r["share"] is not None]
     if lab:
         s = [r["size"] for r in lab]
@@ -184,6 +185,8 @@ def print_result(name: str, res: dict) -> None:
               f"raw engine figure {r['raw_error']:.3f}")
         print(f"  per-bin gap (photo-weighted |bin trust - bin purity|): {r['bin_gap']:.3f}; "
               f"one figure for every group (the median purity) would score {r['floor']:.3f}")
+        print(f"  sampling floor (each group's exact expected purity would still miss by, binomial): "
+              f"{r['sampling_floor']:.3f}")
         if "label_groups" in r:
             print(f"  suggested label, |confidence - share carrying it| over {r['label_groups']} groups: "
                   f"calibrated {r['conf_error']:.3f}, raw {r['raw_conf_error']:.3f}")

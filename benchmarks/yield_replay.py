@@ -82,6 +82,7 @@ VARIANTS = {
     # The tool offering no split at all (the protocol's step 5 is "if the tool offers split"):
     # the instrumentation showed split parts as the costliest photos (--breakdown).
     "no-split": dict(relearn=True, split=False),
+    "group-128": dict(relearn=True, propose=proposals.Settings(max_group=128)),
     "c-10+group-128": dict(relearn=True, settings=relearning.Settings(classifier_c=10.0),
                            propose=proposals.Settings(max_group=128)),
 }

@@ -23,6 +23,19 @@ def test_error_and_table_are_photo_weighted():
     assert calibration.purity(["a", "b", "a", "a"]) == 0.75
 
 
+def test_sampling_floor_matches_simulated_groups():
+    # The floor is E|X / n - p| for X ~ Binomial(n, p); checked against groups drawn with numpy's
+    # binomial sampler (an independent path from scipy's pmf the function sums).
+    rng = np.random.default_rng(3)
+    sizes, purities = [13, 96, 40, 5], [0.85, 0.95, 1.0, 0.6]
+    drawn = [np.abs(rng.binomial(n, p, 200_000) / n - p).mean() for n, p in zip(sizes, purities)]
+    expected = np.sum(np.multiply(sizes, drawn)) / np.sum(sizes)
+    assert calibration.sampling_floor(purities, sizes) == pytest.approx(expected, abs=2e-3)
+    assert calibration.sampling_floor([1.0, 1.0], [10, 96]) == 0.0
+    # Small impure groups cannot meet the 0.05 goal even with a perfect figure.
+    assert calibration.sampling_floor([0.85], [13]) > 0.05
+
+
 def test_plain_words():
     assert plain_words(0.91) == "about 9 in 10 belong together"
     assert plain_words(0.99) == "nearly all belong together"
