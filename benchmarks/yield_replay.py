@@ -13,6 +13,8 @@ the product.
     python -m benchmarks.yield_replay --n 10000 --variants relearn    # one variant
     python -m benchmarks.yield_replay --n 10000 --variants relearn --breakdown   # where the actions go
     python -m benchmarks.yield_replay --n 10000 --extractor efficientnet-lite0-avg   # another embedding
+    python -m benchmarks.fashion --split train --n 60000 && \
+    python -m benchmarks.yield_replay --split train --offset 20000 --variants relearn   # another disjoint set of 10,000
 
 Prints yield@80, yield@100 and timings per variant, and writes the curves (CSV and PNG) and the
 per-sitting purity figures into --out (default out/yield/).
@@ -138,6 +140,9 @@ def main(argv=None) -> int:
     ap.add_argument("--sitting", type=int, default=100)
     ap.add_argument("--split", default="t10k", choices=["t10k", "train"],
                     help="Fashion-MNIST split (train: its first --n photos, a second data set to check settings on)")
+    ap.add_argument("--offset", type=int, default=0,
+                    help="skip this many photos of the split first: the training split holds six disjoint sets of "
+                         "10,000 (--split train --offset 10000, 20000, ...), to measure the spread between runs")
     ap.add_argument("--breakdown", action="store_true",
                     help="print where the actions up to 80 %% go (accepts, take-outs, typed labels, singles; by group kind and sitting)")
     ap.add_argument("--out", default=str(ROOT / "out" / "yield"))
@@ -145,7 +150,8 @@ def main(argv=None) -> int:
                     help="whose cached features (benchmarks.fashion --extractor), e.g. efficientnet-lite0-gem")
     args = ap.parse_args(argv)
     print("command: python -m benchmarks.yield_replay " + " ".join(sys.argv[1:] if argv is None else argv))
-    feats, labels = fashion_features(args.n, args.extractor, split=args.split)
+    feats, labels = fashion_features(args.offset + args.n, args.extractor, split=args.split)
+    feats, labels = feats[args.offset:], labels[args.offset:]
     classes = [CLASS_NAMES[int(c)] for c in labels]
     runs, breakdowns = [], {}
     for v in args.variants.split(","):
@@ -170,7 +176,7 @@ def main(argv=None) -> int:
     runs.append(one_at_a_time(args.n))
     for r in runs[-2:]:
         print(json.dumps(r.summary()))
-    tag = f"replay-fashion-{args.split}-{args.n}" + ("" if args.extractor == "efficientnet-lite0" else f"-{args.extractor}")
+    tag = f"replay-fashion-{args.split}-{args.n}" + (f"-from{args.offset}" if args.offset else "") + ("" if args.extractor == "efficientnet-lite0" else f"-{args.extractor}")
     write_outputs(runs, Path(args.out), tag)
     with open(Path(args.out) / f"{tag}-sittings.json", "w") as f:
         json.dump({r.name: r.sittings for r in runs if r.sittings}, f, indent=1)
