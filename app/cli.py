@@ -21,6 +21,7 @@ import time
 
 from app.graph_progress import GraphInterrupted, prepare_on_terminal
 from core.export import WHY_LINKS, ExportError, folder_export_mode
+from core.label_names import shown_suggestion
 from core.project import STORE_DIR, FolderInUse, Project, ProjectError
 from core.store import StoreError
 
@@ -199,7 +200,9 @@ def cmd_propose(args):
             _print([dict(dataclasses.asdict(g), splittable=g.splittable) for g in groups], True)
             return
         for g in groups:
-            sug = f"  suggests '{g.suggested_label}' ({g.confidence:.2f})" if g.suggested_label else ""
+            # As the window: no suggestion on a new-area group or below the floor a suggestion is shown from.
+            shown = shown_suggestion(g.kind, g.suggested_label, g.confidence)
+            sug = f"  suggests '{shown}' ({g.confidence:.2f})" if shown else ""
             print(f"group {g.id}: {len(g.members)} photos, trust {g.trust:.2f}, {g.kind}{sug}")
             for m in g.members[: args.show]:
                 print(f"    {m}")
