@@ -210,6 +210,8 @@ class MainWindow(QMainWindow):
         self._wire_browse()
         self._wire_graph()
         self.stack.currentChanged.connect(lambda _: self._sync_actions())
+        for field in self._label_fields():      # a Ctrl key an action owns is the window's, not the field's
+            field.window_keys = lambda key, mods: self._shortcut(key, mods) is not None
         for lst in (self.side.labels, self.review_page.labels):   # right-click a label: Rename…
             lst.setContextMenuPolicy(Qt.ContextMenuPolicy.CustomContextMenu)
             lst.customContextMenuRequested.connect(lambda pos, w=lst: self._label_menu(w, pos))
@@ -591,9 +593,11 @@ class MainWindow(QMainWindow):
                 return
         super().keyPressEvent(event)
 
+    def _label_fields(self):
+        return (self.group_page.label, self.review_page.new_label, self.mistakes_page.fix, self.browse_page.new_label)
+
     def _is_own_popup(self, win) -> bool:
-        return any(win is f.completer().popup() for f in (self.group_page.label, self.review_page.new_label,
-                                                          self.mistakes_page.fix, self.browse_page.new_label))
+        return any(win is f.completer().popup() for f in self._label_fields())
 
     def _deliver_held(self) -> None:
         """Deliver the held keys as a window system does: ShortcutOverride to the focus widget (or the

@@ -57,7 +57,12 @@ class LabelField(QLineEdit):
     field claims them at ShortcutOverride, so the accept does not depend on which window (the field's,
     or the completion popup's) a window system sends the key to. With the popup open, Return first
     takes the highlighted completion (if one is highlighted), then asks to accept. The popup is closed
-    whenever the field is reset or loses focus, so it never swallows the next key or click."""
+    whenever the field is reset or loses focus, so it never swallows the next key or click.
+
+    A Ctrl key one of the window's actions owns is the window's (`window_keys`, set by the window), even
+    where the platform binds it to an editing key of the field: on X11, Ctrl+D deletes a character,
+    Ctrl+K the rest of the line, Ctrl+E goes to the end and Ctrl+Shift+A deselects, so with the keyboard
+    in the field, split, keep-only, export and set-aside did nothing (found driving the real window)."""
 
     escaped = Signal()
     accept_requested = Signal()
@@ -66,6 +71,7 @@ class LabelField(QLineEdit):
 
     def __init__(self, parent=None):
         super().__init__(parent)
+        self.window_keys = None          # callable(key, modifiers) -> bool: a key one of the window's actions owns
         self.names = QStringListModel()
         comp = QCompleter(self.names, self)
         comp.setCaseSensitivity(Qt.CaseSensitivity.CaseInsensitive)
@@ -115,27 +121,29 @@ class LabelField(QLineEdit):
         mods = event.modifiers() & ~Qt.KeyboardModifier.KeypadModifier
         return event.key() in self._RETURN and mods == Qt.KeyboardModifier.NoModifier
 
-    def _window_undo(self, event) -> bool:
-        """Ctrl+Z / Ctrl+Shift+Z with no typing of the field's own to undo or redo: the window's undo or
-        redo of the last decision (the field would take the key and do nothing; found driving the real
-        window: after "Type a label first", Ctrl+Z in the empty field undid nothing)."""
+    def _window_key(self, event) -> bool:
+        """Whether the key goes to the window instead of the field. Ctrl+Z / Ctrl+Shift+Z only with no
+        typing of the field's own to undo or redo (then the window's undo or redo of the last decision:
+        after "Type a label first", Ctrl+Z in the empty field undid nothing); any other Ctrl key a window
+        action owns always. Keys without Ctrl (letters, Space, Return, arrows) stay the field's."""
         if event.matches(QKeySequence.StandardKey.Undo):
             return not self.isUndoAvailable()
         if event.matches(QKeySequence.StandardKey.Redo):
             return not self.isRedoAvailable()
-        return False
+        return bool(event.modifiers() & Qt.KeyboardModifier.ControlModifier) and self.window_keys is not None \
+            and self.window_keys(event.key(), event.modifiers())
 
     def event(self, event):
         if event.type() == QEvent.Type.ShortcutOverride and self._is_return(event):
             event.accept()  # Return is the field's: it arrives as a key press below, never as a shortcut
             return True
-        if event.type() == QEvent.Type.ShortcutOverride and self._window_undo(event):
+        if event.type() == QEvent.Type.ShortcutOverride and self._window_key(event):
             event.ignore()  # not claimed: the window's shortcut fires
             return False
         return super().event(event)
 
     def keyPressEvent(self, event):
-        if self._window_undo(event):
+        if self._window_key(event):
             event.ignore()  # a window never made active gets it from here (MainWindow.keyPressEvent)
             return
         if self._is_return(event):

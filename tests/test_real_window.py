@@ -13,7 +13,8 @@ that label and not the one taken out. Then press Return on the next group whose 
 (preselected in the field) is right; groups on the way get their true class typed (the demo
 generator's truth file) and are checked the same way. Then, in a 1024x700 window, a group that does
 not fit: the first Return asks about the photos not yet on screen and records nothing, the second
-accepts them all. Each Return is pressed once the screen has settled (thumbnails drawn), as a
+accepts them all. Last, with text typed in the label field, Ctrl+D must split the group (X11 binds
+Ctrl+D to the field's delete-a-character). Each Return is pressed once the screen has settled (thumbnails drawn), as a
 careful person would.
 The store is read with Python's sqlite3 module in read-only mode, never through the window's own
 account of what it did.
@@ -163,6 +164,9 @@ class Session:
         rows = self._query("SELECT group_id, label, photos FROM decisions WHERE kind='accept' ORDER BY id")
         return [dict(group=g, label=lab, photos=json.loads(p)) for g, lab, p in rows]
 
+    def splits(self) -> list[int]:
+        return [g for (g,) in self._query("SELECT group_id FROM decisions WHERE kind='split' ORDER BY id")]
+
     def labels_of(self, paths: list[str]) -> dict[str, str | None]:
         rows = self._query("SELECT p.path, l.label FROM photos p LEFT JOIN labels l ON l.fingerprint = p.fingerprint")
         known = dict(rows)
@@ -275,6 +279,27 @@ def test_type_a_label_and_press_return_in_a_real_window(scanned_demo, tmp_path, 
             if asked:
                 break
         assert asked, "no group in 8 at 1024x700 asked about photos not on screen"
+
+        # Ctrl+D splits with the keyboard in the label field, text typed: on X11 the field's own binding
+        # for Ctrl+D (delete a character) must not take the window's split key.
+        for _ in range(8):
+            group = next_group(group["id"])
+            if len(group["members"]) >= 8:
+                break
+            label = true_label(group)
+            if group["suggested"] != label:
+                s.xdotool("type", "--delay", "60", label)
+            _return(s, group, label, done, f"before split {done + 1}")
+            done += 1
+        else:
+            pytest.fail("no group of 8 photos or more came up in 8 groups")
+        s.xdotool("type", "--delay", "60", "wr")     # the first letter moves the keyboard to the label field
+        s.settled()                                  # ... and it is there, holding "wr"
+        s.xdotool("key", "Left", "ctrl+d")           # mid-text, so Ctrl+D would delete a character
+        s.wait(f"Ctrl+D in the label field to split group {group['id']} — no split reached the store",
+               lambda: group["id"] in s.splits(), 20)
+        s.settled()
+        s.shot("split-from-label-field")
         assert s.proc.poll() is None, f"the app exited:\n{s.log_tail()}"
     finally:
         s.close()
