@@ -67,6 +67,7 @@ VARIANTS = {
     "unbalanced": dict(relearn=True, settings=relearning.Settings(classifier_balanced=False)),
     "no-rejections": dict(relearn=True, settings=relearning.Settings(classifier_rejections=False)),
     "rejections-weight-1": dict(relearn=True, settings=relearning.Settings(classifier_rejection_weight=1.0)),
+    "rejections-weight-10": dict(relearn=True, settings=relearning.Settings(classifier_rejection_weight=10.0)),
     "no-smoothing": dict(relearn=True, propose=proposals.Settings(smoothing=0.0)),
     # A stronger label classifier on the same features (issue 19): less L2 (C 10), or an MLP on top.
     "c-3": dict(relearn=True, settings=relearning.Settings(classifier_c=3.0)),
