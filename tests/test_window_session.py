@@ -147,6 +147,19 @@ def reader(folder: Path):
     return store, fp
 
 
+def another_window_active(qtbot):
+    """Another top-level window takes the activation: Qt's window shortcuts no longer match the main
+    window's keys, as under an X server that never made it active."""
+    from PySide6.QtWidgets import QWidget
+
+    other = QWidget()
+    qtbot.addWidget(other)
+    other.show()
+    other.activateWindow()
+    qtbot.waitUntil(lambda: QApplication.activeWindow() is other)
+    return other
+
+
 def label_of(store, fp, path):
     row = store.labels().get(fp[path])
     return None if row is None else (row.state, row.label)
@@ -183,18 +196,12 @@ def test_keys_act_when_the_window_is_not_active(qtbot, window, demo):
     grid's Space, Return and a decision's shortcut must still act: another window is made active here,
     and keys go through QTest to this window's focus widget (QTest tries the shortcut map first, as X
     delivery does, and it finds no match for an inactive window)."""
-    from PySide6.QtWidgets import QWidget
-
     w = window
     open_and_wait(qtbot, w, demo)
     store, fp = reader(demo)
     grid = w.group_page.grid
     qtbot.waitUntil(lambda: not grid.unseen_paths(), timeout=20_000)
-    other = QWidget()
-    qtbot.addWidget(other)
-    other.show()
-    other.activateWindow()
-    qtbot.waitUntil(lambda: QApplication.activeWindow() is other)
+    other = another_window_active(qtbot)
     grid.setFocus()
 
     def key(k, mods=NO):
@@ -714,8 +721,6 @@ def test_ctrl_z_in_the_empty_label_field_undoes_the_last_decision(qtbot, window,
     """In the label field, Ctrl+Z first undoes the typing; with nothing typed to undo it undoes the last
     decision, in an active window (the shortcut) and in one never made active (an X server without a
     window manager, as test_keys_act_when_the_window_is_not_active sets it up)."""
-    from PySide6.QtWidgets import QWidget
-
     w = window
     open_and_wait(qtbot, w, demo)
     store, fp = reader(demo)
@@ -724,11 +729,7 @@ def test_ctrl_z_in_the_empty_label_field_undoes_the_last_decision(qtbot, window,
     accept_typed(qtbot, w, "spring")
     assert {label_of(store, fp, m) for m in g.members} == {("labelled", "spring")}
     if not active:
-        other = QWidget()
-        qtbot.addWidget(other)
-        other.show()
-        other.activateWindow()
-        qtbot.waitUntil(lambda: QApplication.activeWindow() is other)
+        another_window_active(qtbot)
         field.setFocus()
         send = lambda k, mods=NO: QTest.keyClick(w.focusWidget(), k, mods)   # noqa: E731
         send_text = lambda t: QTest.keyClicks(w.focusWidget(), t)             # noqa: E731
