@@ -87,8 +87,7 @@ class Tuner:
 
     def _pooled(self, a: torch.Tensor) -> torch.Tensor:
         m = self.model
-        x = F.relu6(m._bn1(m._conv_head(m._blocks[LAST](a))))
-        return x.clamp(min=1e-6).pow(el.GEM_P).mean((2, 3)).pow(1.0 / el.GEM_P)
+        return el.gem(F.relu6(m._bn1(m._conv_head(m._blocks[LAST](a)))))
 
     def train(self, rows: np.ndarray, y: np.ndarray, classes: int, steps: int, batch: int = 64) -> None:
         if self.lin is None or self.lin[0].shape[0] != classes:

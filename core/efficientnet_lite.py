@@ -126,11 +126,17 @@ class EfficientNetLite0(nn.Module):
             return self.features(x)
         if pooling != "gem":
             raise ValueError(f"pooling must be one of {POOLINGS}, not {pooling!r}")
-        m = self.feature_map(x).float().clamp(min=1e-6)  # bf16 models pool in float32
-        return m.pow(GEM_P).mean((2, 3)).pow(1.0 / GEM_P)
+        return gem(self.feature_map(x))
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         return self._fc(self._dropout(self.features(x)))
+
+
+def gem(feature_map: torch.Tensor) -> torch.Tensor:
+    """Generalised mean with exponent GEM_P over the positions of each channel, (B, C, H, W) -> (B, C);
+    bf16 maps pool in float32."""
+    m = feature_map.float().clamp(min=1e-6)
+    return m.pow(GEM_P).mean((2, 3)).pow(1.0 / GEM_P)
 
 
 def weights_path() -> Path:
