@@ -22,7 +22,7 @@ import time
 from app.graph_progress import GraphInterrupted, prepare_on_terminal
 from core.export import WHY_LINKS, ExportError, folder_export_mode
 from core.label_names import shown_suggestion
-from core.project import STORE_DIR, FolderInUse, Project, ProjectError
+from core.project import DEFAULT_EXTRACTOR, NETWORKS, STORE_DIR, FolderInUse, Project, ProjectError
 from core.store import StoreError
 
 DEBUG_ENV = "KINFOLD_DEBUG"
@@ -86,7 +86,7 @@ def _open(args, lock: bool = True) -> Project:
     while True:
         try:
             return Project.open(args.folder, store=args.store, annotator=getattr(args, "annotator", None),
-                                lock=lock)
+                                lock=lock, extractor=NETWORKS.get(getattr(args, "network", None), DEFAULT_EXTRACTOR))
         except FolderInUse as exc:
             left = deadline - time.monotonic()
             if wait is None:
@@ -653,6 +653,10 @@ def build_parser() -> argparse.ArgumentParser:
                        help="embed on the workers of this Dask scheduler (see README: scanning on a cluster)")
     where.add_argument("--workers", type=_whole(1, 256, "--workers"), metavar="N",
                        help="embed in N local worker processes (a Dask LocalCluster on 127.0.0.1)")
+    s.add_argument("--network", choices=sorted(NETWORKS), default=None,
+                   help="the network that embeds the photos: lite0 (EfficientNet-Lite0, what a new folder gets) or "
+                        "lite2 (EfficientNet-Lite2: about twice the time per photo; README 'A larger network'). A "
+                        "folder keeps the network it was scanned with; naming the other one embeds every photo again")
     s.add_argument("--chunk", type=_whole(1, 100_000, "--chunk"), default=None,
                    help="photos per cluster task (default 32)")
     s.add_argument("--transfer", choices=["auto", "path", "bytes"], default="auto",

@@ -78,12 +78,12 @@ def fashion_features(n: int | None = None, extractor_name: str = "efficientnet-l
                      split: str = "t10k", precision: str = "auto") -> tuple[np.ndarray, np.ndarray]:
     """(n, dim) float32 L2-normalised features and (n,) labels, cached as .npy. A cache of
     the whole split also serves any smaller n (its first n rows)."""
-    from core.embedding import (DEFAULT_EXTRACTOR, DEFAULT_POOLING, EFFICIENTNET_LITE0, efficientnet_lite0_id,
+    from core.embedding import (DEFAULT_EXTRACTOR, DEFAULT_POOLING, EFFICIENTNET_LITE0, efficientnet_lite_id,
                                 embed_images, get_extractor)
 
     n = SPLIT_SIZE[split] if n is None else int(n)
     if extractor_name == DEFAULT_EXTRACTOR or extractor_name in EFFICIENTNET_LITE0:  # id known without the network
-        extractor_id = efficientnet_lite0_id(EFFICIENTNET_LITE0.get(extractor_name, DEFAULT_POOLING), precision)
+        extractor_id = efficientnet_lite_id(EFFICIENTNET_LITE0.get(extractor_name, DEFAULT_POOLING), precision)
         extractor = None
     else:
         extractor = get_extractor(extractor_name, precision)

@@ -100,9 +100,9 @@ def parts(name: str, n: int) -> tuple[dict[str, np.ndarray], np.ndarray, float]:
     import torch
     from PIL import Image
 
-    from core.embedding import EfficientNetLite0Extractor
+    from core.embedding import EfficientNetLiteExtractor
 
-    ext = EfficientNetLite0Extractor("fp32")
+    ext = EfficientNetLiteExtractor("fp32")
     images, y = _images(name, n)
     acc: dict[str, list] = {}
     spent = 0.0

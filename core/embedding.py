@@ -34,6 +34,10 @@ DEFAULT_EXTRACTOR = "efficientnet-lite0"
 # pooling its store holds (core/project.py `_kept_pooling`), so it is never re-embedded by surprise.
 EFFICIENTNET_LITE0 = {"efficientnet-lite0-avg": "avg", "efficientnet-lite0-gem": "gem"}
 DEFAULT_POOLING = "gem"
+# The larger member of the family, EfficientNet-Lite2 (260 x 260 input, about twice the network time):
+# opt-in, for photos of real objects (README "A larger network"). Its id is its name plus the weights
+# and precision, like Lite0's; a project scanned with it keeps it (core/project.py `_kept_pooling`).
+EFFICIENTNET_LITE2 = {"efficientnet-lite2-gem": "gem"}
 # Torchvision architectures offered; the short names map to torchvision's builder names.
 TORCHVISION_MODELS = {
     "resnet18": "resnet18",
@@ -128,35 +132,36 @@ class _TorchExtractor:
             return self._pooled(x).float().numpy().astype(np.float32, copy=False)
 
 
-def efficientnet_lite0_id(pooling: str, precision: str) -> str:
-    """The extractor id of EfficientNet-Lite0 with `pooling`, without loading the network. The
-    average keeps the id it always had, so stores and caches made with it stay valid; the
-    generalised mean is another id, so its vectors never mix with the average's."""
+def efficientnet_lite_id(pooling: str, precision: str, variant: str = "lite0") -> str:
+    """The extractor id of EfficientNet-Lite0 (or Lite2) with `pooling`, without loading the network.
+    Lite0's average keeps the id it always had, so stores and caches made with it stay valid; every
+    other network or pooling is another id, so their vectors never mix."""
     precision = resolve_precision(precision)
-    if pooling == "avg":
+    if pooling not in efficientnet_lite.POOLINGS:
+        raise ValueError(f"pooling must be one of {efficientnet_lite.POOLINGS}, not {pooling!r}")
+    if variant == "lite0" and pooling == "avg":
         return f"efficientnet-lite0:imagenet:{precision}"
-    if pooling == "gem":
-        return f"efficientnet-lite0-gem:imagenet:{precision}"
-    raise ValueError(f"pooling must be one of {efficientnet_lite.POOLINGS}, not {pooling!r}")
+    return f"efficientnet-{variant}-{pooling}:imagenet:{precision}"
 
 
-class EfficientNetLite0Extractor(_TorchExtractor):
-    """EfficientNet-Lite0 ImageNet weights, 1280-d features of the last stage pooled by the
-    global average (``pooling="avg"``) or the generalised mean, p = 3 (``"gem"``).
+class EfficientNetLiteExtractor(_TorchExtractor):
+    """EfficientNet-Lite0 (or, with ``variant="lite2"``, Lite2) ImageNet weights, 1280-d features of
+    the last stage pooled by the global average (``pooling="avg"``) or the generalised mean, p = 3
+    (``"gem"``).
 
-    Preprocessing: resize the short side to 224 (bilinear, antialiased by Pillow) and take
-    the central 224 x 224 square, scaled as (x - 127) / 128."""
+    Preprocessing: resize the short side to the network's input side (224; Lite2 260; bilinear,
+    antialiased by Pillow) and take the central square, scaled as (x - 127) / 128."""
 
     dim = efficientnet_lite.FEATURE_DIM
-    input_size = efficientnet_lite.INPUT_SIZE
-    decode_side = efficientnet_lite.INPUT_SIZE
 
-    def __init__(self, precision: str = "auto", pooling: str | None = None):
+    def __init__(self, precision: str = "auto", pooling: str | None = None, variant: str = "lite0"):
         self.pooling = pooling or DEFAULT_POOLING
-        self.id = efficientnet_lite0_id(self.pooling, precision)
+        self.id = efficientnet_lite_id(self.pooling, precision, variant)
         # The name that builds this extractor again (a Dask worker is told it).
-        self.name = next(n for n, p in EFFICIENTNET_LITE0.items() if p == self.pooling)
-        network = efficientnet_lite.fuse_batchnorm(efficientnet_lite.load_efficientnet_lite0())
+        names = EFFICIENTNET_LITE0 if variant == "lite0" else EFFICIENTNET_LITE2
+        self.name = next(n for n, p in names.items() if p == self.pooling)
+        self.input_size = self.decode_side = efficientnet_lite.VARIANTS[variant][2]
+        network = efficientnet_lite.fuse_batchnorm(efficientnet_lite.load_efficientnet_lite(variant))
         super().__init__(network, precision)
 
     def _pooled(self, x: torch.Tensor) -> torch.Tensor:
@@ -239,12 +244,15 @@ def _drop_classifier(model: nn.Module) -> int:
 
 def get_extractor(name: str = DEFAULT_EXTRACTOR, precision: str = "auto") -> Extractor:
     if name == DEFAULT_EXTRACTOR:
-        return EfficientNetLite0Extractor(precision)
+        return EfficientNetLiteExtractor(precision)
     if name in EFFICIENTNET_LITE0:
-        return EfficientNetLite0Extractor(precision, EFFICIENTNET_LITE0[name])
+        return EfficientNetLiteExtractor(precision, EFFICIENTNET_LITE0[name])
+    if name in EFFICIENTNET_LITE2:
+        return EfficientNetLiteExtractor(precision, EFFICIENTNET_LITE2[name], "lite2")
     if name in TORCHVISION_MODELS:
         return TorchvisionExtractor(name, precision)
-    choices = [DEFAULT_EXTRACTOR, *sorted(EFFICIENTNET_LITE0), *sorted(TORCHVISION_MODELS)]
+    choices = [DEFAULT_EXTRACTOR, *sorted(EFFICIENTNET_LITE0), *sorted(EFFICIENTNET_LITE2),
+               *sorted(TORCHVISION_MODELS)]
     raise ValueError(f"unknown extractor {name!r}; choose from {choices}")
 
 

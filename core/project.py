@@ -39,9 +39,13 @@ Cancel = Callable[[], bool]
 
 STORE_DIR = ".kinfold"
 DEFAULT_EXTRACTOR = "efficientnet-lite0"
-# The stored id's first part -> the name of the built-in EfficientNet-Lite0 pooling it was made with
-# (core.embedding.efficientnet_lite0_id; kept here so opening a project never imports torch).
-_LITE0_BY_ID = {"efficientnet-lite0": "efficientnet-lite0-avg", "efficientnet-lite0-gem": "efficientnet-lite0-gem"}
+# The stored id's first part -> the name of the built-in EfficientNet-Lite network and pooling it was
+# made with (core.embedding.efficientnet_lite_id, EFFICIENTNET_LITE2; kept here so opening a project
+# never imports torch).
+# `kinfold scan --network`: the built-in networks by short name (with the generalised-mean pooling).
+NETWORKS = {"lite0": "efficientnet-lite0-gem", "lite2": "efficientnet-lite2-gem"}
+_LITE_BY_ID = {"efficientnet-lite0": "efficientnet-lite0-avg", "efficientnet-lite0-gem": "efficientnet-lite0-gem",
+                "efficientnet-lite2-gem": "efficientnet-lite2-gem"}
 _GRAPH_SETTINGS = geometry.GRAPH_SETTINGS     # the same dict (kept under its old name for callers)
 
 
@@ -126,11 +130,11 @@ class Project:
 
     @staticmethod
     def _kept_pooling(store: Store) -> str | None:
-        """A project opened with the default extractor keeps the EfficientNet-Lite0 pooling its store
-        was scanned with (a change of the default never re-embeds a scanned folder); None for a new
-        store or another backbone."""
+        """A project opened with the default extractor keeps the built-in EfficientNet-Lite network and
+        pooling its store was scanned with (a change of the default never re-embeds a scanned folder,
+        a Lite2 project stays Lite2); None for a new store or another backbone."""
         stored = store.get_setting("extractor_id")
-        return _LITE0_BY_ID.get(stored.partition(":")[0]) if stored else None
+        return _LITE_BY_ID.get(stored.partition(":")[0]) if stored else None
 
     @staticmethod
     def _hides_photos(store_dir: Path, folder: Path) -> bool:

@@ -54,6 +54,11 @@ def scan(project, progress=None, cancel=None, cluster=None, **cluster_options) -
     paths_of: dict[str, list[str]] = {}
     if not cancelled:  # a cancelled scan does not wait for the network to load
         extractor = project.extractor()
+        stored = project.store.get_setting("extractor_id")
+        if stored is not None and stored.rpartition(":")[0] != extractor.id.rpartition(":")[0]:
+            # Another network or pooling (not just another precision): the relearned classifier and
+            # adapted embedding were fitted on the old vectors, so the plain embedding takes over.
+            project.store.activate_relearn_version(None)
         project.store.set_setting("extractor_id", extractor.id)
         done_fps = project.store.embedded_fingerprints(extractor.id)
         for r in cat.photos:

@@ -322,3 +322,27 @@ def test_stats_text_json_and_csv(folder, tmp_path):
     kinfold("stats", folder, "--csv", target, "--overwrite")
     line = one_line(kinfold("stats", folder, "--csv", folder / "stats.csv", ok=False))
     assert "inside the photo folder" in line and not (folder / "stats.csv").exists()
+
+
+# ---------------------------------------------------------------------------- scan --network
+def test_scan_with_the_larger_network_keeps_it_and_sets_the_old_relearning_aside(folder):
+    _label_by_name(folder, NAMES[:2])
+    with Project.open(folder) as p:
+        p.relearn()                                   # a classifier fitted on Lite0's vectors
+        assert p.store.active_relearn_version() is not None
+        assert p.extractor_id.startswith("efficientnet-lite0-gem:")
+    rep = json.loads(kinfold("scan", folder, "--network", "lite2", "--json").stdout)
+    assert rep["embedded"] == 36                      # every photo embedded again by the other network
+    with Project.open(folder) as p:
+        assert p.extractor_id.startswith("efficientnet-lite2-gem:")
+        assert p.store.active_relearn_version() is None        # not applied to Lite2's vectors
+        assert p.status().labelled == 24                        # the labels stay
+        assert p.features().shape == (36, 1280)
+        # Each photo's nearest other photo comes from the same scikit-image sample photo.
+        near = p.graph().idx[:, 0]
+        src = [x.split("_")[0] for x in p.photos()]
+        assert all(src[i] == src[j] for i, j in enumerate(near))
+    # A later scan without --network keeps Lite2: nothing is embedded again.
+    assert json.loads(kinfold("scan", folder, "--json").stdout)["embedded"] == 0
+    bad = kinfold("scan", folder, "--network", "lite9", ok=False)
+    assert bad.returncode == 2 and "invalid choice" in bad.stderr and "Traceback" not in bad.stderr

