@@ -50,6 +50,9 @@ LOOKAHEAD = 6          # groups asked for at a time: the current one and what th
 MAX_RECENT = 8
 MAX_HELD_KEYS = 200    # type-ahead while a decision is in flight; more than this is refused
 MISTAKES_LIMIT = 200   # likely mistakes listed at a time (the ranking is redone when the page opens)
+# What the status bar says when an unavailable action's key is pressed (others: "<action> is not available here").
+UNAVAILABLE = {"split": f"Split works on groups of {MIN_SPLIT} photos or more",
+               "undo": "Nothing to undo", "redo": "Nothing to redo: redo follows an undo"}
 _ENGINE_ERRORS = (ProjectError, StoreError, OSError, ValueError)
 _KEY_EVENTS = (QEvent.Type.KeyPress, QEvent.Type.KeyRelease, QEvent.Type.ShortcutOverride)
 # Presses only: a release that ends a drag begun before (a splitter, a scroll bar) must still arrive.
@@ -210,8 +213,10 @@ class MainWindow(QMainWindow):
         self._wire_browse()
         self._wire_graph()
         self.stack.currentChanged.connect(lambda _: self._sync_actions())
-        for field in self._label_fields():      # a Ctrl key an action owns is the window's, not the field's
-            field.window_keys = lambda key, mods: self._shortcut(key, mods) is not None
+        # A Ctrl key an action owns is the window's, not the field's, also while the action is unavailable
+        # (Ctrl+D on a small group must not delete a letter of the label: X11 binds it to Delete).
+        for field in self._label_fields():
+            field.window_keys = lambda key, mods: self._shortcut(key, mods, enabled_only=False) is not None
         for lst in (self.side.labels, self.review_page.labels):   # right-click a label: Rename…
             lst.setContextMenuPolicy(Qt.ContextMenuPolicy.CustomContextMenu)
             lst.customContextMenuRequested.connect(lambda pos, w=lst: self._label_menu(w, pos))
@@ -591,6 +596,12 @@ class MainWindow(QMainWindow):
                 event.accept()
                 action.trigger()
                 return
+        unavailable = self._shortcut(event.key(), event.modifiers(), enabled_only=False)
+        if unavailable is not None and not unavailable.isEnabled():
+            event.accept()
+            self.statusBar().showMessage(UNAVAILABLE.get(next(k for k, a in self.actions.items() if a is unavailable),
+                                                         f"{unavailable.text()} is not available here"))
+            return
         super().keyPressEvent(event)
 
     def _label_fields(self):
@@ -635,11 +646,11 @@ class MainWindow(QMainWindow):
         action = self._shortcut(key, mods)
         return action is not None and any(action is self.actions[k] for k in self._DECIDING)
 
-    def _shortcut(self, key, mods) -> QAction | None:
+    def _shortcut(self, key, mods, enabled_only: bool = True) -> QAction | None:
         for m in (mods, mods & ~Qt.KeyboardModifier.KeypadModifier):  # as Qt's shortcut map tries them
             seq = QKeySequence(QKeyCombination(m, Qt.Key(key)))
             for a in self.actions.values():
-                if a.isEnabled() and a.isVisible() and any(s.matches(seq) == QKeySequence.SequenceMatch.ExactMatch
+                if (a.isEnabled() or not enabled_only) and a.isVisible() and any(s.matches(seq) == QKeySequence.SequenceMatch.ExactMatch
                                                            for s in a.shortcuts()):
                     return a
         return None

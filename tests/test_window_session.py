@@ -747,3 +747,29 @@ def test_ctrl_z_in_the_empty_label_field_undoes_the_last_decision(qtbot, window,
     settle(qtbot, w)
     assert {label_of(store, fp, m) for m in g.members} == {None}
     store.close()
+
+
+def test_an_unavailable_actions_key_in_the_label_field_says_why_and_keeps_the_text(qtbot, window, demo):
+    """A Ctrl key a window action owns stays the window's while the action is unavailable: on X11 a line
+    edit binds Ctrl+D to delete a character, and Ctrl+D on a group too small to split deleted a letter of
+    the typed label. Offscreen Qt binds nothing to Ctrl+D, so here the window's answer in the status bar
+    is what shows the key reached the window (tests/test_real_window.py presses it under a real X server)."""
+    from core.proposals import MIN_SPLIT
+
+    w = window
+    open_and_wait(qtbot, w, demo)
+    for _ in range(80):                                  # leave groups for later until one is too small to split
+        if not w.current().splittable:
+            break
+        focus(w.group_page.grid)
+        press(Qt.Key.Key_L, Qt.KeyboardModifier.ControlModifier)
+        settle(qtbot, w)
+    g = w.current()
+    assert not g.splittable and len(g.members) < MIN_SPLIT and not w.actions["split"].isEnabled()
+    field = w.group_page.label
+    focus(field)
+    field.setText("wr")
+    press(Qt.Key.Key_Left)
+    press(Qt.Key.Key_D, Qt.KeyboardModifier.ControlModifier)
+    assert field.text() == "wr" and w.current() is g
+    assert w.statusBar().currentMessage() == f"Split works on groups of {MIN_SPLIT} photos or more"
