@@ -86,6 +86,10 @@ VARIANTS = {
     # the instrumentation showed split parts as the costliest photos (--breakdown).
     "no-split": dict(relearn=True, split=False),
     "group-128": dict(relearn=True, propose=proposals.Settings(max_group=128)),
+    # Whitened classifier input (relearning.whitening): k principal components at unit variance.
+    "whiten-128": dict(relearn=True, settings=relearning.Settings(classifier_whiten=128)),
+    "whiten-128+c-10": dict(relearn=True, settings=relearning.Settings(classifier_whiten=128, classifier_c=10.0)),
+    "whiten-256": dict(relearn=True, settings=relearning.Settings(classifier_whiten=256)),
     "c-10+group-128": dict(relearn=True, settings=relearning.Settings(classifier_c=10.0),
                            propose=proposals.Settings(max_group=128)),
 }

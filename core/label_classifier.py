@@ -15,13 +15,14 @@ from sklearn.base import BaseEstimator, ClassifierMixin
 
 class LabelClassifier(ClassifierMixin, BaseEstimator):
     def __init__(self, c: float = 1.0, max_iter: int = 200, balanced: bool = True, rejection_weight: float = 3.0,
-                 hidden: int = 0, hidden_steps: int = 80):
+                 hidden: int = 0, hidden_steps: int = 80, whiten: int = 0):
         self.c = c
         self.max_iter = max_iter
         self.balanced = balanced
         self.rejection_weight = rejection_weight
         self.hidden = hidden
         self.hidden_steps = hidden_steps
+        self.whiten = whiten
 
     def fit(self, features: np.ndarray, state: np.ndarray, label_of: np.ndarray, names: list[str],
             not_label: np.ndarray | None = None, cancel=None) -> "LabelClassifier":
@@ -36,11 +37,12 @@ class LabelClassifier(ClassifierMixin, BaseEstimator):
         clf = relearning.fit_classifier(features, state, label_of, names, c=self.c, max_iter=self.max_iter,
                                         balanced=self.balanced, not_label=not_label,
                                         rejection_weight=self.rejection_weight, cancel=cancel,
-                                        hidden=self.hidden, hidden_steps=self.hidden_steps)
+                                        hidden=self.hidden, hidden_steps=self.hidden_steps, whiten=self.whiten)
         if clf is None:
             raise InterruptedError("the label classifier's fit was cancelled")
         self.coef_, self.intercept_, self.mean_ = clf.weight, clf.bias, clf.mean
-        self.mlp_ = {key: getattr(clf, key) for key in ("hidden_weight", "hidden_bias", "out_weight", "out_bias")}
+        # The optional parts: the MLP on top, the whitening underneath (None when not fitted).
+        self.mlp_ = {key: getattr(clf, key) for key in relearning._OPTIONAL}
         self.classes_ = np.array(clf.labels, dtype=object)
         return self
 

@@ -268,7 +268,8 @@ def test_label_classifier_follows_scikit_learn_conventions():
     label_of = np.where(state == 1, y, -1)
     names = ["a", "b", "c"]
     est = LabelClassifier(c=2.0)
-    assert est.get_params() == dict(c=2.0, max_iter=200, balanced=True, rejection_weight=3.0, hidden=0, hidden_steps=80)
+    assert est.get_params() == dict(c=2.0, max_iter=200, balanced=True, rejection_weight=3.0, hidden=0, hidden_steps=80,
+                                    whiten=0)
     assert not [k for k in vars(est) if k.endswith("_")]          # nothing learned before fit
     assert est.fit(feats, state, label_of, names) is est
     assert {"coef_", "intercept_", "mean_", "classes_"} <= set(vars(est))
@@ -308,3 +309,39 @@ def test_classifier_mlp_and_weaker_l2_rank_better_and_survive_storage(fashion):
 
     est = LabelClassifier(hidden=32, hidden_steps=40).fit(feats, state, label_of, names)
     np.testing.assert_allclose(est.predict_proba(feats, names), p_mlp, atol=1e-5)
+
+
+def test_whitened_classifier_input_matches_scikit_learn_and_survives_storage(fashion):
+    """Settings.classifier_whiten: the classifier reads the photos' first k principal components at unit
+    variance (relearning.whitening, computed from every photo). Reference: scikit-learn's PCA(whiten=True)
+    on the same centred, normalised embeddings (components agree up to sign), then its multinomial
+    logistic regression (C = 1, balanced) on the normalised whitened rows."""
+    from sklearn.decomposition import PCA
+    from sklearn.linear_model import LogisticRegression
+
+    from core.label_classifier import LabelClassifier
+
+    feats, y = fashion
+    state, label_of = make_state(y, "random200")
+    names = [str(c) for c in range(10)]
+    mean = feats.mean(0)
+    xc = relearning._centre_normalise(feats, mean)
+    proj, offset = relearning.whitening(feats, mean, 32)
+    z = xc @ proj - offset
+    ref = PCA(32, whiten=True, svd_solver="full").fit_transform(xc)
+    signs = np.sign((z * ref).sum(0))
+    np.testing.assert_allclose(z * signs, ref, atol=2e-3)
+    np.testing.assert_allclose(np.cov(z.T), np.eye(32), atol=1e-3)
+    clf = relearning.fit_classifier(feats, state, label_of, names, whiten=32)
+    assert clf.projection.shape == (feats.shape[1], 32) and clf.weight.shape == (10, 32)
+    p = clf.probabilities(feats, names)
+    rows = state == relearning.LABELLED
+    zn = relearning._centre_normalise(ref, np.zeros(32))
+    lr = LogisticRegression(C=1.0, max_iter=2000, tol=1e-8, class_weight="balanced").fit(zn[rows], label_of[rows])
+    assert np.abs(p - lr.predict_proba(zn)).max() < 5e-3
+    back = relearning.load_classifier(relearning.attach_classifier(None, clf))
+    np.testing.assert_allclose(back.probabilities(feats, names), p, atol=1e-6)
+    assert relearning.load_classifier(relearning.attach_classifier(
+        None, relearning.fit_classifier(feats, state, label_of, names))).projection is None
+    est = LabelClassifier(whiten=32).fit(feats, state, label_of, names)
+    np.testing.assert_allclose(est.predict_proba(feats, names), p, atol=1e-5)
