@@ -499,9 +499,13 @@ def whitening(features: np.ndarray, mean: np.ndarray, k: int, seed: int = 0) -> 
         x = x[np.sort(np.random.default_rng(seed).choice(len(x), WHITEN_SAMPLE, replace=False))]
     k = int(min(k, x.shape[1], len(x) - 1))
     mu = x.mean(0)
-    _, sv, vt = np.linalg.svd((x - mu).astype(np.float64), full_matrices=False)
-    scale = np.maximum(sv[:k], 1e-12) / np.sqrt(max(len(x) - 1, 1))
-    proj = (vt[:k].T / scale).astype(np.float32)
+    # The d x d covariance and its eigenvectors: 1 s at 10,000 photos where the SVD of the photos
+    # themselves took 40 (measured on 2 shared cores).
+    xm = x - mu
+    cov = (xm.T @ xm).astype(np.float64) / max(len(x) - 1, 1)
+    var, vec = np.linalg.eigh(cov)                      # ascending
+    var, vec = var[::-1][:k], vec[:, ::-1][:, :k]
+    proj = (vec / np.sqrt(np.maximum(var, 1e-12))).astype(np.float32)
     return proj, (mu @ proj).astype(np.float32)
 
 
