@@ -116,7 +116,6 @@ def stages(variant: str = "lite0") -> list[tuple[int, int, int, int, int]]:
 class EfficientNetLite(nn.Module):
     def __init__(self, num_classes: int = 1000, dropout: float = 0.2, variant: str = "lite0"):
         super().__init__()
-        self.variant = variant
         self._conv_stem = SameConv2d(3, STEM_CHANNELS, 3, 2)
         self._bn0 = _bn(STEM_CHANNELS)
         blocks = []
