@@ -42,7 +42,7 @@ class LabelClassifier(ClassifierMixin, BaseEstimator):
             raise InterruptedError("the label classifier's fit was cancelled")
         self.coef_, self.intercept_, self.mean_ = clf.weight, clf.bias, clf.mean
         # The optional parts: the MLP on top, the whitening underneath (None when not fitted).
-        self.mlp_ = {key: getattr(clf, key) for key in relearning._OPTIONAL}
+        self.optional_ = {key: getattr(clf, key) for key in relearning._OPTIONAL}
         self.classes_ = np.array(clf.labels, dtype=object)
         return self
 
@@ -51,7 +51,7 @@ class LabelClassifier(ClassifierMixin, BaseEstimator):
         from core import relearning
 
         return relearning.Classifier(self.coef_, self.intercept_, self.mean_, tuple(self.classes_),
-                                     **getattr(self, "mlp_", {}))
+                                     **getattr(self, "optional_", {}))
 
     def predict_proba(self, features: np.ndarray, names: list[str] | None = None) -> np.ndarray:
         """(n, classes) probabilities in the order of `classes_`, or of `names` when given (NaN for

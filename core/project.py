@@ -39,11 +39,11 @@ Cancel = Callable[[], bool]
 
 STORE_DIR = ".kinfold"
 DEFAULT_EXTRACTOR = "efficientnet-lite0"
+# `kinfold scan --network`: the built-in networks by short name (with the generalised-mean pooling).
+NETWORKS = {"lite0": "efficientnet-lite0-gem", "lite2": "efficientnet-lite2-gem"}
 # The stored id's first part -> the name of the built-in EfficientNet-Lite network and pooling it was
 # made with (core.embedding.efficientnet_lite_id, EFFICIENTNET_LITE2; kept here so opening a project
 # never imports torch).
-# `kinfold scan --network`: the built-in networks by short name (with the generalised-mean pooling).
-NETWORKS = {"lite0": "efficientnet-lite0-gem", "lite2": "efficientnet-lite2-gem"}
 _LITE_BY_ID = {"efficientnet-lite0": "efficientnet-lite0-avg", "efficientnet-lite0-gem": "efficientnet-lite0-gem",
                 "efficientnet-lite2-gem": "efficientnet-lite2-gem"}
 _GRAPH_SETTINGS = geometry.GRAPH_SETTINGS     # the same dict (kept under its old name for callers)

@@ -457,9 +457,7 @@ class Classifier:
     offset: np.ndarray | None = None            # (k,)
 
     def inputs(self, features: np.ndarray) -> np.ndarray:
-        """What the classifier reads of `features`: centred and normalised, then whitened if it was fitted so."""
-        xc = _centre_normalise(np.asarray(features, np.float32), self.mean)
-        return xc if self.projection is None else _centre_normalise(xc @ self.projection, self.offset)
+        return _classifier_inputs(features, self.mean, self.projection, self.offset)
 
     def probabilities(self, features: np.ndarray, names: list[str]) -> np.ndarray:
         """(n, len(names)) class probabilities; columns of labels the fit did not know are NaN."""
@@ -483,6 +481,13 @@ class Classifier:
 
 _OPTIONAL = ("hidden_weight", "hidden_bias", "out_weight", "out_bias", "projection", "offset")
 WHITEN_SAMPLE = 20_000     # photos the whitening's principal components are computed from (a seeded sample)
+
+
+def _classifier_inputs(features: np.ndarray, mean: np.ndarray, projection: np.ndarray | None,
+                       offset: np.ndarray | None) -> np.ndarray:
+    """What the classifier reads of `features`: centred and normalised, then whitened if it was fitted so."""
+    xc = _centre_normalise(np.asarray(features, np.float32), mean)
+    return xc if projection is None else _centre_normalise(xc @ projection, offset)
 
 
 def whitening(features: np.ndarray, mean: np.ndarray, k: int, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
@@ -539,9 +544,8 @@ def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray
         return None
     mean = features.mean(0)
     # What the classifier reads (Classifier.inputs): the embedding, or its whitened principal components.
-    reads = Classifier(np.zeros((0, 0), np.float32), np.zeros(0, np.float32), mean, (),
-                       **(dict(zip(("projection", "offset"), whitening(features, mean, whiten, seed))) if whiten > 0 else {}))
-    x = torch.from_numpy(reads.inputs(features[rows]).astype(np.float64))
+    projection, offset = whitening(features, mean, whiten, seed) if whiten > 0 else (None, None)
+    x = torch.from_numpy(_classifier_inputs(features[rows], mean, projection, offset).astype(np.float64))
     remap = np.full(max(len(names), int(used.max()) + 1), -1, np.int64)
     remap[used] = np.arange(len(used))
     y = torch.from_numpy(remap[np.asarray(label_of)[rows]])
@@ -566,7 +570,7 @@ def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray
     neg_rows, neg_cols = (np.nonzero(np.asarray(not_label)[:, :len(remap)] & (np.asarray(state) != LABELLED)[:, None])
                           if not_label is not None else (np.zeros(0, np.int64), np.zeros(0, np.int64)))
     keep = remap[neg_cols] >= 0
-    xn = torch.from_numpy(reads.inputs(features[neg_rows[keep]]).astype(np.float64))
+    xn = torch.from_numpy(_classifier_inputs(features[neg_rows[keep]], mean, projection, offset).astype(np.float64))
     yn = torch.from_numpy(remap[neg_cols[keep]])
 
     def closure():
@@ -589,7 +593,7 @@ def fit_classifier(features: np.ndarray, state: np.ndarray, label_of: np.ndarray
             return None
     clf = Classifier(w.detach().numpy().astype(np.float32), b.detach().numpy().astype(np.float32),
                      mean.astype(np.float32), tuple(names[int(i)] for i in used),
-                     projection=reads.projection, offset=reads.offset)
+                     projection=projection, offset=offset)
     if hidden <= 0:
         return clf
     with _threads(Settings.threads):
